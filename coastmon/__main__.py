@@ -1,0 +1,5 @@
+"""Allow ``python -m coastmon``."""
+
+from coastmon.cli import main
+
+raise SystemExit(main())

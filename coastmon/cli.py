@@ -1,0 +1,185 @@
+"""The ``coastmon`` command line: parse options, call the pipeline, report errors plainly.
+
+No science lives here. User errors (:class:`coastmon.errors.CoastmonError`) are printed as
+one paragraph on stderr with exit status 2 and no traceback; an interrupt exits 130.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from coastmon import __version__
+from coastmon.config import Settings, load_settings
+from coastmon.errors import CoastmonError, SettingsError
+
+_DESCRIPTION = (
+    "Find the coastal vorticity sources (capes, headlands, island tips) that feed eddy "
+    "energy offshore, from gridded ocean velocity or sea surface height. Research "
+    "diagnostics only: not for navigation or any safety-of-life decision."
+)
+
+
+def _add_settings_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--settings", metavar="FILE", type=Path,
+                   help="TOML settings file (sections as in docs/user-guide.md); options below override it")
+    g = p.add_argument_group("input variables (found by CF standard_name when not given)")
+    g.add_argument("--u-var", metavar="NAME", help="eastward (or grid-x) velocity variable")
+    g.add_argument("--v-var", metavar="NAME", help="northward (or grid-y) velocity variable")
+    g.add_argument("--ssh-var", metavar="NAME", help="sea surface height variable")
+    g.add_argument("--mask-var", metavar="NAME", help="land/sea mask variable")
+    g.add_argument("--depth", metavar="M", type=float,
+                   help="depth to analyse in metres, positive down (default: the top level)")
+
+
+def _add_run_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the streaming pass on a dask.distributed scheduler (tcp://host:port)")
+    p.add_argument("--gis", metavar="LIST",
+                   help="GIS formats to write, comma-separated from gpkg,geojson,shp,csv (default gpkg,csv)")
+    p.add_argument("--no-progress", action="store_true", help="do not show progress bars")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="coastmon", description=_DESCRIPTION)
+    parser.add_argument("--version", action="version", version=f"coastmon {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser(
+        "analyze", help="the whole job: coast, eddy statistics, signals, ranked sources, outputs",
+        description="Read the input files once, find the coast and its capes, compute eddy "
+        "statistics and along-shore time series in one streaming pass, then find and rank the "
+        "vorticity sources by the eddy energy they feed offshore. Writes map.gpkg, sources.csv, "
+        "results.nc, figures/, report.html and run.json into --out.",
+    )
+    p.add_argument("inputs", nargs="+", metavar="INPUT", help="NetCDF files or a Zarr store")
+    p.add_argument("--out", required=True, type=Path, metavar="DIR", help="output folder")
+    _add_settings_options(p)
+    _add_run_options(p)
+
+    p = sub.add_parser(
+        "coast", help="coastline, curvature and capes only (needs only a land/sea mask)",
+        description="Extract the coastline from the land/sea mask, compute its curvature and "
+        "list the capes. Writes map.gpkg (layers coastline, capes), capes.csv and a map PNG.",
+    )
+    p.add_argument("input", metavar="INPUT", help="a NetCDF file or Zarr store with a mask or velocity")
+    p.add_argument("--out", required=True, type=Path, metavar="DIR", help="output folder")
+    p.add_argument("--boundary", choices=["mask", "isobath"],
+                   help="use the land/sea mask (default) or an isobath as the boundary")
+    p.add_argument("--isobath", type=float, metavar="M", help="isobath depth in metres")
+    p.add_argument("--bathymetry-var", metavar="NAME", help="bathymetry variable (positive down)")
+    _add_settings_options(p)
+    p.add_argument("--gis", metavar="LIST", help="GIS formats (default gpkg,csv)")
+
+    p = sub.add_parser(
+        "compare", help="compare two result folders (runs, resolutions, or a run and observations)",
+        description="Match the sources of two analyze result folders by along-shore position and "
+        "compare their feeds, ranks, along-shore EKE profiles and jet spacing.",
+    )
+    p.add_argument("a_dir", type=Path, metavar="A_DIR", help="first result folder")
+    p.add_argument("b_dir", type=Path, metavar="B_DIR", help="second result folder")
+    p.add_argument("--out", required=True, type=Path, metavar="DIR", help="output folder")
+
+    p = sub.add_parser(
+        "update", help="add new time steps to a monitoring state and refresh its outputs",
+        description="The first call creates STATE_DIR from the inputs; later calls add only the "
+        "time steps not seen before, merge them into the stored statistics, log shedding events "
+        "and refresh every output of analyze inside STATE_DIR.",
+    )
+    p.add_argument("state_dir", type=Path, metavar="STATE_DIR", help="monitoring state folder")
+    p.add_argument("inputs", nargs="+", metavar="INPUT", help="NetCDF files or a Zarr store")
+    p.add_argument("--allow-gaps", action="store_true",
+                   help="accept new data that leaves a gap after the last time already seen")
+    _add_settings_options(p)
+    _add_run_options(p)
+
+    p = sub.add_parser(
+        "demo", help="build the invented scenario and run the whole job on it",
+        description="Build the built-in scenario (an invented coast with planted eddy sources), "
+        "run analyze on it, and compare the ranking found with the planted truth.",
+    )
+    p.add_argument("--out", type=Path, default=Path("coastmon-demo"), metavar="DIR",
+                   help="output folder (default: ./coastmon-demo)")
+    p.add_argument("--variant", choices=["default", "straight", "western"], default="default",
+                   help="scenario variant: capes on an eastern-boundary coast (default), a "
+                   "straight-coast control, or a western-boundary coast")
+    p.add_argument("--no-progress", action="store_true", help="do not show progress bars")
+    return parser
+
+
+def settings_from_args(args: argparse.Namespace) -> Settings:
+    """Settings file (if any) overridden by command-line options."""
+    settings = load_settings(args.settings) if getattr(args, "settings", None) else Settings()
+    ingest = {k: getattr(args, a) for k, a in (
+        ("u_var", "u_var"), ("v_var", "v_var"), ("ssh_var", "ssh_var"),
+        ("mask_var", "mask_var"), ("depth_m", "depth"), ("bathymetry_var", "bathymetry_var"),
+    ) if getattr(args, a, None) is not None}
+    if ingest:
+        settings = settings.replace("ingest", **ingest)
+    coast = {}
+    if getattr(args, "boundary", None):
+        coast["boundary"] = args.boundary
+    if getattr(args, "isobath", None) is not None:
+        coast["isobath_m"] = args.isobath
+    if coast:
+        settings = settings.replace("coast", **coast)
+    stream = {}
+    if getattr(args, "scheduler", None):
+        stream["scheduler"] = args.scheduler
+    if getattr(args, "no_progress", False):
+        stream["progress"] = False
+    if stream:
+        settings = settings.replace("stream", **stream)
+    if getattr(args, "gis", None):
+        formats = tuple(f.strip() for f in args.gis.split(",") if f.strip())
+        bad = sorted(set(formats) - {"gpkg", "geojson", "shp", "csv"})
+        if bad or not formats:
+            raise SettingsError(
+                f"Unknown GIS format(s) {', '.join(bad) or '(none given)'}", where="--gis",
+                todo="Choose from gpkg, geojson, shp, csv, comma-separated",
+            )
+        settings = settings.replace("output", gis=formats)
+    return settings
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 0
+    from coastmon import pipeline  # imported late so --help stays fast
+
+    try:
+        if args.command == "analyze":
+            result = pipeline.analyze(args.inputs, args.out, settings_from_args(args))
+            print(result.summary_text())
+        elif args.command == "coast":
+            result = pipeline.coast(args.input, args.out, settings_from_args(args))
+            print(result.summary_text())
+        elif args.command == "compare":
+            from coastmon.assess.compare import compare_folders
+
+            result = compare_folders(args.a_dir, args.b_dir, args.out)
+            print(result.summary_text())
+        elif args.command == "update":
+            from coastmon.monitor.state import update
+
+            result = update(args.state_dir, args.inputs, settings_from_args(args),
+                            allow_gaps=args.allow_gaps)
+            print(result.summary_text())
+        elif args.command == "demo":
+            text = pipeline.demo(args.out, variant=args.variant, progress=not args.no_progress)
+            print(text)
+    except CoastmonError as exc:
+        print(f"coastmon: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("coastmon: interrupted; nothing was written to the output folder.", file=sys.stderr)
+        return 130
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

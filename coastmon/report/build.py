@@ -1,0 +1,146 @@
+"""Assemble the figures and the HTML report of an ``analyze`` run from its products."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from coastmon.config import Settings
+from coastmon.report.figures import (
+    alongshore_figure,
+    hovmoller_figure,
+    map_figure,
+    ranking_figure,
+    spinup_figure,
+    wavelet_figure,
+)
+from coastmon.report.html import write_report
+from coastmon.signals import (
+    cwt_morlet,
+    lag1_autocorrelation,
+    red_noise_significance,
+)
+from coastmon.sources.detect import nearshore_anomaly, time_step_days
+
+
+def _top_source_figures(figdir: Path, prep, products, settings: Settings, series
+                        ) -> list[tuple[str, Path]]:
+    src = products.sources
+    out: list[tuple[str, Path]] = []
+    if len(src) == 0:
+        return out
+    dt = time_step_days(series)
+    t_days = np.asarray(series["time_days"].values, dtype=float)
+    ray_km = np.asarray(series["ray_km"].values, dtype=float)
+    zeta_ns = nearshore_anomaly(series["section_zeta"].values, series["offset_km"].values,
+                                settings.sources.nearshore_km)
+    all_ok = np.isfinite(zeta_ns).any(axis=0)
+    bg_alpha = float(np.clip(np.nanmedian(lag1_autocorrelation(
+        np.nan_to_num(zeta_ns[:, all_ok].T), axis=-1)), 0.0, 0.99))
+    bg_var = float(np.nanmedian(np.nanvar(zeta_ns[:, all_ok], axis=0)))
+    for _, row in src.head(2).iterrows():
+        rank = int(row["rank"])
+        s = int(row["station"])
+        direction = float(prep.frame.stations["ray_dir"].values[s]) or -1.0
+        hov = np.asarray(series["ray_zeta"].values[:, s, :], dtype=float)
+        if np.isfinite(hov).any():
+            speed = row["west_speed_cm_s"] / 100.0 * (-direction)
+            rossby = products.rossby_speed_cm_s / 100.0 * (-direction)
+            p = hovmoller_figure(figdir / f"hovmoller_rank{rank}.png", t_days, ray_km,
+                                 hov * 1e5, "relative vorticity (10⁻⁵ s⁻¹)",
+                                 speed_m_s=float(speed) if np.isfinite(speed) else None,
+                                 rossby_speed_m_s=float(rossby))
+            out.append((f"Hovmöller diagram of relative vorticity along the zonal ray from "
+                        f"source {rank}; distance increases offshore. Solid line: measured "
+                        f"propagation speed; dashed: long baroclinic Rossby-wave speed.", p))
+        x = np.nan_to_num(zeta_ns[:, s])
+        wt = cwt_morlet(x, dt, dj=settings.signals.dj, omega0=settings.signals.omega0)
+        sig = red_noise_significance(bg_var, bg_alpha, wt.periods, dt,
+                                     level=settings.signals.significance)
+        power = wt.power
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio = power / sig[:, None]
+            norm = power / (bg_var if bg_var > 0 else 1.0)
+        p = wavelet_figure(figdir / f"wavelet_rank{rank}.png", t_days, wt.periods, norm, ratio,
+                           wt.coi, x * 1e5, series_label="near-shore ζ′ (10⁻⁵ s⁻¹)",
+                           power_label="wavelet power / coast background variance")
+        out.append((f"Wavelet power of the near-shore vorticity at source {rank}, relative to "
+                    "the coast's background; contours: 95 % red-noise significance; hatched: "
+                    "cone of influence.", p))
+    return out
+
+
+def write_figures_and_report(stage: Path, prep, products, layers: dict, settings: Settings,
+                             provenance: dict[str, Any], series=None) -> None:
+    """Write ``figures/*.png`` and ``report.html`` into the staging folder."""
+    figdir = stage / "figures"
+    figdir.mkdir(exist_ok=True)
+    stats = products.stats
+    figures: list[tuple[str, Path]] = []
+    eke = np.asarray(stats["eke"].values) * 1e4
+    p = map_figure(figdir / "map_eke.png", stats["lon"].values, stats["lat"].values, eke,
+                   "mean eddy kinetic energy (cm² s⁻²)", layers["coastline"], layers["capes"],
+                   layers["sources"], layers["gates"], layers["plume_axes"],
+                   mask2d=np.asarray(prep.ds["mask"].values))
+    figures.append(("Mean eddy kinetic energy with the coastline, capes (triangles), ranked "
+                    "sources (numbered), the offshore gates and the plume axes.", p))
+    prof = products.profiles
+    capes = prep.capes
+    capes_km = [(str(c), float(k)) for c, k in zip(capes["cape_id"], capes["alongshore_km"],
+                                                    strict=True)] if len(capes) else []
+    sources_km = [(int(r), float(k)) for r, k in zip(products.sources["rank"],
+                                                     products.sources["alongshore_km"],
+                                                     strict=True)] if len(products.sources) else []
+    seg0 = prof["segment_id"].values == np.bincount(prof["segment_id"].values).argmax()
+    seg_id = int(np.bincount(prof["segment_id"].values).argmax())
+    capes_km = [c for c, s in zip(capes_km, capes["segment_id"] if len(capes) else [],
+                                  strict=True) if int(s) == seg_id]
+    sources_km = [c for c, s in zip(sources_km, products.sources["segment_id"]
+                                    if len(products.sources) else [], strict=True)
+                  if int(s) == seg_id]
+    p = alongshore_figure(
+        figdir / "alongshore_profiles.png", prof["alongshore_km"].values[seg0],
+        [("near-shore EKE (cm² s⁻²)", prof["eke_ns"].values[seg0] * 1e4),
+         ("near-shore ζ′ variance (10⁻¹⁰ s⁻²)", prof["zeta_var_ns"].values[seg0] * 1e10),
+         ("persistence (0–1)", prof["persistence"].values[seg0]),
+         ("along-shore localization (power / 95 % level)", prof["localization"].values[seg0])],
+        capes_km=capes_km, sources_km=sources_km)
+    figures.append(("Along-shore profiles on the main coast segment: near-shore eddy kinetic "
+                    "energy and vorticity variance, persistence of eddy-band shedding, and "
+                    "along-shore localization (values above 1 are significant). Capes marked "
+                    "above, sources by rank.", p))
+    if series is not None:
+        figures.extend(_top_source_figures(figdir, prep, products, settings, series))
+    if len(products.sources):
+        p = ranking_figure(figdir / "ranking.png", products.sources)
+        figures.append(("Offshore eddy-energy feed of each source with its 95 % moving-block "
+                        "bootstrap interval.", p))
+    sp = products.spinup
+    p = spinup_figure(figdir / "spinup.png", sp.length_days, sp.correlation, sp.threshold,
+                      sp.length_needed_days if sp.settled else None)
+    figures.append(("Spin-up: pattern correlation of the running time mean with the full-record "
+                    "mean against averaging length.", p))
+    if not settings.output.report:
+        return
+    src = products.sources
+    summary = {
+        "sources found": str(len(src)),
+        "capes found": str(len(capes)),
+        "record": f"{provenance.get('n_time', '?')} time steps",
+        "grid": " × ".join(str(n) for n in provenance.get("grid_shape", [])),
+        "deformation radius used": f"{prep.ld_km:.0f} km",
+        "long Rossby-wave speed": f"{products.rossby_speed_cm_s:.1f} cm/s westward",
+        "jet spacing": (f"{products.jet_spacing_km:.0f} km"
+                        if np.isfinite(products.jet_spacing_km) else "not resolved"),
+        "time mean settled after": (f"{sp.length_needed_days:.0f} days" if sp.settled
+                                    else "not within the record"),
+    }
+    table_cols = ["rank", "feed_w_per_m", "feed_lo", "feed_hi", "persistence", "cape_id",
+                  "dist_to_cape_km", "alongshore_km", "west_speed_cm_s", "rank_stability",
+                  "lon", "lat"]
+    write_report(stage / "report.html", title="Coastal vorticity sources and their offshore feed",
+                 summary=summary, sources=src[table_cols] if len(src) else src,
+                 capes=capes, figures=figures, provenance=provenance,
+                 warnings=products.warnings)

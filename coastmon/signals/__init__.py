@@ -1,0 +1,67 @@
+"""Wavelet and propagation analysis of the along-shore and offshore time series.
+
+Wavelets follow Torrence & Compo (1998); propagation uses wavenumber-frequency spectra,
+a Radon-transform cross-check and the long Rossby wave speed (Gill 1982; Vallis 2017).
+"""
+
+from coastmon.signals.propagation import (
+    KWSpectrum,
+    SpeedEstimate,
+    beta_parameter,
+    centroid_speed,
+    default_deformation_radius_km,
+    deformation_radius_wkb,
+    long_rossby_speed,
+    propagation_speed,
+    radon_speed,
+    wavenumber_frequency,
+)
+from coastmon.signals.wavelets import (
+    C_DELTA_MORLET6,
+    DJ0_MORLET6,
+    GAMMA_MORLET6,
+    WaveletTransform,
+    cwt_morlet,
+    delta_reconstruction_factor,
+    fourier_factor,
+    global_dof,
+    global_significance,
+    global_spectrum,
+    lag1_autocorrelation,
+    reconstruct,
+    red_noise_significance,
+    red_noise_spectrum,
+    scale_average,
+    scale_average_significance,
+    significant_fraction,
+)
+
+__all__ = [
+    "C_DELTA_MORLET6",
+    "DJ0_MORLET6",
+    "GAMMA_MORLET6",
+    "KWSpectrum",
+    "SpeedEstimate",
+    "WaveletTransform",
+    "beta_parameter",
+    "centroid_speed",
+    "cwt_morlet",
+    "default_deformation_radius_km",
+    "deformation_radius_wkb",
+    "delta_reconstruction_factor",
+    "fourier_factor",
+    "global_dof",
+    "global_significance",
+    "global_spectrum",
+    "lag1_autocorrelation",
+    "long_rossby_speed",
+    "propagation_speed",
+    "radon_speed",
+    "reconstruct",
+    "red_noise_significance",
+    "red_noise_spectrum",
+    "scale_average",
+    "scale_average_significance",
+    "significant_fraction",
+    "wavenumber_frequency",
+]

@@ -1,0 +1,547 @@
+"""The one streaming pass over the ``(time, y, x)`` data.
+
+:func:`run_pass` reads each time chunk of u, v (and ssh) exactly once and, in one compiled
+kernel per chunk, computes vorticity and Okubo–Weiss eddy cores, accumulates the chunk's
+moments, merges them into the running :class:`~coastmon.stream.moments.MomentState`, and
+samples u, v, ζ (and ssh) onto the along-shore frame. The sampled time series go to
+disk-backed arrays in a work folder, so memory stays bounded by a few chunks whatever the
+record length.
+
+Chunks run concurrently on a sliding window of at most ``2 x workers`` chunks, either on
+local threads (the compiled kernels release the GIL) or on a dask.distributed cluster
+when ``settings.scheduler`` is an address. Results are merged in chunk order, so a run is
+reproducible to the last bit whatever the scheduler.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+import time
+from collections import deque
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import dask
+import dask.array as da
+import numba
+import numpy as np
+import xarray as xr
+
+from coastmon.config import StreamSettings
+from coastmon.errors import InputError, SettingsError
+from coastmon.grid.metrics import GridMetrics
+from coastmon.grid.operators import gradient
+from coastmon.stream import kernels
+from coastmon.stream.moments import MomentState, grid_signature, time_text
+
+CHUNK_BUDGET_BYTES = 256 * 2**20
+"""Memory budget of one time chunk (inputs and the kernel's per-chunk arrays)."""
+
+SERIES_VARIABLES = ("u", "v", "zeta", "ssh")
+_SERIES_ATTRS = {
+    "u": ("eastward velocity", "m s-1"),
+    "v": ("northward velocity", "m s-1"),
+    "zeta": ("relative vorticity", "s-1"),
+    "ssh": ("sea surface height", "m"),
+}
+
+
+@dataclass
+class PassResult:
+    """Everything the streaming pass produces.
+
+    Attributes
+    ----------
+    stats : eddy statistics on the grid (y, x); see :func:`stats_from_state`.
+    series : sampled time series, float32, backed by files in the work folder:
+        ``section_<var>`` (time, station, offset) and ``ray_<var>`` (time, station, ray)
+        for var in u, v, zeta[, ssh].
+    state : the accumulators (mergeable; save with :func:`~coastmon.stream.save_state`).
+    timings : seconds spent per stage (``read_s``, ``kernel_s``, ``sample_s`` summed over
+        chunks and workers; ``merge_s``, ``write_s``, ``stats_s``, ``total_s`` wall time).
+    n_time : number of time steps read.
+    """
+
+    stats: xr.Dataset
+    series: xr.Dataset
+    state: MomentState
+    timings: dict[str, float] = field(default_factory=dict)
+    n_time: int = 0
+
+
+@dataclass(frozen=True)
+class _Constants:
+    """What every chunk task needs besides its data (shipped once to each worker)."""
+
+    gx: np.ndarray
+    gy: np.ndarray
+    indptr: np.ndarray
+    indices: np.ndarray
+    weights: np.ndarray
+    valid: np.ndarray
+    ow_threshold: float
+    kernel_threads: int
+
+
+def _process_block(u, v, h, groups, consts: _Constants) -> dict:
+    """All the work on one chunk: vorticity, eddy cores, moments per group, sampling."""
+    numba.set_num_threads(max(1, min(consts.kernel_threads, numba.config.NUMBA_NUM_THREADS)))
+    u, v = _as_float(u), _as_float(v)
+    h = None if h is None else _as_float(h)
+    t0 = time.perf_counter()
+    zeta, core = kernels.dual_fields(u, v, consts.gx, consts.gy, consts.ow_threshold)
+    parts = {}
+    for g in np.unique(groups):
+        parts[int(g)] = kernels.chunk_moments(u, v, zeta, h, core, np.flatnonzero(groups == g))
+    t1 = time.perf_counter()
+    nt = u.shape[0]
+    samples = {}
+    for name, arr in (("u", u), ("v", v), ("zeta", zeta), ("ssh", h)):
+        if arr is not None:
+            samples[name] = kernels.sample_rows(
+                consts.indptr, consts.indices, consts.weights, consts.valid,
+                arr.reshape(nt, -1),
+            )
+    t2 = time.perf_counter()
+    return {"parts": parts, "samples": samples, "kernel_s": t1 - t0, "sample_s": t2 - t1}
+
+
+def _as_float(a) -> np.ndarray:
+    a = np.asarray(a)
+    if a.dtype not in (np.float32, np.float64):
+        a = a.astype(np.float32)
+    return np.ascontiguousarray(a)
+
+
+def _input_array(ds: xr.Dataset, name: str):
+    """The variable as (time, y, x): a dask array whole in space, or a lazy DataArray."""
+    var = ds[name].transpose("time", "y", "x")
+    if var.chunks is None:
+        return var
+    data = var.data
+    if len(data.chunks[1]) > 1 or len(data.chunks[2]) > 1:
+        data = data.rechunk({1: -1, 2: -1})
+    return data
+
+
+def _load_and_process(arrays, t0: int, t1: int, groups, consts: _Constants) -> dict:
+    """Local-thread task: read one chunk (dask arrays computed synchronously here) and process it."""
+    start = time.perf_counter()
+    blocks = [None if a is None else a[t0:t1] for a in arrays]
+    lazy = [b for b in blocks if isinstance(b, da.Array)]
+    if lazy:
+        computed = iter(dask.compute(*lazy, scheduler="synchronous"))
+        blocks = [next(computed) if isinstance(b, da.Array) else b for b in blocks]
+    blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray) else b)
+              for b in blocks]
+    read_s = time.perf_counter() - start
+    out = _process_block(*blocks, groups, consts)
+    out["read_s"] = read_s
+    return out
+
+
+def _check_dataset(ds: xr.Dataset, metrics: GridMetrics) -> list[str]:
+    names = [n for n in ("u", "v", "ssh") if n in ds.data_vars]
+    for required in ("u", "v"):
+        if required not in ds.data_vars:
+            raise InputError(
+                f"The dataset given to the streaming pass has no '{required}' variable",
+                where="streaming pass input",
+                todo="Open the input with coastmon.io.ingest.open_dataset, which finds and "
+                "names the velocity variables",
+            )
+    for name in names:
+        if set(ds[name].dims) != {"time", "y", "x"}:
+            raise InputError(
+                f"Variable '{name}' has dimensions {ds[name].dims}, expected (time, y, x)",
+                where="streaming pass input",
+                todo="Open the input with coastmon.io.ingest.open_dataset",
+            )
+    shape = (ds.sizes["y"], ds.sizes["x"])
+    if shape != metrics.shape:
+        raise InputError(
+            f"The data grid {shape} does not match the grid metrics {metrics.shape}",
+            where="streaming pass input",
+            todo="Build GridMetrics from the same dataset's lon and lat",
+        )
+    if ds.sizes["time"] < 1:
+        raise InputError(
+            "The dataset has no time steps", where="streaming pass input",
+            todo="Check the input files and any time selection",
+        )
+    return names
+
+
+def _time_bounds(arrays: list, nt: int) -> list[tuple[int, int]]:
+    """Chunk boundaries along time: the input's dask chunks, or sized from the budget."""
+    first = arrays[0]
+    if isinstance(first, da.Array):
+        sizes = list(first.chunks[0])
+    else:
+        ny, nx = first.shape[1:]
+        per_step = ny * nx * (sum(a.dtype.itemsize for a in arrays if a is not None) + 8 + 1)
+        step = int(max(1, min(nt, CHUNK_BUDGET_BYTES // max(per_step, 1))))
+        sizes = [step] * (nt // step) + ([nt % step] if nt % step else [])
+    edges = np.concatenate([[0], np.cumsum(sizes)]).astype(int)
+    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:], strict=True)]
+
+
+def _groups(ds: xr.Dataset, seasonal: bool) -> np.ndarray:
+    nt = ds.sizes["time"]
+    if not seasonal:
+        return np.zeros(nt, dtype=np.int64)
+    if "time" not in ds.coords:
+        raise InputError(
+            "Seasonal anomalies need a time coordinate, and the dataset has none",
+            where="stream.seasonal = true",
+            todo="Give the input a CF time coordinate or set stream.seasonal = false",
+        )
+    try:
+        months = np.asarray(ds["time"].dt.month.values, dtype=np.int64)
+    except (TypeError, AttributeError):
+        raise InputError(
+            "Seasonal anomalies need calendar dates, but the time coordinate is not a date",
+            where="stream.seasonal = true",
+            todo="Give the time coordinate CF units such as 'days since 2000-01-01' or set "
+            "stream.seasonal = false",
+        ) from None
+    return months - 1
+
+
+def _client(address: str):
+    try:
+        from distributed import Client
+    except ImportError:  # pragma: no cover - distributed is a dependency
+        raise SettingsError(
+            "A scheduler address was given but dask.distributed is not installed",
+            where="stream.scheduler", todo="Install 'distributed' or leave the scheduler unset",
+        ) from None
+    try:
+        return Client(address, timeout=30, set_as_default=False)
+    except (OSError, TimeoutError) as exc:
+        raise SettingsError(
+            f"Cannot reach the dask scheduler at {address} ({exc})",
+            where="stream.scheduler",
+            todo="Start the scheduler and its workers first, check the address, or leave the "
+            "scheduler unset to use local threads",
+        ) from None
+
+
+def _progress_bar(total: int, enabled: bool):
+    from tqdm import tqdm
+
+    show = enabled and sys.stderr.isatty()
+    return tqdm(total=total, file=sys.stderr, disable=not show, unit="chunk",
+                desc="streaming pass")
+
+
+def run_pass(
+    ds: xr.Dataset,
+    metrics: GridMetrics,
+    frame,
+    settings: StreamSettings,
+    workdir: Path,
+    progress: Callable[[int, int], None] | None = None,
+) -> PassResult:
+    """Read the record once: eddy statistics on the grid and time series on the frame.
+
+    Parameters
+    ----------
+    ds : canonical dataset (``u``, ``v`` [, ``ssh``] on (time, y, x), NaN on land;
+        ``lon``, ``lat`` (y, x)), dask-chunked along time or not chunked (then chunks of
+        about :data:`CHUNK_BUDGET_BYTES` are read).
+    metrics : grid metrics of the same grid.
+    frame : an along-shore frame with ``sampler`` (CSR, ``(n_points, y*x)``), ``valid``,
+        ``split``, ``stations`` (with ``alongshore_km``), ``offsets_km``, ``ray_km``.
+    settings : stream settings (scheduler, seasonal, progress bar, Okubo–Weiss threshold).
+    workdir : folder for the disk-backed series (created if needed; must stay while the
+        series are used).
+    progress : optional callback ``progress(chunks_done, chunks_total)``.
+
+    Returns
+    -------
+    PassResult
+
+    Notes
+    -----
+    Anomalies are about the time mean (or the monthly climatology when
+    ``settings.seasonal``). Sampling skips missing values: ``(W @ fill0(x)) /
+    (W @ isfinite(x))`` per time step, NaN where no weight meets a finite value.
+    """
+    wall0 = time.perf_counter()
+    names = _check_dataset(ds, metrics)
+    has_h = "ssh" in names
+    workdir = Path(workdir)
+    workdir.mkdir(parents=True, exist_ok=True)
+    arrays = [_input_array(ds, n) if n in names else None for n in ("u", "v", "ssh")]
+    nt = ds.sizes["time"]
+    bounds = _time_bounds(arrays, nt)
+    groups = _groups(ds, settings.seasonal)
+    times = ds["time"].values if "time" in ds.coords else None
+
+    sampler = frame.sampler.tocsr()
+    n_points = sampler.shape[0]
+    if sampler.shape[1] != metrics.shape[0] * metrics.shape[1]:
+        raise InputError(
+            f"The frame's sampler has {sampler.shape[1]} columns but the grid has "
+            f"{metrics.shape[0] * metrics.shape[1]} points",
+            where="streaming pass", todo="Build the frame on the same grid as the data",
+        )
+    series_names = [n for n in SERIES_VARIABLES if n != "ssh" or has_h]
+    probe = frame.split(np.zeros((1, n_points), dtype=np.float32))
+    sec_shape, ray_shape = probe[0].shape[1:], probe[1].shape[1:]
+    files = {}
+    for name in series_names:
+        for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
+            files[f"{kind}_{name}"] = np.lib.format.open_memmap(
+                workdir / f"{kind}_{name}.npy", mode="w+", dtype=np.float32,
+                shape=(nt, *shape),
+            )
+
+    state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
+                              grid_signature(metrics.lon, metrics.lat))
+    ncpu = os.cpu_count() or 1
+    timings = dict.fromkeys(("read_s", "kernel_s", "sample_s", "merge_s", "write_s"), 0.0)
+    client = _client(settings.scheduler) if settings.scheduler else None
+    try:
+        if client is not None:
+            nthreads = sum(client.nthreads().values()) or 1
+            workers = max(1, len(client.nthreads()))
+            kernel_threads = max(1, ncpu // nthreads)
+        else:
+            nthreads = workers = max(1, min(ncpu, len(bounds)))
+            kernel_threads = max(1, ncpu // workers)
+        consts = _Constants(
+            gx=np.ascontiguousarray(metrics.gx), gy=np.ascontiguousarray(metrics.gy),
+            indptr=sampler.indptr.astype(np.int64), indices=sampler.indices.astype(np.int64),
+            weights=sampler.data.astype(np.float64),
+            valid=np.asarray(frame.valid, dtype=np.bool_),
+            ow_threshold=float(settings.ow_threshold), kernel_threads=kernel_threads,
+        )
+        window = 2 * nthreads
+        bar = _progress_bar(len(bounds), settings.progress)
+        if client is not None:
+            submit, collect, pool = _distributed_submitter(client, ds, names, bounds, consts,
+                                                           groups)
+        else:
+            pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="coastmon-pass")
+
+            def submit(t0, t1):
+                return pool.submit(_load_and_process, arrays, t0, t1, groups[t0:t1], consts)
+
+            def collect(future):
+                return future.result()
+
+        try:
+            pending = deque()
+            queue = iter(bounds)
+            for t0, t1 in queue:
+                pending.append((t0, t1, submit(t0, t1)))
+                if len(pending) >= window:
+                    break
+            done = 0
+            while pending:
+                t0, t1, future = pending.popleft()
+                out = collect(future)
+                nxt = next(queue, None)
+                if nxt is not None:
+                    pending.append((*nxt, submit(*nxt)))
+                _consume(out, t0, t1, state, files, frame, times, timings)
+                done += 1
+                bar.update(1)
+                if progress is not None:
+                    progress(done, len(bounds))
+        finally:
+            bar.close()
+            if pool is not None:
+                pool.shutdown(wait=True, cancel_futures=True)
+    finally:
+        if client is not None:
+            client.close()
+
+    t = time.perf_counter()
+    for arr in files.values():
+        arr.flush()
+    series = _series_dataset(files, frame, ds, series_names)
+    timings["write_s"] += time.perf_counter() - t
+    t = time.perf_counter()
+    stats = stats_from_state(state, metrics)
+    timings["stats_s"] = time.perf_counter() - t
+    timings["total_s"] = time.perf_counter() - wall0
+    if client is not None:
+        timings.pop("read_s")
+    return PassResult(stats=stats, series=series, state=state, timings=timings, n_time=nt)
+
+
+def _distributed_submitter(client, ds, names, bounds, consts, groups):
+    """Submit chunk tasks to a dask.distributed cluster; constants are scattered once."""
+    if ds["u"].chunks is None:
+        ds = ds[names].chunk({"time": bounds[0][1] - bounds[0][0]})
+    lazy = [_input_array(ds, n) if n in names else None for n in ("u", "v", "ssh")]
+    consts_future = client.scatter(consts, broadcast=True)
+
+    def submit(t0, t1):
+        task = dask.delayed(_process_block)(
+            *[None if a is None else a[t0:t1] for a in lazy], groups[t0:t1], consts_future
+        )
+        return client.compute(task)
+
+    def collect(future):
+        return future.result()
+
+    return submit, collect, None
+
+
+def _consume(out, t0, t1, state, files, frame, times, timings) -> None:
+    """Merge one chunk's moments into the running state and write its samples."""
+    for key in ("read_s", "kernel_s", "sample_s"):
+        timings[key] += out.get(key, 0.0)
+    t = time.perf_counter()
+    chunk = MomentState.empty(state.shape, "ssh" in state.variables, state.seasonal,
+                              state.ow_threshold, state.grid_id)
+    for g, part in out["parts"].items():
+        chunk.n[g], chunk.mean[g], chunk.m2[g], chunk.m3[g], chunk.ow_core[g] = part
+    chunk.n_time = t1 - t0
+    if times is not None:
+        chunk.time_start = time_text(times[t0])
+        chunk.time_end = time_text(times[t1 - 1])
+    state.update(chunk)
+    t2 = time.perf_counter()
+    timings["merge_s"] += t2 - t
+    for name, samples in out["samples"].items():
+        section, rays = frame.split(samples)
+        files[f"section_{name}"][t0:t1] = section
+        files[f"ray_{name}"][t0:t1] = rays
+    timings["write_s"] += time.perf_counter() - t2
+
+
+def _series_dataset(files, frame, ds, names) -> xr.Dataset:
+    stations = frame.stations
+    ns = len(stations)
+    coords = {
+        "station": np.arange(ns),
+        "offset_km": ("offset", np.asarray(frame.offsets_km, dtype=np.float64)),
+        "ray_km": ("ray", np.asarray(frame.ray_km, dtype=np.float64)),
+    }
+    if "alongshore_km" in getattr(stations, "columns", ()):
+        coords["alongshore_km"] = ("station", np.asarray(stations["alongshore_km"], dtype=float))
+    if "time" in ds.coords:
+        coords["time"] = ds["time"].values
+    data = {}
+    for name in names:
+        long_name, units = _SERIES_ATTRS[name]
+        data[f"section_{name}"] = xr.DataArray(
+            files[f"section_{name}"], dims=("time", "station", "offset"),
+            attrs={"long_name": f"{long_name} on the offshore sections", "units": units},
+        )
+        data[f"ray_{name}"] = xr.DataArray(
+            files[f"ray_{name}"], dims=("time", "station", "ray"),
+            attrs={"long_name": f"{long_name} along the zonal rays", "units": units},
+        )
+    coords["offset_km"] = (*coords["offset_km"], {"long_name": "offshore distance", "units": "km"})
+    coords["ray_km"] = (*coords["ray_km"], {"long_name": "distance along the ray", "units": "km"})
+    return xr.Dataset(data, coords=coords)
+
+
+_STATS_ATTRS = {
+    "mean_u": ("time-mean eastward velocity", "m s-1"),
+    "mean_v": ("time-mean northward velocity", "m s-1"),
+    "mean_zeta": ("time-mean relative vorticity", "s-1"),
+    "eke": ("eddy kinetic energy per unit mass", "m2 s-2"),
+    "uu": ("Reynolds stress <u'u'>", "m2 s-2"),
+    "uv": ("Reynolds stress <u'v'>", "m2 s-2"),
+    "vv": ("Reynolds stress <v'v'>", "m2 s-2"),
+    "u_zeta": ("eastward eddy vorticity flux <u'zeta'>", "m s-2"),
+    "v_zeta": ("northward eddy vorticity flux <v'zeta'>", "m s-2"),
+    "zeta_var": ("relative vorticity variance", "s-2"),
+    "rossby_var": ("Rossby number variance <zeta'^2>/f^2", "1"),
+    "bt_conversion": ("barotropic conversion from mean to eddy kinetic energy", "m2 s-3"),
+    "eke_flux_x": ("eastward eddy flux of eddy kinetic energy <u'k'>", "m3 s-3"),
+    "eke_flux_y": ("northward eddy flux of eddy kinetic energy <v'k'>", "m3 s-3"),
+    "ow_core_fraction": ("fraction of time in an Okubo-Weiss eddy core", "1"),
+    "n_valid": ("number of valid time steps", "1"),
+    "mean_ssh": ("time-mean sea surface height", "m"),
+    "ssh_var": ("sea surface height variance", "m2"),
+    "u_ssh": ("covariance <u'ssh'>", "m2 s-1"),
+    "v_ssh": ("covariance <v'ssh'>", "m2 s-1"),
+}
+
+
+def stats_from_state(state: MomentState, metrics: GridMetrics) -> xr.Dataset:
+    r"""Eddy statistics on the grid from accumulated moments (no pass over the data).
+
+    With primes the anomalies about the time mean (or the monthly climatology) and
+    :math:`\langle\cdot\rangle` the time average over valid steps (divide by n):
+
+    * ``eke`` :math:`= \tfrac12(\langle u'u'\rangle + \langle v'v'\rangle)`;
+    * Reynolds stresses ``uu``, ``uv``, ``vv``; eddy vorticity fluxes ``u_zeta``,
+      ``v_zeta``; ``zeta_var``; ``rossby_var`` :math:`=\langle\zeta'^2\rangle/f^2`;
+    * ``bt_conversion`` :math:`= -(\langle u'u'\rangle\partial_x\bar u + \langle u'v'\rangle
+      (\partial_y\bar u + \partial_x\bar v) + \langle v'v'\rangle\partial_y\bar v)`, positive
+      where the mean flow loses kinetic energy to the eddies (Cushman-Roisin & Beckers
+      2011, ch. on barotropic instability); gradients by
+      :func:`coastmon.grid.operators.gradient`;
+    * ``eke_flux_x`` :math:`=\langle u'k'\rangle = \tfrac12\langle u'u'u' + u'v'v'\rangle`,
+      ``eke_flux_y`` :math:`=\langle v'k'\rangle = \tfrac12\langle u'u'v' + v'v'v'\rangle`;
+    * ``ow_core_fraction``: eddy-core snapshots over valid snapshots;
+    * with ssh: ``mean_ssh``, ``ssh_var``, ``u_ssh``, ``v_ssh``.
+
+    Values are NaN where no time step was valid.
+    """
+    n, _, _, _, ow = state.pooled()
+    mean_u, mean_v = state.mean_of("u"), state.mean_of("v")
+    uu, uv, vv = state.covariance("u", "u"), state.covariance("u", "v"), state.covariance("v", "v")
+    ux, uy = gradient(mean_u, metrics)
+    vx, vy = gradient(mean_v, metrics)
+    zeta_var = state.covariance("zeta", "zeta")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rossby_var = zeta_var / metrics.f**2
+        ow_fraction = np.where(n > 0, ow / n, np.nan)
+    values = {
+        "mean_u": mean_u,
+        "mean_v": mean_v,
+        "mean_zeta": state.mean_of("zeta"),
+        "eke": 0.5 * (uu + vv),
+        "uu": uu,
+        "uv": uv,
+        "vv": vv,
+        "u_zeta": state.covariance("u", "zeta"),
+        "v_zeta": state.covariance("v", "zeta"),
+        "zeta_var": zeta_var,
+        "rossby_var": rossby_var,
+        "bt_conversion": -(uu * ux + uv * (uy + vx) + vv * vy),
+        "eke_flux_x": 0.5 * (state.third("uuu") + state.third("uvv")),
+        "eke_flux_y": 0.5 * (state.third("uuv") + state.third("vvv")),
+        "ow_core_fraction": ow_fraction,
+        "n_valid": n.astype(np.int64),
+    }
+    if "ssh" in state.variables:
+        values.update(
+            mean_ssh=state.mean_of("ssh"),
+            ssh_var=state.covariance("ssh", "ssh"),
+            u_ssh=state.covariance("u", "ssh"),
+            v_ssh=state.covariance("v", "ssh"),
+        )
+    data = {}
+    for name, arr in values.items():
+        long_name, units = _STATS_ATTRS[name]
+        data[name] = xr.DataArray(arr, dims=("y", "x"),
+                                  attrs={"long_name": long_name, "units": units})
+    attrs = {
+        "anomalies_about": "monthly climatology" if state.seasonal else "time mean",
+        "n_time": state.n_time,
+        "time_start": state.time_start,
+        "time_end": state.time_end,
+        "ow_threshold": state.ow_threshold,
+    }
+    return xr.Dataset(
+        data,
+        coords={
+            "lon": (("y", "x"), metrics.lon, {"long_name": "longitude", "units": "degrees_east"}),
+            "lat": (("y", "x"), metrics.lat, {"long_name": "latitude", "units": "degrees_north"}),
+        },
+        attrs=attrs,
+    )

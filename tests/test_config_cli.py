@@ -1,0 +1,79 @@
+"""Settings validation and the command line's behaviour on user errors."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pytest
+
+from coastmon.cli import main
+from coastmon.config import Settings, load_settings, settings_from_dict
+from coastmon.errors import SettingsError
+
+
+def test_defaults_live_in_one_place_and_roundtrip():
+    s = Settings()
+    # check: common practice, no source (a dict of the defaults rebuilds the same settings)
+    assert settings_from_dict(s.to_dict()) == s
+
+
+def test_unknown_key_gets_a_suggestion(tmp_path):
+    f = tmp_path / "run.toml"
+    f.write_text("[coast]\nstation_spacing = 5.0\n")
+    with pytest.raises(SettingsError) as err:
+        load_settings(f)
+    msg = str(err.value)
+    assert "station_spacing" in msg and "station_spacing_km" in msg and str(f) in msg
+
+
+def test_unknown_section_and_bad_types(tmp_path):
+    with pytest.raises(SettingsError, match="sourcse|sources"):
+        settings_from_dict({"sourcse": {}})
+    with pytest.raises(SettingsError, match="number"):
+        settings_from_dict({"coast": {"resample_km": "two"}})
+    with pytest.raises(SettingsError, match="one of"):
+        settings_from_dict({"coast": {"boundary": "shoreline"}})
+    with pytest.raises(SettingsError, match="increasing"):
+        settings_from_dict({"coast": {"scales_km": [40.0, 10.0]}})
+
+
+def test_bad_toml_is_one_paragraph(tmp_path):
+    f = tmp_path / "bad.toml"
+    f.write_text("[coast\nx=1\n")
+    with pytest.raises(SettingsError) as err:
+        load_settings(f)
+    assert "\n" not in str(err.value)
+
+
+def test_cli_lists_commands(capsys):
+    with pytest.raises(SystemExit) as ex:
+        main(["--help"])
+    assert ex.value.code == 0
+    out = capsys.readouterr().out
+    for cmd in ("analyze", "coast", "compare", "update", "demo"):
+        assert cmd in out
+
+
+@pytest.mark.parametrize("cmd", ["analyze", "coast", "compare", "update", "demo"])
+def test_every_command_has_help(cmd, capsys):
+    with pytest.raises(SystemExit) as ex:
+        main([cmd, "--help"])
+    assert ex.value.code == 0
+    assert len(capsys.readouterr().out) > 200
+
+
+def test_missing_input_exits_2_without_traceback(tmp_path):
+    proc = subprocess.run(
+        [sys.executable, "-m", "coastmon", "analyze", str(tmp_path / "nope.nc"),
+         "--out", str(tmp_path / "out")],
+        capture_output=True, text=True, timeout=120,
+    )
+    assert proc.returncode == 2
+    assert "Traceback" not in proc.stderr
+    assert "nope.nc" in proc.stderr
+    assert not (tmp_path / "out").exists()
+
+
+def test_bad_gis_option_is_refused(tmp_path):
+    assert main(["analyze", "x.nc", "--out", str(tmp_path / "o"), "--gis", "kml"]) == 2
