@@ -136,6 +136,21 @@ class SourceSettings:
 
 
 @dataclass(frozen=True)
+class MonitorSettings:
+    """Shedding events logged by ``coastmon update`` (see docs/monitoring.md)."""
+
+    event_threshold_sd: float = 2.0
+    """An event is where the near-shore vorticity anomaly at a source exceeds this many
+    standard deviations of that station's own record."""
+    event_min_days: float = 3.0
+    """Shortest event (days above the threshold without a break)."""
+    probe_km: float = 100.0
+    """Distance along the source's zonal ray at which the offshore arrival is timed."""
+    min_lag_correlation: float = 0.3
+    """Smallest lagged correlation accepted to measure the offshore speed from the lag."""
+
+
+@dataclass(frozen=True)
 class OutputSettings:
     """What to write."""
 
@@ -154,6 +169,7 @@ class Settings:
     stream: StreamSettings = field(default_factory=StreamSettings)
     signals: SignalSettings = field(default_factory=SignalSettings)
     sources: SourceSettings = field(default_factory=SourceSettings)
+    monitor: MonitorSettings = field(default_factory=MonitorSettings)
     output: OutputSettings = field(default_factory=OutputSettings)
 
     def to_dict(self) -> dict[str, dict[str, Any]]:
@@ -306,6 +322,10 @@ def validate(settings: Settings) -> None:
          "signals.eddy_period_days must be (shortest, longest)"),
         (settings.sources.n_bootstrap >= 20, "sources.n_bootstrap must be at least 20"),
         (0 <= settings.sources.min_persistence <= 1, "sources.min_persistence must be in [0, 1]"),
+        (settings.monitor.event_threshold_sd > 0 and settings.monitor.event_min_days >= 0
+         and settings.monitor.probe_km > 0 and 0 < settings.monitor.min_lag_correlation < 1,
+         "monitor.event_threshold_sd and monitor.probe_km must be positive, "
+         "monitor.event_min_days at least 0 and monitor.min_lag_correlation in (0, 1)"),
         (set(settings.output.gis) <= {"gpkg", "geojson", "shp", "csv"},
          "output.gis may contain only gpkg, geojson, shp, csv"),
         (settings.ingest.time_chunk is None or settings.ingest.time_chunk >= 1,

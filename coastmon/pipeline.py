@@ -42,7 +42,7 @@ from coastmon.geometry import (
     extract_coastline,
     find_capes,
 )
-from coastmon.grid.metrics import GridMetrics
+from coastmon.grid.metrics import GridMetrics, beta_parameter
 from coastmon.io.atomic import atomic_write_text, staging_dir
 from coastmon.io.gis import write_layers
 from coastmon.io.ingest import open_dataset
@@ -53,7 +53,6 @@ from coastmon.signals import (
     long_rossby_speed,
     wavenumber_frequency,
 )
-from coastmon.grid.metrics import beta_parameter
 from coastmon.sources import (
     alongshore_profiles,
     find_sources,
@@ -178,7 +177,8 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
         lon=("station", st["lon"].values),
         lat=("station", st["lat"].values),
     )
-    profiles["segment_id"] = ("station", st["segment_id"].values.astype(np.int32))
+    profiles["segment_id"] = ("station", st["segment_id"].values.astype(np.int32),
+                              {"long_name": "coast segment id", "units": "1"})
     spectra = source_spectra(series, frame, ranked, settings, dt)
     return Products(stats, profiles, ranked, gates_df, axes, spacing, spectra, spin,
                     100.0 * c_rossby, series, warnings)
@@ -203,7 +203,7 @@ def source_spectra(series: xr.Dataset, frame, ranked: pd.DataFrame, settings: Se
     out = out.assign_coords(period=("period", wt.periods, {"long_name": "Fourier period",
                                                            "units": "days"}),
                             source=("source", ranked["rank"].values.astype(np.int32),
-                                    {"long_name": "source rank"}))
+                                    {"long_name": "source rank", "units": "1"}))
     top = int(ranked["station"].values[0])
     ray = np.asarray(series["ray_zeta"].values[:, top, :], dtype=np.float64)
     ok = np.isfinite(ray).all(axis=0)
@@ -470,17 +470,21 @@ def truth_comparison(sources: pd.DataFrame, truth: dict[str, Any], tol_km: float
         anchored = sources[sources["cape_id"].astype(str) != ""] if len(sources) else sources
         lines.append(f"  no planted source (control); found {len(anchored)} anchored source(s)")
         return "\n".join(lines)
+    expected = truth.get("expected_rank", [p.get("name") for p in planted])
     for p in planted:
+        lon, lat = p.get("cape_lon", p["lon"]), p.get("cape_lat", p["lat"])
+        hit, k, dist = False, -1, float("nan")
         if len(sources):
-            d = haversine_m(sources["lon"].values, sources["lat"].values, p["lon"], p["lat"]) / 1000
+            d = haversine_m(sources["lon"].values, sources["lat"].values, lon, lat) / 1000
             k = int(np.argmin(d))
-            hit = d[k] <= tol_km
-        else:
-            hit = False
-        found = (f"found as rank {int(sources['rank'].values[k])} ({d[k]:.0f} km away)"
+            dist = float(d[k])
+            hit = dist <= tol_km
+        rank = expected.index(p["name"]) + 1 if p.get("name") in expected else "?"
+        found = (f"found as rank {int(sources['rank'].values[k])}, {dist:.0f} km from the cape, "
+                 f"feed {sources['feed_w_per_m'].values[k]:.3g} W/m"
                  if hit else "not found")
-        lines.append(f"  planted rank {p.get('expected_rank', '?')} at {p.get('cape_name', '?')}: "
-                     f"{found}")
+        lines.append(f"  planted rank {rank} ({p.get('cape', '?')}, planted feed "
+                     f"{p.get('feed_w_per_m', float('nan')):.3g} W/m): {found}")
     return "\n".join(lines)
 
 

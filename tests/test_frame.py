@@ -9,7 +9,7 @@ from scipy.interpolate import RegularGridInterpolator
 from shapely.geometry import LineString
 
 from coastmon.config import CoastSettings
-from coastmon.geometry import bilinear_sampler, build_frame, extract_coastline
+from coastmon.geometry import bilinear_sampler, build_frame, extract_coastline, find_capes
 
 GEOD = pyproj.Geod(ellps="WGS84")
 
@@ -205,3 +205,30 @@ def test_normals_neither_cross_land_nor_each_other_at_a_concave_bend():
     assert crossings == 0
     inside_bay = [ln for ln in lines if abs(ln.coords[0][1]) < 20.0 and ln.coords[0][0] > 20.0]
     assert len(inside_bay) >= 3
+
+
+def test_cape_and_sections_on_a_rotated_curvilinear_grid():
+    proj = pyproj.Proj(proj="aeqd", lat_0=-30.0, lon_0=-72.0, datum="WGS84", units="km")
+    angle = np.radians(25.0)
+    i, j = np.meshgrid(np.arange(-60, 61) * 4.0, np.arange(-60, 61) * 4.0, indexing="ij")
+    gx = j * np.cos(angle) - i * np.sin(angle)
+    gy = j * np.sin(angle) + i * np.cos(angle)
+    lon, lat = (np.asarray(v) for v in proj(gx, gy, inverse=True))
+    mask = (gx < 60.0 - 25.0 * np.exp(-0.5 * (gy / 12.0) ** 2)).astype(int)
+    cfg = CoastSettings()
+    coast = extract_coastline(lon, lat, mask, cfg)
+    capes = find_capes(coast, cfg)
+    cx, cy = proj(capes["lon"].to_numpy(), capes["lat"].to_numpy())
+    # check: planted truth, one cape at the bump apex (35, 0) km, within one 4 km cell
+    assert len(capes) == 1 and np.hypot(cx[0] - 35.0, cy[0]) < 4.0 * np.sqrt(2)
+    frame = build_frame(coast, lon, lat, mask, cfg)
+    section, _ = frame.split(frame.sampler @ (1.0 + 0.3 * gx - 0.7 * gy).ravel())
+    sx, sy = proj(frame.section_lon, frame.section_lat)
+    offshore = np.isfinite(sx[:, 1:])
+    assert offshore.sum() > 100
+    # check: common practice, bilinear interpolation on parallelogram cells is exact for
+    # linear functions (all four neighbours at sea beyond the first offset)
+    np.testing.assert_allclose(section[:, 1:][offshore],
+                               (1.0 + 0.3 * sx - 0.7 * sy)[:, 1:][offshore], atol=1e-5)
+    # check: planted truth, the sea lies west (rays westward)
+    assert np.all(frame.stations["ray_dir"] == -1)

@@ -7,7 +7,7 @@ import pyogrio
 import pyproj
 import pytest
 from global_land_mask import globe
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from coastmon.config import CoastSettings
@@ -307,6 +307,7 @@ def test_cape_is_stable_when_grid_resolution_doubles(phi0):
 
 @SLOW_PROPERTY
 @given(lon0=st.floats(-179.9, 179.9), phi0=st.floats(0.0, 2 * np.pi))
+@example(lon0=179.8, phi0=1.0)
 def test_capes_do_not_depend_on_longitude_convention(lon0, phi0):
     lon, lat, x, y, _ = _grid(lon0, 45.0, 100.0, 2.5)
     mask = _bumpy_island(x, y, phi0)

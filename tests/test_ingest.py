@@ -154,10 +154,12 @@ def test_files_in_any_order_are_joined_along_time(tmp_path):
     assert json.loads(ds.attrs["source_files"]) == [str(early.resolve()), str(late.resolve())]
 
 
-def test_zarr_store_input(tmp_path, velocity_file):
+@pytest.mark.filterwarnings("ignore:Consolidated metadata")
+@pytest.mark.parametrize("consolidated", [False, True])
+def test_zarr_store_input(tmp_path, velocity_file, consolidated):
     path, u, _, _ = velocity_file
     store = tmp_path / "flow.zarr"
-    xr.open_dataset(path).to_zarr(store)
+    xr.open_dataset(path).to_zarr(store, consolidated=consolidated)
     ds = open_dataset([store], IngestSettings())
     # check: common practice, no source (same values through Zarr)
     np.testing.assert_allclose(ds.u.values, u, rtol=1e-6, equal_nan=True)
@@ -373,8 +375,9 @@ def test_single_time_step_is_a_record_error(tmp_path):
     path = _write(tmp_path / "one.nc", u, v)
     with pytest.raises(RecordError, match="one.nc"):
         open_dataset([path], IngestSettings())
-    # geometry only needs no record
+    # geometry only needs no record; appending to a record accepts one step
     assert open_mask([path], IngestSettings()).mask.values.sum() > 0
+    assert open_dataset([path], IngestSettings(), min_time_steps=1).sizes["time"] == 1
 
 
 def test_repeated_or_backward_time_is_a_record_error(tmp_path):

@@ -207,7 +207,8 @@ def _s_coordinate_file(path, std):
                                                                   (nt, nk, n + 1, n))),
          "zz": (("time", "eta_c", "xi_c"), np.broadcast_to(eta_t[:, None, None], (nt, n, n)),
                 {"units": "m"}),
-         "hh": (("eta_c", "xi_c"), np.full((n, n), depth), {"units": "m"}),
+         "hh": (("eta_c", "xi_c"), np.where(np.arange(n) == 0, 40.0, depth)[None, :]
+                * np.ones((n, 1)), {"units": "m"}),
          "cs": (("s_c",), cs),
          "hc": ((), hc, {"units": "m"}),
          "lon_c": (("eta_c", "xi_c"), lo, {"units": "degrees_east"}),
@@ -240,6 +241,9 @@ def test_s_coordinate_velocity_at_depth(tmp_path, std, method):
         # check: CF conventions 1.8, Appendix D heights; nearest level by numpy.argmin
         np.testing.assert_allclose(ds.u.values[:, 2, 2], expected, rtol=1e-5)
     np.testing.assert_allclose(ds.v.values[:, 2, 2], -ds.u.values[:, 2, 2], rtol=1e-6)
+    # check: common practice, no source (a 40 m deep column has no water at 55 m: land there)
+    assert (ds.mask.values[:, 0] == 0).all() and np.isnan(ds.u.values[:, :, 0]).all()
+    assert (ds.mask.values[:, 1:] == 1).all()
 
 
 def _ssh_file(path, lat0, lat1, step=0.05, units="m", scale=1.0):
@@ -260,7 +264,8 @@ def _ssh_file(path, lat0, lat1, step=0.05, units="m", scale=1.0):
     deta_dy = -eta * (phi - phi0) / sig**2 / A
     deta_dx = -eta * (lam - lam0) / sig**2 / (A * np.cos(phi))
     f = 2 * 7.2921e-5 * np.sin(phi)
-    return path, amp * (-G / f * deta_dy), amp * (G / f * deta_dx)
+    with np.errstate(divide="ignore", invalid="ignore"):  # f = 0 on the equator row
+        return path, amp * (-G / f * deta_dy), amp * (G / f * deta_dx)
 
 
 def test_ssh_only_gives_geostrophic_velocity(tmp_path):
@@ -287,3 +292,33 @@ def test_ssh_geostrophic_velocity_nan_near_equator(tmp_path):
     # check: Gill 1982 §7.6 (f -> 0 at the equator); band from the setting
     assert np.isnan(u[:, band]).all()
     assert np.isfinite(u[:, ~band][:, 10:-10]).all()
+
+
+@pytest.mark.parametrize("side", ["east", "west"])
+def test_equal_size_staggering_placed_by_coordinates(tmp_path, side):
+    n, step = 12, 0.05
+    lon_c = LON0 + step * np.arange(n)
+    lat_c = LAT0 + step * np.arange(n)
+    shift = 0.5 * step if side == "east" else -0.5 * step
+    lo, la = np.meshgrid(lon_c, lat_c)
+    alpha = 0.1  # u = alpha * (lon - LON0), v = alpha * (lat - LAT0), m s-1 per degree
+    u_faces = alpha * (lo + shift - LON0)
+    v_faces = alpha * (la + shift - LAT0)
+    ds = xr.Dataset(
+        {"u": (("time", "y_c", "x_u"), np.broadcast_to(u_faces, (2, n, n)), {"units": "m s-1"}),
+         "v": (("time", "y_v", "x_c"), np.broadcast_to(v_faces, (2, n, n)), {"units": "m s-1"}),
+         "lon_c": (("y_c", "x_c"), lo, {"units": "degrees_east"}),
+         "lat_c": (("y_c", "x_c"), la, {"units": "degrees_north"}),
+         "lon_u": (("y_c", "x_u"), lo + shift, {"units": "degrees_east"}),
+         "lat_u": (("y_c", "x_u"), la, {"units": "degrees_north"}),
+         "lon_v": (("y_v", "x_c"), lo, {"units": "degrees_east"}),
+         "lat_v": (("y_v", "x_c"), la + shift, {"units": "degrees_north"})},
+        coords={"time": ("time", [0.0, 1.0], TIME_ATTRS)})
+    path = tmp_path / f"equal_{side}.nc"
+    ds.to_netcdf(path)
+    out = open_dataset([path], IngestSettings())
+    inner = (slice(1, -1), slice(1, -1))
+    # check: analytic, the mean of the two faces of a linear field is its centre value
+    # (second-order C-grid interpolation, Cushman-Roisin & Beckers 2011 ch. 5)
+    np.testing.assert_allclose(out.u.values[0][inner], alpha * (lo - LON0)[inner], atol=1e-6)
+    np.testing.assert_allclose(out.v.values[0][inner], alpha * (la - LAT0)[inner], atol=1e-6)

@@ -54,6 +54,13 @@ def test_plane_wave_speed_by_both_methods(speed: float, wavelength: float) -> No
     assert estimate.direction == np.sign(speed)  # check: planted in generator (direction of travel)
 
 
+@pytest.mark.parametrize(("speed", "wavelength", "n_t"), [(0.3, 120.0, 3000), (-12.0, 300.0, 400), (25.0, 400.0, 400)])
+def test_reported_speed_over_a_wide_range(speed: float, wavelength: float, n_t: int) -> None:
+    estimate = propagation_speed(_wave(speed, wavelength, n_t=n_t, noise=0.3, seed=2), DT_DAYS, DD_KM)
+    assert estimate.speed == pytest.approx(speed, rel=0.02)  # check: planted in generator (phase speed of the wave)
+    assert estimate.speed_lo <= estimate.speed <= estimate.speed_hi
+
+
 def test_translating_eddies_speed_and_interval() -> None:
     estimates = [propagation_speed(_eddies(4.0, seed=seed), DT_DAYS, DD_KM) for seed in range(8)]
     reported = np.array([e.speed for e in estimates])

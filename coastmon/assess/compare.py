@@ -20,7 +20,10 @@ files of the output contract (``sources.csv``, ``capes.csv``, ``results.nc``):
   scale are ``ln F − ln F_lo`` and ``ln F_hi − ln F``; for independent runs the log-ratio
   half-widths add in quadrature: lower ``sqrt(dB_lo² + dA_hi²)``, upper
   ``sqrt(dB_hi² + dA_lo²)`` (first-order error propagation, e.g. Taylor 1997, *An
-  Introduction to Error Analysis*, ch. 3). Non-positive feeds or bounds give NaN.
+  Introduction to Error Analysis*, ch. 3). When a feed or a bound is not positive (a
+  bootstrap interval that reaches zero or below), the log scale is undefined and the
+  linear first-order rule is used instead: standard errors ``(F_hi − F_lo)/(2 × 1.96)``,
+  relative errors added in quadrature, interval ``r ± 1.96 σ_r``. Zero feeds give NaN.
 * **Along-shore EKE profile**: B's near-shore EKE profile is put onto A's stations
   (linear interpolation in ``alongshore_km`` within each segment on a shared frame;
   otherwise the nearest B station within :func:`profile_tolerance_km`), then the Pearson
@@ -205,6 +208,8 @@ def feed_ratio(feed_a: np.ndarray, lo_a: np.ndarray, hi_a: np.ndarray, feed_b: n
                lo_b: np.ndarray, hi_b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     r"""Ratio B/A of two feeds with a combined 95 % interval.
 
+    Where both feeds and all four bounds are positive (log scale):
+
     .. math::
         r = F_B / F_A,\quad
         r_{lo} = r\,e^{-\sqrt{\delta_{B,lo}^2 + \delta_{A,hi}^2}},\quad
@@ -212,20 +217,29 @@ def feed_ratio(feed_a: np.ndarray, lo_a: np.ndarray, hi_a: np.ndarray, feed_b: n
 
     with :math:`\delta_{lo} = \ln F - \ln F_{lo}` and :math:`\delta_{hi} = \ln F_{hi} -
     \ln F`: both intervals read as 95 % intervals of log-normal estimates, independent
-    errors added in quadrature on the log scale (Taylor 1997, ch. 3). NaN where a feed or
-    a bound is not positive.
+    errors added in quadrature on the log scale (Taylor 1997, ch. 3). Elsewhere (linear
+    first-order rule, same source): :math:`\sigma = (F_{hi} - F_{lo}) / (2 z_{0.975})`,
+    :math:`\sigma_r = |r| \sqrt{(\sigma_A/F_A)^2 + (\sigma_B/F_B)^2}`, interval
+    :math:`r \pm z_{0.975}\,\sigma_r`. NaN where a feed is zero or not finite.
     """
-    arrays = [np.asarray(x, dtype=float) for x in (feed_a, lo_a, hi_a, feed_b, lo_b, hi_b)]
+    arrays = [np.atleast_1d(np.asarray(x, dtype=float)) for x in
+              (feed_a, lo_a, hi_a, feed_b, lo_b, hi_b)]
     fa, la, ha, fb, lb, hb = arrays
-    ok = np.all([np.isfinite(x) & (x > 0) for x in arrays], axis=0)
+    positive = np.all([np.isfinite(x) & (x > 0) for x in arrays], axis=0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        ratio = np.where((fa > 0) & (fb > 0), fb / fa, np.nan)
-        lfa, lla, lha = np.log(fa), np.log(la), np.log(ha)
-        lfb, llb, lhb = np.log(fb), np.log(lb), np.log(hb)
+        usable = np.isfinite(fa) & np.isfinite(fb) & (fa != 0)
+        ratio = np.where(usable, fb / fa, np.nan)
+        lfa, lla, lha = np.log(np.abs(fa)), np.log(np.abs(la)), np.log(np.abs(ha))
+        lfb, llb, lhb = np.log(np.abs(fb)), np.log(np.abs(lb)), np.log(np.abs(hb))
         down = np.sqrt((lfb - llb) ** 2 + (lha - lfa) ** 2)
         up = np.sqrt((lhb - lfb) ** 2 + (lfa - lla) ** 2)
-        lo = np.where(ok, ratio * np.exp(-down), np.nan)
-        hi = np.where(ok, ratio * np.exp(up), np.nan)
+        sa = (ha - la) / (2.0 * Z95)
+        sb = (hb - lb) / (2.0 * Z95)
+        sr = np.abs(ratio) * np.sqrt((sa / fa) ** 2 + (sb / fb) ** 2)
+        lo = np.where(positive, ratio * np.exp(-down), ratio - Z95 * sr)
+        hi = np.where(positive, ratio * np.exp(up), ratio + Z95 * sr)
+    lo = np.where(usable & np.isfinite(lo), lo, np.nan)
+    hi = np.where(usable & np.isfinite(hi), hi, np.nan)
     return ratio, lo, hi
 
 
@@ -426,8 +440,8 @@ def compare_folders(a_dir: str | os.PathLike[str], b_dir: str | os.PathLike[str]
         notes.append(f"Only {len(matched)} source(s) matched; a rank correlation needs at "
                      "least three.")
     if len(matched) and not np.isfinite(rlo).all():
-        notes.append("Some feed ratios have no interval: a feed or an interval bound is not "
-                     "positive, so the log-scale propagation is undefined there.")
+        notes.append("Some feed ratios have no interval: a feed is zero or an interval bound "
+                     "is missing.")
     unmatched_a = [_source_record(r) for i, r in a.sources.iterrows() if i not in set(ia)]
     unmatched_b = [_source_record(r) for i, r in b.sources.iterrows() if i not in set(ib)]
 

@@ -365,8 +365,8 @@ def extract_coastline(
     >>> mask = (np.hypot(lon, lat) > 0.5).astype(int)
     >>> coast = extract_coastline(lon, lat, mask, CoastSettings())
     >>> seg = coast.segments[0]
-    >>> seg.closed, seg.island, round(seg.length_km / 100)
-    (True, True, 3)
+    >>> seg.closed, seg.island, round(seg.length_km / 10)
+    (True, True, 35)
     """
     lon = np.asarray(lon, dtype=float)
     lat = np.asarray(lat, dtype=float)

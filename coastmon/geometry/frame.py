@@ -22,9 +22,6 @@ from coastmon.geometry.coastline import Coastline, local_projection, wrap_longit
 
 __all__ = ["Frame", "GridLocator", "bilinear_sampler", "build_frame"]
 
-_NEIGHBOURS_CHECKED = 4
-
-
 class GridLocator:
     """Find the fractional (row, column) index of points on a regular or curvilinear grid.
 
@@ -339,35 +336,30 @@ def _first_stop(sea_frac: np.ndarray, distances: np.ndarray, start_km: float) ->
     return np.where(bad.any(axis=1), distances[first], np.inf)
 
 
-def _crossing_limits(px, py, nx_, ny_, reach, segment_of, closed_of, max_lag: int) -> np.ndarray:
-    """Truncate normals so that no two of the same segment, up to max_lag apart, cross.
+def _crossing_limits(px, py, nx_, ny_, reach) -> np.ndarray:
+    """Truncate sections so that no two of them cross.
 
-    Rays p_i + a n_i (0 <= a < reach_i). Where rays i and j meet at distances a_i, a_j, both
-    within reach, each is cut just before the meeting point.
+    Sections are p_i + a n_i (0 <= a < reach_i). For every pair of stations closer than
+    twice the longest reach (found with a KD-tree), where the two sections meet at distances
+    a_i, a_j, both within reach, each is cut just before the meeting point.
     """
     limit = reach.copy()
-    n = px.size
-    idx = np.arange(n)
-    for lag in range(1, max_lag + 1):
-        j = idx + lag
-        wrap = j >= n
-        j = np.where(wrap, j - n, j)
-        same = segment_of[idx] == segment_of[j]
-        same &= ~wrap | closed_of[idx]
-        same &= idx != j
-        i_sel, j_sel = idx[same], j[same]
-        if i_sel.size == 0:
-            continue
-        det = nx_[i_sel] * (-ny_[j_sel]) - ny_[i_sel] * (-nx_[j_sel])
-        dx = px[j_sel] - px[i_sel]
-        dy = py[j_sel] - py[i_sel]
-        safe = np.abs(det) > 1e-9
-        det_s = np.where(safe, det, 1.0)
-        a_i = (dx * (-ny_[j_sel]) - dy * (-nx_[j_sel])) / det_s
-        a_j = (nx_[i_sel] * dy - ny_[i_sel] * dx) / det_s
-        meet = safe & (a_i > 0) & (a_j > 0) & (a_i < reach[i_sel]) & (a_j < reach[j_sel])
-        np.minimum.at(limit, i_sel[meet], a_i[meet])
-        np.minimum.at(limit, j_sel[meet], a_j[meet])
+    finite = np.isfinite(reach)
+    radius = 2.0 * float(np.max(reach[finite])) if np.any(finite) else 0.0
+    pairs = cKDTree(np.column_stack([px, py])).query_pairs(r=radius, output_type="ndarray")
+    if pairs.size == 0:
+        return limit
+    i_sel, j_sel = pairs[:, 0], pairs[:, 1]
+    det = nx_[i_sel] * (-ny_[j_sel]) - ny_[i_sel] * (-nx_[j_sel])
+    dx = px[j_sel] - px[i_sel]
+    dy = py[j_sel] - py[i_sel]
+    safe = np.abs(det) > 1e-9
+    det_s = np.where(safe, det, 1.0)
+    a_i = (dx * (-ny_[j_sel]) - dy * (-nx_[j_sel])) / det_s
+    a_j = (nx_[i_sel] * dy - ny_[i_sel] * dx) / det_s
+    meet = safe & (a_i > 0) & (a_j > 0) & (a_i < reach[i_sel]) & (a_j < reach[j_sel])
+    np.minimum.at(limit, i_sel[meet], a_i[meet])
+    np.minimum.at(limit, j_sel[meet], a_j[meet])
     return limit
 
 
@@ -404,8 +396,8 @@ def build_frame(
     ``min_scale_km``, so they follow the cape-scale shape and not the grid steps. A section
     is cut at the first land (bilinear sea fraction < 0.5, checked every half grid cell
     beyond the first cell) or the domain edge, and just before it would cross the section
-    of one of the four nearest stations on either side on the same segment (which happens
-    at concave bends). *Rays* run along the latitude circle, at the distance
+    of any other station (at concave bends, or where sections converge across a bay).
+    *Rays* run along the latitude circle, at the distance
     d / (N(phi) cos phi) in longitude on the WGS84 ellipsoid, N the prime-vertical radius,
     westward (-1) when the offshore normal points west of north-south, eastward (+1) when
     it points east; they stop at the first land or the domain edge. A station gets no ray
@@ -429,7 +421,7 @@ def build_frame(
     n_ray = int(np.floor(settings.ray_length_km / settings.ray_spacing_km + 1e-9))
     ray_km = settings.ray_spacing_km * np.arange(1, n_ray + 1)
 
-    px, py, tx, ty, seg_of, closed_of, along = [], [], [], [], [], [], []
+    px, py, tx, ty, seg_of, along = [], [], [], [], [], []
     for seg in coastline.segments:
         s_st = _station_positions(seg.length_km, settings.station_spacing_km, seg.closed)
         _, _, dx, dy, _, _ = smoothed_derivatives(seg.x_km, seg.y_km, settings.min_scale_km,
@@ -439,11 +431,10 @@ def build_frame(
         tx.append(_along_interp(seg, s_st, dx))
         ty.append(_along_interp(seg, s_st, dy))
         seg_of.append(np.full(s_st.size, seg.segment_id))
-        closed_of.append(np.full(s_st.size, seg.closed))
         along.append(s_st)
     px, py = np.concatenate(px), np.concatenate(py)
     tx, ty = np.concatenate(tx), np.concatenate(ty)
-    seg_of, closed_of = np.concatenate(seg_of), np.concatenate(closed_of)
+    seg_of = np.concatenate(seg_of)
     along = np.concatenate(along)
     norm = np.hypot(tx, ty)
     nx_, ny_ = ty / norm, -tx / norm
@@ -453,7 +444,7 @@ def build_frame(
     step = 0.5 * cell_km
     start = 0.75 * cell_km
 
-    # Sections: land and domain-edge cut, then no crossing of neighbouring sections.
+    # Sections: land and domain-edge cut, then no crossing of other sections.
     reach_max = offsets[-1] + step
     d_fine = np.arange(0.0, reach_max + step, step)
     fx = px[:, None] + d_fine[None, :] * nx_[:, None]
@@ -461,8 +452,7 @@ def build_frame(
     flon, flat = coastline.to_lonlat(fx.ravel(), fy.ravel())
     frac = _sea_fraction(locator, sea, flon, flat).reshape(fx.shape)
     reach = _first_stop(frac, d_fine, start)
-    reach = _crossing_limits(px, py, nx_, ny_, np.minimum(reach, reach_max), seg_of, closed_of,
-                             _NEIGHBOURS_CHECKED)
+    reach = _crossing_limits(px, py, nx_, ny_, np.minimum(reach, reach_max))
     sec_ok = offsets[None, :] < reach[:, None]
     sx = px[:, None] + offsets[None, :] * nx_[:, None]
     sy = py[:, None] + offsets[None, :] * ny_[:, None]

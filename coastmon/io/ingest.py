@@ -24,6 +24,7 @@ from pathlib import Path
 import dask.array as dsa
 import numpy as np
 import xarray as xr
+from xarray.backends import NetCDF4BackendEntrypoint, ZarrBackendEntrypoint
 
 from coastmon.config import IngestSettings
 from coastmon.errors import InputError, RecordError
@@ -32,7 +33,7 @@ from coastmon.grid.operators import geostrophic_velocity
 from coastmon.io import sgrid, vertical
 from coastmon.io.units import scale_factor
 
-CHUNK_BUDGET_BYTES = 192 * 2**20
+CHUNK_BUDGET_BYTES = 128 * 2**20
 """Target size of one time chunk of the largest input variable (bytes)."""
 MAX_SPEED_M_S = 20.0
 """Speeds above this (or infinite) are taken as corrupt data, not ocean currents."""
@@ -51,11 +52,11 @@ _PLAIN_UV = (("u", "v"), ("uvel", "vvel"), ("u_velocity", "v_velocity"),
 _SSH_STD = ("sea_surface_height_above_geoid", "sea_surface_height_above_mean_sea_level",
             "sea_surface_height_above_sea_level", "sea_surface_height",
             "sea_surface_elevation", "sea_surface_height_above_reference_ellipsoid")
-_SSH_NAMES = ("ssh", "eta", "sea_level", "sea_surface_height", "sla", "adt", "zos")
+_SSH_NAMES = ("ssh", "eta", "sea_level", "sea_surface_height", "sla", "adt")
 _BATHY_STD = ("sea_floor_depth_below_geoid", "sea_floor_depth_below_mean_sea_level",
               "sea_floor_depth_below_sea_surface", "sea_floor_depth_below_reference_ellipsoid",
               "sea_floor_depth")
-_BATHY_NAMES = ("bathymetry", "bathy", "depth", "h", "deptho", "sea_floor_depth")
+_BATHY_NAMES = ("bathymetry", "bathy", "depth", "h", "sea_floor_depth")
 _ANGLE_STD = "angle_of_rotation_from_east_to_x"
 _LAT_UNITS = {"degrees_north", "degree_north", "degree_n", "degrees_n", "degreen", "degreesn"}
 _LON_UNITS = {"degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"}
@@ -135,11 +136,27 @@ def _check_classic_size(path: Path) -> None:
                          where=str(path), todo="Copy or download the file again") from None
 
 
+def _has_consolidated(path: Path) -> bool:
+    """Whether a Zarr store carries consolidated metadata (format 2 or 3)."""
+    if (path / ".zmetadata").exists():
+        return True
+    meta = path / "zarr.json"
+    if meta.exists():
+        try:
+            return json.loads(meta.read_text()).get("consolidated_metadata") is not None
+        except (OSError, ValueError):
+            return False
+    return False
+
+
 def _open(path: Path, kind: str, chunks: dict | None) -> xr.Dataset:
     try:
+        # Backend classes, not names: naming one would import every installed xarray plugin.
         if kind == "zarr":
-            return xr.open_zarr(path, chunks=chunks, consolidated=None, decode_timedelta=False)
-        return xr.open_dataset(path, chunks=chunks, cache=False, decode_timedelta=False)
+            return xr.open_dataset(path, engine=ZarrBackendEntrypoint, chunks=chunks,
+                                   consolidated=_has_consolidated(path), decode_timedelta=False)
+        return xr.open_dataset(path, engine=NetCDF4BackendEntrypoint, chunks=chunks, cache=False,
+                               decode_timedelta=False)
     except Exception as exc:  # the backends raise OSError, ValueError, KeyError, RuntimeError
         raise InputError(f"The file cannot be read ({type(exc).__name__}: {exc}); it may be "
                          "truncated or damaged", where=str(path),
@@ -312,8 +329,12 @@ def _centre_dims(ds: xr.Dataset, plan: _Plan) -> None:
         want = (size[uy], size[vx])
         owners = [v.dims[-2:] for n, v in ds.variables.items()
                   if v.ndim >= 2 and tuple(v.shape[-2:]) == want
+                  and not {ux, vy} & set(v.dims[-2:])
                   and (_is_lat(v, str(n)) or _is_lon(v, str(n)))]
-        plan.ydim, plan.xdim = (str(owners[0][0]), str(owners[0][1])) if owners else (uy, vx)
+        if (uy, vx) in owners or not owners:
+            plan.ydim, plan.xdim = uy, vx
+        else:
+            plan.ydim, plan.xdim = str(owners[0][0]), str(owners[0][1])
     ny, nx = size[plan.ydim], size[plan.xdim]
     pad_x = topo.padding_for(plan.xdim) if topo else None
     pad_y = topo.padding_for(plan.ydim) if topo else None
@@ -397,14 +418,21 @@ def _plan(ds: xr.Dataset, s: IngestSettings, where: str, need_time: bool) -> _Pl
                              todo="Select a single value of the extra dimensions before coastmon")
         plan.zdim = middle[0] if middle else None
         zname = _vertical_std(ds, plan.zdim) if plan.zdim else None
-        if plan.ssh is None and zname is not None:
-            eta = vertical.parse_formula_terms(str(ds[zname].attrs.get("formula_terms", "")))
-            if eta.get("eta") in ds.data_vars:
-                plan.ssh = eta["eta"]
+        if zname is not None:
+            terms = vertical.parse_formula_terms(str(ds[zname].attrs.get("formula_terms", "")))
+            if plan.ssh is None and terms.get("eta") in ds.data_vars:
+                plan.ssh = terms["eta"]
+            if plan.bathymetry is None and terms.get("depth") in ds.data_vars:
+                plan.bathymetry = terms["depth"]
     else:
         static = next(n for n in [*masks, plan.bathymetry] if n is not None)
         plan.ydim, plan.xdim = _horizontal(ds, static, plan)
     centre = {plan.ydim, plan.xdim}
+    if plan.ssh is not None and tuple(ds[plan.ssh].dims[-2:]) != (plan.ydim, plan.xdim):
+        raise InputError(
+            f"The sea surface height '{plan.ssh}' has dimensions {ds[plan.ssh].dims}, not the "
+            f"cell-centre grid ({plan.ydim}, {plan.xdim}) of the velocity", where=where,
+            todo="Name the matching variable with ingest.ssh_var, or give SSH on the same grid")
     for name in masks:
         hdims = set(ds[name].dims) - ({plan.tdim} if plan.tdim else set())
         if hdims == centre and plan.mask is None:
@@ -433,6 +461,14 @@ def _plan(ds: xr.Dataset, s: IngestSettings, where: str, need_time: bool) -> _Pl
                 todo="Name the angle variable (grid x-axis anticlockwise from east) with "
                      "ingest.angle_var, or give it standard_name angle_of_rotation_from_east_to_x")
     plan.lat, plan.lon = _find_latlon(ds, plan.ydim, plan.xdim, where)
+    topo = sgrid.find_topology(ds)
+    if topo is not None and len(topo.face_coordinates) == 2:
+        named = [n for n in topo.face_coordinates
+                 if n in ds.variables and set(ds[n].dims) <= centre]
+        lats = [n for n in named if _is_lat(ds[n], n)]
+        lons = [n for n in named if _is_lon(ds[n], n)]
+        if lats and lons:
+            plan.lat, plan.lon = lats[0], lons[0]
     return plan
 
 
@@ -615,8 +651,9 @@ def _guarded(da: xr.DataArray, limit: float, what: str, files: list[str],
 
 def _geostrophic_block(ssh: np.ndarray, metrics: GridMetrics, band: float) -> np.ndarray:
     """Dask kernel: (2, t, y, x) float32 geostrophic velocity of an SSH time chunk."""
-    ug, vg = geostrophic_velocity(np.asarray(ssh, dtype=np.float64), metrics,
-                                  equator_band_deg=band)
+    with np.errstate(invalid="ignore", divide="ignore"):  # f = 0 inside the equator band
+        ug, vg = geostrophic_velocity(np.asarray(ssh, dtype=np.float64), metrics,
+                                      equator_band_deg=band)
     return np.stack([ug, vg]).astype(np.float32)
 
 
@@ -654,7 +691,7 @@ def _lon_2d(lon: np.ndarray) -> np.ndarray:
 
 
 def open_dataset(paths: list[str | Path], settings: IngestSettings,
-                 need_time: bool = True) -> xr.Dataset:
+                 need_time: bool = True, min_time_steps: int = 2) -> xr.Dataset:
     """Open one or many NetCDF files, or a Zarr store, as the canonical dataset.
 
     Parameters
@@ -668,6 +705,9 @@ def open_dataset(paths: list[str | Path], settings: IngestSettings,
         True for the analysis (velocity or SSH over at least two time steps is required).
         False for geometry only: a file with just a land/sea mask (or bathymetry) is
         enough, and the result holds only ``lon``, ``lat``, ``mask`` and ``bathymetry``.
+    min_time_steps : int
+        Fewest time steps accepted when ``need_time`` (2 for statistics; 1 for appending new
+        data to an existing record).
 
     Returns
     -------
@@ -680,7 +720,7 @@ def open_dataset(paths: list[str | Path], settings: IngestSettings,
         A file is missing, empty, truncated or not NetCDF/Zarr; no velocity/SSH, no
         latitude/longitude; mismatched shapes; unknown units; impossible values.
     RecordError
-        Fewer than two time steps, or times that repeat or go backwards.
+        Fewer than ``min_time_steps`` time steps, or times that repeat or go backwards.
     """
     if not paths:
         raise InputError("No input files were given", where="command line",
@@ -694,7 +734,7 @@ def open_dataset(paths: list[str | Path], settings: IngestSettings,
     file_list = json.loads(raw.attrs.get("_files", json.dumps([str(files[0].resolve())])))
     lengths = json.loads(raw.attrs.get("_lengths", "[]"))
     if need_time:
-        _check_time(raw, plan, file_list, lengths, where)
+        _check_time(raw, plan, file_list, lengths, where, min_time_steps)
     builder = _Builder(raw, plan, settings, where, need_time)
     out = builder.build()
     out.attrs["source_files"] = json.dumps(file_list)
@@ -714,14 +754,15 @@ def open_mask(paths: list[str | Path], settings: IngestSettings) -> xr.Dataset:
 
 
 def _check_time(raw: xr.Dataset, plan: _Plan, files: list[str], lengths: list[int],
-                where: str) -> None:
+                where: str, min_steps: int) -> None:
     if plan.tdim is None or plan.tdim not in raw.variables:
         raise RecordError("The data have no time coordinate; statistics need a time record",
                           where=where,
                           todo="Give files whose velocity or SSH has a CF time coordinate")
     n = raw.sizes[plan.tdim]
-    if n < 2:
-        raise RecordError(f"The record has {n} time step; eddy statistics need a time record",
+    if n < min_steps:
+        raise RecordError(f"The record has {n} time step(s); eddy statistics need at least "
+                          f"{min_steps}",
                           where=where, todo="Give several time steps (files of one series)")
     t = raw[plan.tdim].values
     steps = np.array([b > a for a, b in zip(t[:-1], t[1:], strict=True)])
@@ -756,8 +797,9 @@ class _Builder:
         return vertical.select_levels(da, p.zdim, depths, self.s.depth_m, self.s.depth_method,
                                       self.where)
 
-    def _parametric(self, da: xr.DataArray, eta: xr.DataArray | None) -> xr.DataArray:
-        p, raw = self.plan, self.raw
+    def _parametric(self, raw: xr.Dataset, da: xr.DataArray,
+                    eta: xr.DataArray | None) -> xr.DataArray:
+        p = self.plan
         zname = _vertical_std(raw, p.zdim) if p.zdim else None
         if zname is None or p.zdim not in da.dims:
             return da
@@ -778,7 +820,7 @@ class _Builder:
                 terms[key] = raw[name]
         if eta is not None:
             terms["eta"] = eta
-        elif p.tdim in terms["eta"].dims:
+        elif p.tdim and p.tdim in terms["eta"].dims:
             terms["eta"] = terms["eta"].rename({p.tdim: "time"})
         if self.s.depth_m is None:
             level_var = terms["sigma" if std == "ocean_sigma_coordinate" else "s"]
@@ -789,8 +831,8 @@ class _Builder:
         return vertical.select_parametric(da, heights, -terms["depth"], p.zdim,
                                           self.s.depth_m, self.s.depth_method)
 
-    def _velocity(self) -> tuple[xr.DataArray, xr.DataArray]:
-        p, raw = self.plan, self.raw
+    def _velocity(self, raw: xr.Dataset) -> tuple[xr.DataArray, xr.DataArray]:
+        p = self.plan
         assert p.u is not None and p.v is not None
         u = self._select_level(_in_units(raw, p.u, "m s-1", self.where))
         v = self._select_level(_in_units(raw, p.v, "m s-1", self.where))
@@ -890,29 +932,27 @@ class _Builder:
 
     # -- assemble --------------------------------------------------------------------
 
+    def _fields(self, raw: xr.Dataset) -> list[xr.DataArray | None]:
+        """Lazy canonical u, v, ssh (dims time, y, x in file order) from ``raw``."""
+        p = self.plan
+        u = v = ssh = None
+        rename = {p.tdim: "time"} if p.tdim and p.tdim in raw.dims else {}
+        if p.ssh is not None:
+            ssh = self._select_level(_in_units(raw, p.ssh, "m", self.where)).rename(rename)
+            ssh = ssh.drop_vars(list(ssh.coords))
+        if p.u is not None:
+            u, v = self._velocity(raw)
+            u = self._parametric(raw, u.rename(rename), ssh)
+            v = self._parametric(raw, v.rename(rename), ssh)
+            u, v = self._rotate(u, v)
+            u, v = self._canonical(u), self._canonical(v)
+        if ssh is not None:
+            ssh = self._canonical(ssh)
+        return [u, v, ssh]
+
     def build(self) -> xr.Dataset:
         p, s = self.plan, self.s
         have_time = self.need_time and p.tdim is not None
-        u = v = ssh = None
-        if have_time and p.ssh is not None:
-            ssh = self._select_level(_in_units(self.raw, p.ssh, "m", self.where))
-        if have_time and p.u is not None:
-            u, v = self._velocity()
-            eta = ssh.rename({p.tdim: "time"}) if ssh is not None and p.tdim else None
-            if eta is not None:
-                eta = eta.drop_vars(list(eta.coords))
-            u = self._parametric(u.rename({p.tdim: "time"}), eta)
-            v = self._parametric(v.rename({p.tdim: "time"}), eta)
-            u, v = self._rotate(u, v)
-            u, v = self._canonical(u), self._canonical(v)
-        elif p.u is not None:
-            u, v = self._first_static()
-        elif not have_time and p.ssh is not None:
-            ssh = self._select_level(_in_units(self.raw, p.ssh, "m", self.where))
-            if p.tdim and p.tdim in ssh.dims:
-                ssh = ssh.isel({p.tdim: 0})
-        if ssh is not None:
-            ssh = self._canonical(ssh)
         lon2, lat2, y_order, x_order = self._coords()
 
         def reorder(da):
@@ -920,10 +960,11 @@ class _Builder:
                 return da
             return da.isel(y=y_order, x=x_order)
 
-        u, v, ssh = reorder(u), reorder(v), reorder(ssh)
-        first = [None if da is None else (_first_step(da, "time") if "time" in da.dims
-                                          else np.asarray(da.values, dtype=np.float64))
-                 for da in (u, v, ssh)]
+        # The first time step is taken before any other operation, so only it is read.
+        head = self.raw.isel({p.tdim: slice(0, 1)}) if p.tdim else self.raw
+        first = [None if da is None else _first_step(reorder(da), "time")
+                 for da in self._fields(head)]
+        u, v, ssh = (reorder(da) for da in self._fields(self.raw)) if have_time else (None,) * 3
         mask = self._mask(*first) if p.mask is None else self._reorder_np(
             _mask_from_variable(self.raw, p.mask, p), y_order, x_order)
         bathy = self._reorder_np(self._bathymetry(), y_order, x_order)
@@ -963,17 +1004,6 @@ class _Builder:
                           "velocity_kind": (velocity_kind if have_time else "none"),
                           "Conventions": "CF-1.8"})
         return out
-
-    def _first_static(self) -> tuple[xr.DataArray, xr.DataArray]:
-        """Velocity at the first time step (geometry only: used for the mask)."""
-        p = self.plan
-        u, v = self._velocity()
-        if p.tdim and p.tdim in u.dims:
-            u, v = u.isel({p.tdim: 0}), v.isel({p.tdim: 0})
-        u, v = self._rotate(u, v)
-        if p.zdim and p.zdim in u.dims:
-            u, v = u.isel({p.zdim: -1}), v.isel({p.zdim: -1})
-        return self._canonical(u), self._canonical(v)
 
     @staticmethod
     def _reorder_np(values, y_order, x_order):

@@ -43,15 +43,12 @@ class SgridTopology:
         Name of the topology variable.
     face_pairs : tuple of (face_dim, node_dim, padding)
         From ``face_dimensions``; padding is None when not given.
-    vertical_pairs : tuple of (centre_dim, edge_dim, padding)
-        From ``vertical_dimensions`` (empty for 2-D grids).
     face_coordinates : tuple of str
         From ``face_coordinates`` (names of the centre lon/lat variables), may be empty.
     """
 
     name: str
     face_pairs: tuple[tuple[str, str, str | None], ...]
-    vertical_pairs: tuple[tuple[str, str, str | None], ...]
     face_coordinates: tuple[str, ...]
 
     @property
@@ -79,9 +76,8 @@ def find_topology(ds: xr.Dataset) -> SgridTopology | None:
     for name, var in ds.variables.items():
         if str(var.attrs.get("cf_role", "")).strip() == "grid_topology":
             faces = parse_dimension_pairs(str(var.attrs.get("face_dimensions", "")))
-            vertical = parse_dimension_pairs(str(var.attrs.get("vertical_dimensions", "")))
             coords = tuple(str(var.attrs.get("face_coordinates", "")).split())
-            return SgridTopology(str(name), faces, vertical, coords)
+            return SgridTopology(str(name), faces, coords)
     return None
 
 

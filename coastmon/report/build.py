@@ -102,15 +102,17 @@ def write_figures_and_report(stage: Path, prep, products, layers: dict, settings
                   if int(s) == seg_id]
     p = alongshore_figure(
         figdir / "alongshore_profiles.png", prof["alongshore_km"].values[seg0],
-        [("near-shore EKE (cm² s⁻²)", prof["eke_ns"].values[seg0] * 1e4),
-         ("near-shore ζ′ variance (10⁻¹⁰ s⁻²)", prof["zeta_var_ns"].values[seg0] * 1e10),
-         ("persistence (0–1)", prof["persistence"].values[seg0]),
-         ("along-shore localization (power / 95 % level)", prof["localization"].values[seg0])],
+        [("EKE (cm² s⁻²)", prof["eke_ns"].values[seg0] * 1e4),
+         ("ζ′ variance (10⁻¹² s⁻²)", prof["zeta_var_ns"].values[seg0] * 1e12),
+         ("persistence", prof["persistence"].values[seg0]),
+         ("localization", prof["localization"].values[seg0])],
         capes_km=capes_km, sources_km=sources_km)
-    figures.append(("Along-shore profiles on the main coast segment: near-shore eddy kinetic "
-                    "energy and vorticity variance, persistence of eddy-band shedding, and "
-                    "along-shore localization (values above 1 are significant). Capes marked "
-                    "above, sources by rank.", p))
+    figures.append(("Along-shore profiles on the main coast segment: (a) near-shore eddy "
+                    "kinetic energy, (b) near-shore relative-vorticity variance, (c) persistence: "
+                    "fraction of time with eddy-band shedding above the coast's red-noise "
+                    "background, (d) along-shore localization: scale-averaged wavelet power over "
+                    "its 95 % red-noise level (above 1 is significant). Capes in grey, sources "
+                    "by rank.", p))
     if series is not None:
         figures.extend(_top_source_figures(figdir, prep, products, settings, series))
     if len(products.sources):

@@ -174,8 +174,8 @@ def _check_paths_to_gate(params: ScenarioParams) -> None:
                 )
 
 
-def _truth(params: ScenarioParams, births: list[Birth], lon: NDArray[np.float64],
-           lat: NDArray[np.float64]) -> dict:
+def _truth(params: ScenarioParams, births: list[Birth], waves: NDArray[np.float64],
+           lon: NDArray[np.float64], lat: NDArray[np.float64]) -> dict:
     growth_s = params.growth_days * SECONDS_PER_DAY
     decay_s = params.decay_days * SECONDS_PER_DAY
     gate_m = params.gate_offset_km * 1000.0
@@ -260,6 +260,12 @@ def _truth(params: ScenarioParams, births: list[Birth], lon: NDArray[np.float64]
         "straight_stretch": params.straight_stretch_name if params.capes else params.coast_name,
         "mean_current_northward_m_s": params.current_northward_m_s,
         "mean_current_width_km": params.current_width_km,
+        "background_waves": [
+            {"zonal_wavelength_km": 2 * np.pi / k / 1000.0,
+             "meridional_wavenumber_per_km": l_wn * 1000.0,
+             "streamfunction_amplitude_m2_s": amp,
+             "zonal_phase_speed_m_s": omega / k}
+            for amp, k, l_wn, omega, _ in waves.tolist()],
         "births": [asdict(b) for b in births],
     }
     if not anchored:
@@ -307,9 +313,10 @@ def _create_variables(nc: netCDF4.Dataset, params: ScenarioParams, lon: NDArray[
         ("v", "northward_sea_water_velocity", "northward velocity", "m s-1"),
         ("ssh", "sea_surface_height_above_geoid", "sea surface height", "m"),
     ):
-        var = nc.createVariable(name, "f4", ("time", "lat", "lon"), zlib=params.compress,
-                                complevel=1, shuffle=params.compress, chunksizes=chunks,
-                                fill_value=np.float32(np.nan))
+        packing = {"zlib": True, "complevel": 1, "shuffle": True,
+                   "least_significant_digit": 4} if params.compress else {}
+        var = nc.createVariable(name, "f4", ("time", "lat", "lon"), chunksizes=chunks,
+                                fill_value=np.float32(np.nan), **packing)
         var.setncatts({"standard_name": standard_name, "long_name": long_name, "units": units,
                        "coverage_content_type": "modelResult"})
         out[name] = var
@@ -447,7 +454,7 @@ def make_scenario(params: ScenarioParams, out_dir: str | Path) -> tuple[Path, Pa
         with netCDF4.Dataset(tmp_nc, "w", format="NETCDF4") as nc:
             variables = _create_variables(nc, params, lon, lat, mask)
             _fill_fields(params, births, waves, lon, lat, mask, variables, noise_rng)
-        truth = _truth(params, births, lon, lat)
+        truth = _truth(params, births, waves, lon, lat)
         truth["parameters"] = params.to_toml()
         tmp_truth.write_text(json.dumps(truth, indent=1) + "\n", encoding="utf-8")
         os.replace(tmp_nc, nc_path)

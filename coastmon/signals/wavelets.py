@@ -164,6 +164,9 @@ def cwt_morlet(
     white noise eq. 14 then returns about 93 % of the variance. Pass ``s0 = dt / 2`` for
     a transform that preserves (nearly) all the variance of a white series.
 
+    The coefficients take ``16 * n_series * (J + 1) * n`` bytes (about 1 GB for 200
+    ten-year daily series); transform large sets of series in groups.
+
     Raises
     ------
     RecordError

@@ -1,7 +1,7 @@
 """Find the vorticity sources, measure the eddy energy they feed offshore, rank them."""
 
 from coastmon.sources.detect import alongshore_profiles, find_sources, nearest_cape
-from coastmon.sources.feed import GateSet, FeedResult, gate_set, offshore_feed, rank_sources
+from coastmon.sources.feed import FeedResult, GateSet, gate_set, offshore_feed, rank_sources
 from coastmon.sources.plumes import jet_spacing_km, mean_zonal_anomaly, plume_axes
 
 __all__ = [

@@ -26,6 +26,8 @@ Method
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pandas as pd
 import xarray as xr
@@ -66,12 +68,9 @@ def nearshore_anomaly(section: np.ndarray, offsets_km: np.ndarray, nearshore_km:
         near = np.zeros_like(near)
         near[0] = True
     sub = np.asarray(section[:, :, near], dtype=np.float64)
-    with np.errstate(invalid="ignore"):
-        anomaly = sub - np.nanmean(sub, axis=0, keepdims=True)
-    import warnings
-
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
+        anomaly = sub - np.nanmean(sub, axis=0, keepdims=True)
         return np.nanmean(anomaly, axis=2)
 
 
@@ -135,15 +134,28 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
         alpha = float(np.clip(lag1_autocorrelation(prof), 0.0, 0.95))
         power = scale_average(wt, band)
         sig = scale_average_significance(wt, alpha, band, level=s.significance)
+        # Background variance of the profile from its median absolute deviation, so that
+        # one strong source does not hide a weaker one (robust scale; Huber 1981).
+        mad = 1.4826 * np.median(np.abs(prof - np.median(prof)))
+        if wt.variance > 0 and mad > 0:
+            sig = sig * min(mad**2 / float(wt.variance), 1.0)
         localization[ok] = power / sig
 
     return xr.Dataset(
         {
-            "zeta_var_ns": ("station", zeta_var),
-            "eke_ns": ("station", eke),
-            "persistence": ("station", persistence),
-            "localization": ("station", localization),
-            "shedding_period_days": ("station", period),
+            "zeta_var_ns": ("station", zeta_var, {
+                "long_name": "variance of near-shore relative vorticity", "units": "s-2"}),
+            "eke_ns": ("station", eke, {
+                "long_name": "near-shore eddy kinetic energy per unit mass", "units": "m2 s-2"}),
+            "persistence": ("station", persistence, {
+                "long_name": "fraction of time with significant eddy-band vorticity power "
+                             "above the coast's red-noise background", "units": "1"}),
+            "localization": ("station", localization, {
+                "long_name": "along-shore scale-averaged wavelet power of near-shore vorticity "
+                             "variance over its 95 % red-noise level", "units": "1"}),
+            "shedding_period_days": ("station", period, {
+                "long_name": "period of largest time-averaged eddy-band wavelet power",
+                "units": "days"}),
         },
         coords={"station": np.arange(n_station)},
     )

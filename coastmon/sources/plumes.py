@@ -20,6 +20,8 @@ Method
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pandas as pd
 import xarray as xr
@@ -30,7 +32,9 @@ from coastmon.grid.metrics import haversine_m
 
 def mean_zonal_anomaly(series: xr.Dataset, frame, smooth_stations: float = 4.0) -> np.ndarray:
     """Time-mean zonal velocity on the rays minus its along-shore running mean (m s-1)."""
-    ubar = np.nanmean(np.asarray(series["ray_u"].values, dtype=np.float64), axis=0)  # (S, R)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # rays over land stay NaN
+        ubar = np.nanmean(np.asarray(series["ray_u"].values, dtype=np.float64), axis=0)
     out = np.full_like(ubar, np.nan)
     for _, idx in frame.stations.groupby("segment_id").indices.items():
         idx = np.asarray(idx)

@@ -48,14 +48,40 @@ def _compile(parallel: bool):
     return wrap
 
 
+@njit(nogil=True, inline="always")
+def _cell_to_point(zd, wd, t, j, i, ny, nx):  # pragma: no cover - compiled
+    # Same order as grid.metrics._to_points: the cell having this point as its vertex
+    # 0, then 1, 2, 3; invalid cells add exactly 0.
+    zt = 0.0
+    wt = 0.0
+    c = 0.0
+    if j < ny - 1 and i < nx - 1 and np.isfinite(zd[t, j, i]):
+        zt += zd[t, j, i]
+        wt += wd[t, j, i]
+        c += 1.0
+    if j < ny - 1 and i > 0 and np.isfinite(zd[t, j, i - 1]):
+        zt += zd[t, j, i - 1]
+        wt += wd[t, j, i - 1]
+        c += 1.0
+    if j > 0 and i > 0 and np.isfinite(zd[t, j - 1, i - 1]):
+        zt += zd[t, j - 1, i - 1]
+        wt += wd[t, j - 1, i - 1]
+        c += 1.0
+    if j > 0 and i < nx - 1 and np.isfinite(zd[t, j - 1, i]):
+        zt += zd[t, j - 1, i]
+        wt += wd[t, j - 1, i]
+        c += 1.0
+    if c > 0:
+        return zt / c, wt / c
+    return np.nan, np.nan
+
+
 @_compile(parallel=True)
-def _dual_fields(u, v, gx, gy, ow_threshold, zeta, core):  # pragma: no cover - compiled
+def _dual_fields(u, v, gx, gy, ow_threshold, zeta, core, zd, wd, wp):  # pragma: no cover
     nt, ny, nx = u.shape
-    for t in prange(nt):
-        zd = np.empty((ny - 1, nx - 1))
-        wd = np.empty((ny - 1, nx - 1))
-        wp = np.empty((ny, nx))
-        for j in range(ny - 1):
+    # 1. Dual cells, row by row; a row's 16 weight vectors stay in cache over all t.
+    for j in prange(ny - 1):
+        for t in range(nt):
             for i in range(nx - 1):
                 u0 = np.float64(u[t, j, i])
                 u1 = np.float64(u[t, j, i + 1])
@@ -82,61 +108,114 @@ def _dual_fields(u, v, gx, gy, ow_threshold, zeta, core):  # pragma: no cover - 
                 vy = vy + gy[2, j, i] * v2
                 vy = vy + gy[3, j, i] * v3
                 z = vx - uy
-                zd[j, i] = z
-                wd[j, i] = (ux - vy) ** 2 + (vx + uy) ** 2 - z**2
-        wsum = 0.0
-        wcount = 0
-        for j in range(ny):
+                zd[t, j, i] = z
+                wd[t, j, i] = (ux - vy) ** 2 + (vx + uy) ** 2 - z**2
+    # 2. Points: mean of the valid dual cells around each point; row sums of W per t.
+    rsum = np.zeros((ny, nt))
+    rcnt = np.zeros((ny, nt))
+    for j in prange(ny):
+        interior = 0 < j < ny - 1
+        for t in range(nt):
+            acc = 0.0
+            cnt = 0.0
             for i in range(nx):
-                # Same order as grid.metrics._to_points: the cell having this point as
-                # its vertex 0, then 1, 2, 3; invalid cells add exactly 0.
-                zt = 0.0
-                wt = 0.0
-                c = 0
-                if j < ny - 1 and i < nx - 1 and np.isfinite(zd[j, i]):
-                    zt += zd[j, i]
-                    wt += wd[j, i]
-                    c += 1
-                if j < ny - 1 and i > 0 and np.isfinite(zd[j, i - 1]):
-                    zt += zd[j, i - 1]
-                    wt += wd[j, i - 1]
-                    c += 1
-                if j > 0 and i > 0 and np.isfinite(zd[j - 1, i - 1]):
-                    zt += zd[j - 1, i - 1]
-                    wt += wd[j - 1, i - 1]
-                    c += 1
-                if j > 0 and i < nx - 1 and np.isfinite(zd[j - 1, i]):
-                    zt += zd[j - 1, i]
-                    wt += wd[j - 1, i]
-                    c += 1
-                if c > 0:
-                    zeta[t, j, i] = zt / c
-                    w = wt / c
-                    wp[j, i] = w
-                    if np.isfinite(w):
-                        wsum += w
-                        wcount += 1
+                if interior and 0 < i < nx - 1:
+                    a = zd[t, j, i]
+                    b = zd[t, j, i - 1]
+                    c = zd[t, j - 1, i - 1]
+                    d = zd[t, j - 1, i]
+                    fa = np.isfinite(a)
+                    fb = np.isfinite(b)
+                    fc = np.isfinite(c)
+                    fd = np.isfinite(d)
+                    zt = 0.0
+                    zt += a if fa else 0.0
+                    zt += b if fb else 0.0
+                    zt += c if fc else 0.0
+                    zt += d if fd else 0.0
+                    wt = 0.0
+                    wt += wd[t, j, i] if fa else 0.0
+                    wt += wd[t, j, i - 1] if fb else 0.0
+                    wt += wd[t, j - 1, i - 1] if fc else 0.0
+                    wt += wd[t, j - 1, i] if fd else 0.0
+                    n = (1.0 if fa else 0.0) + (1.0 if fb else 0.0)
+                    n += 1.0 if fc else 0.0
+                    n += 1.0 if fd else 0.0
+                    if n > 0:
+                        zp = zt / n
+                        w = wt / n
+                    else:
+                        zp = np.nan
+                        w = np.nan
                 else:
-                    zeta[t, j, i] = np.nan
-                    wp[j, i] = np.nan
-        # Spatial standard deviation of W over the valid points of this snapshot (two passes).
-        limit = -np.inf
-        if wcount > 0:
-            wmean = wsum / wcount
-            ss = 0.0
-            for j in range(ny):
-                for i in range(nx):
-                    if np.isfinite(wp[j, i]):
-                        ss += (wp[j, i] - wmean) ** 2
-            limit = -ow_threshold * np.sqrt(ss / wcount)
-        for j in range(ny):
+                    zp, w = _cell_to_point(zd, wd, t, j, i, ny, nx)
+                zeta[t, j, i] = zp
+                wp[t, j, i] = w
+                if np.isfinite(w):
+                    acc += w
+                    cnt += 1.0
+            rsum[j, t] = acc
+            rcnt[j, t] = cnt
+    # 3. Spatial standard deviation of W per snapshot (two passes), then the core flags.
+    total = rsum.sum(axis=0)
+    count = rcnt.sum(axis=0)
+    wmean = np.where(count > 0, total / np.maximum(count, 1.0), 0.0)
+    rss = np.zeros((ny, nt))
+    for j in prange(ny):
+        for t in range(nt):
+            acc = 0.0
+            m = wmean[t]
             for i in range(nx):
-                core[t, j, i] = 1 if wp[j, i] < limit else 0
+                w = wp[t, j, i]
+                acc += (w - m) ** 2 if np.isfinite(w) else 0.0
+            rss[j, t] = acc
+    ss = rss.sum(axis=0)
+    limit = np.where(count > 0, -ow_threshold * np.sqrt(ss / np.maximum(count, 1.0)), -np.inf)
+    for j in prange(ny):
+        for t in range(nt):
+            lim = limit[t]
+            for i in range(nx):
+                core[t, j, i] = 1 if wp[t, j, i] < lim else 0
     return 0
 
 
+class Workspace:
+    """Scratch arrays of :func:`dual_fields`, kept between chunks of one thread.
+
+    Reusing them avoids allocating (and page-faulting) several chunk-sized arrays per
+    chunk. The ``zeta`` and ``core`` arrays returned by :func:`dual_fields` are views into
+    the workspace, valid until its next use.
+    """
+
+    def __init__(self) -> None:
+        self._store: dict[str, np.ndarray] = {}
+
+    def _get(self, name: str, shape: tuple[int, ...], dtype) -> np.ndarray:
+        size = int(np.prod(shape))
+        buf = self._store.get(name)
+        if buf is None or buf.size < size:
+            buf = np.empty(size, dtype=dtype)
+            self._store[name] = buf
+        return buf[:size].reshape(shape)
+
+    def arrays(self, shape: tuple[int, int, int]):
+        nt, ny, nx = shape
+        return (
+            self._get("zeta", shape, np.float64),
+            self._get("core", shape, np.uint8),
+            self._get("zd", (nt, ny - 1, nx - 1), np.float64),
+            self._get("wd", (nt, ny - 1, nx - 1), np.float64),
+            self._get("wp", shape, np.float64),
+        )
+
+
 def dual_fields(
-    u: np.ndarray, v: np.ndarray, gx: np.ndarray, gy: np.ndarray, ow_threshold: float
+    u: np.ndarray,
+    v: np.ndarray,
+    gx: np.ndarray,
+    gy: np.ndarray,
+    ow_threshold: float,
+    workspace: Workspace | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     r"""Vorticity and Okubo–Weiss eddy-core flags at the grid points of a ``(t, y, x)`` block.
 
@@ -154,82 +233,110 @@ def dual_fields(
     u, v : (t, y, x) float32 or float64, NaN where missing.
     gx, gy : (4, y-1, x-1) Green's-theorem weights (:class:`~coastmon.grid.metrics.GridMetrics`).
     ow_threshold : the factor :math:`\theta`.
+    workspace : scratch arrays to reuse (a new one when None).
 
     Returns
     -------
     zeta : (t, y, x) float64, s-1, NaN where no valid dual cell touches the point.
     core : (t, y, x) uint8, 1 at eddy cores.
     """
-    zeta = np.empty(u.shape, dtype=np.float64)
-    core = np.empty(u.shape, dtype=np.uint8)
-    _dual_fields(u, v, gx, gy, float(ow_threshold), zeta, core)
+    if workspace is None:
+        workspace = Workspace()
+    zeta, core, zd, wd, wp = workspace.arrays(u.shape)
+    _dual_fields(u, v, gx, gy, float(ow_threshold), zeta, core, zd, wd, wp)
     return zeta, core
 
 
 @_compile(parallel=True)
-def _chunk_moments(u, v, z, h, has_h, core, tindex, pair_index, triples,
-                   n, mean, m2, m3, ow):  # pragma: no cover - compiled
+def _chunk_moments(u, v, z, h, has_h, core, tindex, n, mean, m2, m3, ow):  # pragma: no cover
+    # Written out variable by variable (pair packing as PAIR_INDEX, triples as TRIPLES) so
+    # that the inner loops over x are branch-free and vectorise.
     ny = u.shape[1]
     nx = u.shape[2]
-    nv = 4 if has_h else 3
-    npair = nv * (nv + 1) // 2
-    ntrip = triples.shape[0]
+    inf = np.inf
     for j in prange(ny):
         cnt = np.zeros(nx)
         cores = np.zeros(nx)
-        sums = np.zeros((nv, nx))
-        c2 = np.zeros((npair, nx))
-        c3 = np.zeros((ntrip, nx))
-        x = np.empty(nv)
+        s = np.zeros((4, nx))
+        c2 = np.zeros((10, nx))
+        c3 = np.zeros((4, nx))
         for tt in range(tindex.shape[0]):
             t = tindex[tt]
             for i in range(nx):
                 a = np.float64(u[t, j, i])
                 b = np.float64(v[t, j, i])
                 c = z[t, j, i]
-                d = np.float64(h[t, j, i]) if has_h else 0.0
-                good = np.isfinite(a) and np.isfinite(b) and np.isfinite(c) and np.isfinite(d)
-                if good:
-                    cnt[i] += 1.0
-                    sums[0, i] += a
-                    sums[1, i] += b
-                    sums[2, i] += c
-                    if has_h:
-                        sums[3, i] += d
-                    cores[i] += core[t, j, i]
+                d = np.float64(h[t, j, i])
+                ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf) & ((abs(d) < inf) | (not has_h))
+                cnt[i] += 1.0 if ok else 0.0
+                cores[i] += np.float64(core[t, j, i]) if ok else 0.0
+                s[0, i] += a if ok else 0.0
+                s[1, i] += b if ok else 0.0
+                s[2, i] += c if ok else 0.0
+                s[3, i] += d if ok and has_h else 0.0
         for i in range(nx):
-            if cnt[i] > 0:
-                for k in range(nv):
-                    sums[k, i] /= cnt[i]
+            scale = 1.0 / cnt[i] if cnt[i] > 0 else 0.0
+            for k in range(4):
+                s[k, i] *= scale
         for tt in range(tindex.shape[0]):
             t = tindex[tt]
-            for i in range(nx):
-                if cnt[i] == 0:
-                    continue
-                x[0] = np.float64(u[t, j, i]) - sums[0, i]
-                x[1] = np.float64(v[t, j, i]) - sums[1, i]
-                x[2] = z[t, j, i] - sums[2, i]
-                if has_h:
-                    x[3] = np.float64(h[t, j, i]) - sums[3, i]
-                good = True
-                for k in range(nv):
-                    if not np.isfinite(x[k]):
-                        good = False
-                if not good:
-                    continue
-                for a in range(nv):
-                    for b in range(a, nv):
-                        c2[pair_index[a, b], i] += x[a] * x[b]
-                for k in range(ntrip):
-                    c3[k, i] += x[triples[k, 0]] * x[triples[k, 1]] * x[triples[k, 2]]
+            if has_h:
+                for i in range(nx):
+                    a = np.float64(u[t, j, i])
+                    b = np.float64(v[t, j, i])
+                    c = z[t, j, i]
+                    d = np.float64(h[t, j, i])
+                    ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf) & (abs(d) < inf)
+                    du = a - s[0, i] if ok else 0.0
+                    dv = b - s[1, i] if ok else 0.0
+                    dz = c - s[2, i] if ok else 0.0
+                    dh = d - s[3, i] if ok else 0.0
+                    c2[6, i] += du * dh
+                    c2[7, i] += dv * dh
+                    c2[8, i] += dz * dh
+                    c2[9, i] += dh * dh
+                    uu = du * du
+                    vv = dv * dv
+                    c2[0, i] += uu
+                    c2[1, i] += du * dv
+                    c2[2, i] += vv
+                    c2[3, i] += du * dz
+                    c2[4, i] += dv * dz
+                    c2[5, i] += dz * dz
+                    c3[0, i] += uu * du
+                    c3[1, i] += du * vv
+                    c3[2, i] += uu * dv
+                    c3[3, i] += vv * dv
+            else:
+                for i in range(nx):
+                    a = np.float64(u[t, j, i])
+                    b = np.float64(v[t, j, i])
+                    c = z[t, j, i]
+                    ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf)
+                    du = a - s[0, i] if ok else 0.0
+                    dv = b - s[1, i] if ok else 0.0
+                    dz = c - s[2, i] if ok else 0.0
+                    uu = du * du
+                    vv = dv * dv
+                    c2[0, i] += uu
+                    c2[1, i] += du * dv
+                    c2[2, i] += vv
+                    c2[3, i] += du * dz
+                    c2[4, i] += dv * dz
+                    c2[5, i] += dz * dz
+                    c3[0, i] += uu * du
+                    c3[1, i] += du * vv
+                    c3[2, i] += uu * dv
+                    c3[3, i] += vv * dv
+        nv = mean.shape[0]
         for i in range(nx):
             n[j, i] = cnt[i]
             ow[j, i] = cores[i]
             for k in range(nv):
-                mean[k, j, i] = sums[k, i] if cnt[i] > 0 else 0.0
-            for k in range(npair):
+                mean[k, j, i] = s[k, i]
+            for k in range(m2.shape[0]):
                 m2[k, j, i] = c2[k, i]
-            for k in range(ntrip):
+            for k in range(4):
                 m3[k, j, i] = c3[k, i]
     return 0
 
@@ -266,7 +373,7 @@ def chunk_moments(
     ow = np.empty((ny, nx))
     h = ssh if has_h else u  # never read when has_h is False
     _chunk_moments(u, v, zeta, h, has_h, core, np.ascontiguousarray(tindex, dtype=np.int64),
-                   PAIR_INDEX, TRIPLES, n, mean, m2, m3, ow)
+                   n, mean, m2, m3, ow)
     return n, mean, m2, m3, ow
 
 

@@ -16,6 +16,7 @@ reproducible to the last bit whatever the scheduler.
 from __future__ import annotations
 
 import os
+import queue
 import sys
 import time
 from collections import deque
@@ -39,6 +40,8 @@ from coastmon.stream.moments import MomentState, grid_signature, time_text
 
 CHUNK_BUDGET_BYTES = 256 * 2**20
 """Memory budget of one time chunk (inputs and the kernel's per-chunk arrays)."""
+SCRATCH_BYTES_PER_POINT = 33
+"""Kernel scratch per grid point and time step: ζ, two dual-cell fields and W (float64), core flag."""
 
 SERIES_VARIABLES = ("u", "v", "zeta", "ssh")
 _SERIES_ATTRS = {
@@ -84,29 +87,54 @@ class _Constants:
     valid: np.ndarray
     ow_threshold: float
     kernel_threads: int
+    step_limit: int
 
 
-def _process_block(u, v, h, groups, consts: _Constants) -> dict:
-    """All the work on one chunk: vorticity, eddy cores, moments per group, sampling."""
+def _process_block(u, v, h, groups, consts: _Constants, workspace=None) -> dict:
+    """All the work on one chunk: vorticity, eddy cores, moments per group, sampling.
+
+    The kernels run on sub-blocks of at most ``consts.step_limit`` time steps so that
+    their scratch arrays stay within :data:`CHUNK_BUDGET_BYTES` however large the
+    input's chunks are; sub-block moments are merged here.
+    """
     numba.set_num_threads(max(1, min(consts.kernel_threads, numba.config.NUMBA_NUM_THREADS)))
     u, v = _as_float(u), _as_float(v)
     h = None if h is None else _as_float(h)
-    t0 = time.perf_counter()
-    zeta, core = kernels.dual_fields(u, v, consts.gx, consts.gy, consts.ow_threshold)
-    parts = {}
-    for g in np.unique(groups):
-        parts[int(g)] = kernels.chunk_moments(u, v, zeta, h, core, np.flatnonzero(groups == g))
-    t1 = time.perf_counter()
+    workspace = kernels.Workspace() if workspace is None else workspace
     nt = u.shape[0]
-    samples = {}
-    for name, arr in (("u", u), ("v", v), ("zeta", zeta), ("ssh", h)):
-        if arr is not None:
-            samples[name] = kernels.sample_rows(
-                consts.indptr, consts.indices, consts.weights, consts.valid,
-                arr.reshape(nt, -1),
-            )
-    t2 = time.perf_counter()
-    return {"parts": parts, "samples": samples, "kernel_s": t1 - t0, "sample_s": t2 - t1}
+    parts: dict[int, tuple] = {}
+    samples: dict[str, list] = {}
+    kernel_s = sample_s = 0.0
+    for s0 in range(0, nt, consts.step_limit):
+        s1 = min(nt, s0 + consts.step_limit)
+        t0 = time.perf_counter()
+        ub, vb = u[s0:s1], v[s0:s1]
+        hb = None if h is None else h[s0:s1]
+        zeta, core = kernels.dual_fields(ub, vb, consts.gx, consts.gy, consts.ow_threshold,
+                                         workspace)
+        sub_groups = groups[s0:s1]
+        for g in np.unique(sub_groups):
+            part = kernels.chunk_moments(ub, vb, zeta, hb, core, np.flatnonzero(sub_groups == g))
+            if int(g) in parts:
+                kernels.merge_moments(parts[int(g)], part)
+            else:
+                parts[int(g)] = part
+        t1 = time.perf_counter()
+        for name, arr in (("u", ub), ("v", vb), ("zeta", zeta), ("ssh", hb)):
+            if arr is not None:
+                samples.setdefault(name, []).append(kernels.sample_rows(
+                    consts.indptr, consts.indices, consts.weights, consts.valid,
+                    arr.reshape(s1 - s0, -1),
+                ))
+        t2 = time.perf_counter()
+        kernel_s += t1 - t0
+        sample_s += t2 - t1
+    return {
+        "parts": parts,
+        "samples": {k: np.concatenate(val) for k, val in samples.items()},
+        "kernel_s": kernel_s,
+        "sample_s": sample_s,
+    }
 
 
 def _as_float(a) -> np.ndarray:
@@ -127,8 +155,12 @@ def _input_array(ds: xr.Dataset, name: str):
     return data
 
 
-def _load_and_process(arrays, t0: int, t1: int, groups, consts: _Constants) -> dict:
-    """Local-thread task: read one chunk (dask arrays computed synchronously here) and process it."""
+def _load_and_process(arrays, t0: int, t1: int, groups, consts: _Constants,
+                      workspaces: queue.SimpleQueue) -> dict:
+    """Local-thread task: read one chunk (dask arrays computed synchronously here) and process it.
+
+    ``workspaces`` holds one kernel workspace per worker thread, reused between chunks.
+    """
     start = time.perf_counter()
     blocks = [None if a is None else a[t0:t1] for a in arrays]
     lazy = [b for b in blocks if isinstance(b, da.Array)]
@@ -138,7 +170,11 @@ def _load_and_process(arrays, t0: int, t1: int, groups, consts: _Constants) -> d
     blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray) else b)
               for b in blocks]
     read_s = time.perf_counter() - start
-    out = _process_block(*blocks, groups, consts)
+    workspace = workspaces.get()
+    try:
+        out = _process_block(*blocks, groups, consts, workspace)
+    finally:
+        workspaces.put(workspace)
     out["read_s"] = read_s
     return out
 
@@ -182,7 +218,8 @@ def _time_bounds(arrays: list, nt: int) -> list[tuple[int, int]]:
         sizes = list(first.chunks[0])
     else:
         ny, nx = first.shape[1:]
-        per_step = ny * nx * (sum(a.dtype.itemsize for a in arrays if a is not None) + 8 + 1)
+        per_step = ny * nx * (sum(a.dtype.itemsize for a in arrays if a is not None)
+                              + SCRATCH_BYTES_PER_POINT)
         step = int(max(1, min(nt, CHUNK_BUDGET_BYTES // max(per_step, 1))))
         sizes = [step] * (nt // step) + ([nt % step] if nt % step else [])
     edges = np.concatenate([[0], np.cumsum(sizes)]).astype(int)
@@ -304,6 +341,7 @@ def run_pass(
     state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
                               grid_signature(metrics.lon, metrics.lat))
     ncpu = os.cpu_count() or 1
+    grid_size = metrics.shape[0] * metrics.shape[1]
     timings = dict.fromkeys(("read_s", "kernel_s", "sample_s", "merge_s", "write_s"), 0.0)
     client = _client(settings.scheduler) if settings.scheduler else None
     try:
@@ -320,6 +358,7 @@ def run_pass(
             weights=sampler.data.astype(np.float64),
             valid=np.asarray(frame.valid, dtype=np.bool_),
             ow_threshold=float(settings.ow_threshold), kernel_threads=kernel_threads,
+            step_limit=max(1, CHUNK_BUDGET_BYTES // (SCRATCH_BYTES_PER_POINT * grid_size)),
         )
         window = 2 * nthreads
         bar = _progress_bar(len(bounds), settings.progress)
@@ -328,17 +367,21 @@ def run_pass(
                                                            groups)
         else:
             pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="coastmon-pass")
+            workspaces = queue.SimpleQueue()
+            for _ in range(workers):
+                workspaces.put(kernels.Workspace())
 
             def submit(t0, t1):
-                return pool.submit(_load_and_process, arrays, t0, t1, groups[t0:t1], consts)
+                return pool.submit(_load_and_process, arrays, t0, t1, groups[t0:t1], consts,
+                                   workspaces)
 
             def collect(future):
                 return future.result()
 
         try:
             pending = deque()
-            queue = iter(bounds)
-            for t0, t1 in queue:
+            todo = iter(bounds)
+            for t0, t1 in todo:
                 pending.append((t0, t1, submit(t0, t1)))
                 if len(pending) >= window:
                     break
@@ -346,7 +389,7 @@ def run_pass(
             while pending:
                 t0, t1, future = pending.popleft()
                 out = collect(future)
-                nxt = next(queue, None)
+                nxt = next(todo, None)
                 if nxt is not None:
                     pending.append((*nxt, submit(*nxt)))
                 _consume(out, t0, t1, state, files, frame, times, timings)

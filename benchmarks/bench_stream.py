@@ -1,0 +1,251 @@
+"""Benchmark of the streaming pass against a plain read and the straightforward xarray recipe.
+
+Not part of the test suite. Builds (once) a NetCDF4 record of float32 u, v on a
+``ny x nx`` grid over ``nt`` days (500 x 500 x 1100 = 2.2 GB by default), plain and
+zlib-compressed, then times in separate subprocesses (peak memory = ``ru_maxrss``):
+
+* ``read``   — a plain read of u and v with netCDF4, chunk by chunk (the pass's time chunks),
+  one thread, nothing computed;
+* ``pass``   — :func:`coastmon.stream.run_pass` (threads, default settings);
+* ``recipe`` — the straightforward xarray + dask recipe for the same statistics: time
+  means, then anomalies, products and their means (a second read), vorticity and
+  Okubo–Weiss with ``xarray.apply_ufunc``.
+
+Usage::
+
+    python benchmarks/bench_stream.py --dir /tmp/coastmon-bench            # everything
+    python benchmarks/bench_stream.py --dir /tmp/coastmon-bench --runs read pass --variants plain
+
+With ``--cold`` (root only) the page cache is dropped before each measurement.
+Prints one JSON line per measurement and a summary table.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+TIME_CHUNK = 25
+
+
+def make_record(path: Path, ny: int, nx: int, nt: int, zlib: bool) -> None:
+    """Write a synthetic record: drifting eddies on a mean current, land to the east."""
+    import netCDF4
+
+    tmp = path.with_name(path.name + ".part")
+    rng = np.random.default_rng(0)
+    lon = np.linspace(-30.0, -10.0, nx)
+    lat = np.linspace(20.0, 40.0, ny)
+    lon2, lat2 = np.meshgrid(lon, lat)
+    coast = -12.0 - 1.5 * np.sin(np.deg2rad(lat2) * 25.0)
+    land = lon2 > coast
+    k = rng.uniform(0.2, 0.8, size=(12, 2))
+    phase = rng.uniform(0, 2 * np.pi, size=12)
+    speed = rng.uniform(0.02, 0.08, size=12)
+    with netCDF4.Dataset(tmp, "w") as nc:
+        nc.createDimension("time", nt)
+        nc.createDimension("y", ny)
+        nc.createDimension("x", nx)
+        t = nc.createVariable("time", "f8", ("time",))
+        t.units = "days since 2001-01-01"
+        t.calendar = "standard"
+        t[:] = np.arange(nt)
+        for name, values, units in (("lon", lon2, "degrees_east"), ("lat", lat2, "degrees_north")):
+            var = nc.createVariable(name, "f8", ("y", "x"))
+            var.units = units
+            var[:] = values
+        mask = nc.createVariable("mask", "i1", ("y", "x"))
+        mask[:] = (~land).astype(np.int8)
+        opts = {"zlib": True, "complevel": 1, "shuffle": True, "chunksizes": (1, ny, nx)} if zlib \
+            else {"contiguous": True}
+        u = nc.createVariable("u", "f4", ("time", "y", "x"), fill_value=np.float32(np.nan), **opts)
+        v = nc.createVariable("v", "f4", ("time", "y", "x"), fill_value=np.float32(np.nan), **opts)
+        u.units = v.units = "m s-1"
+        for t0 in range(0, nt, 50):
+            steps = np.arange(t0, min(nt, t0 + 50))
+            psi = np.zeros((steps.size, ny, nx), dtype=np.float32)
+            for e in range(12):
+                arg = (k[e, 0] * (lon2 + speed[e] * steps[:, None, None]) + k[e, 1] * lat2
+                       + phase[e])
+                psi += np.sin(arg).astype(np.float32)
+            uu = (0.1 - 0.05 * np.gradient(psi, axis=1)).astype(np.float32)
+            vv = (0.05 * np.gradient(psi, axis=2)).astype(np.float32)
+            uu += 0.01 * rng.standard_normal(uu.shape, dtype=np.float32)
+            uu[:, land] = np.nan
+            vv[:, land] = np.nan
+            u[steps[0]:steps[-1] + 1] = uu
+            v[steps[0]:steps[-1] + 1] = vv
+    os.replace(tmp, path)
+
+
+def _frame(ds, n_stations: int = 150, n_offsets: int = 7, n_rays: int = 60):
+    """A stand-in frame: random bilinear-like rows of 4 sea points (the pass only samples)."""
+    from types import SimpleNamespace
+
+    import pandas as pd
+    from scipy import sparse
+
+    rng = np.random.default_rng(1)
+    sea = np.flatnonzero(ds["mask"].values.ravel() == 1)
+    n_points = n_stations * (n_offsets + n_rays)
+    cols = rng.choice(sea, size=(n_points, 4))
+    w = rng.uniform(0.1, 1.0, size=(n_points, 4))
+    w /= w.sum(axis=1, keepdims=True)
+    sampler = sparse.csr_matrix(
+        (w.ravel(), cols.ravel(), np.arange(0, 4 * n_points + 1, 4)),
+        shape=(n_points, ds.sizes["y"] * ds.sizes["x"]),
+    )
+
+    def split(samples):
+        s, o = n_stations, n_offsets
+        return (samples[..., : s * o].reshape(*samples.shape[:-1], s, o),
+                samples[..., s * o:].reshape(*samples.shape[:-1], s, n_rays))
+
+    return SimpleNamespace(
+        sampler=sampler, valid=np.ones(n_points, dtype=bool), split=split,
+        stations=pd.DataFrame({"alongshore_km": 10.0 * np.arange(n_stations)}),
+        offsets_km=10.0 * np.arange(n_offsets), ray_km=10.0 * np.arange(1, n_rays + 1),
+    )
+
+
+def measure_read(path: Path) -> dict:
+    import netCDF4
+
+    values = 0
+    start = time.perf_counter()
+    with netCDF4.Dataset(path) as nc:
+        nc.set_auto_mask(False)
+        nt = nc.dimensions["time"].size
+        for t0 in range(0, nt, TIME_CHUNK):
+            for name in ("u", "v"):
+                values += nc[name][t0:t0 + TIME_CHUNK].size
+    return {"work_s": time.perf_counter() - start, "values_read": values}
+
+
+def measure_pass(path: Path, workdir: Path) -> dict:
+    import xarray as xr
+
+    from coastmon.config import StreamSettings
+    from coastmon.grid.metrics import GridMetrics
+    from coastmon.stream import run_pass
+
+    ds = xr.open_dataset(path, chunks={"time": TIME_CHUNK})
+    metrics = GridMetrics.from_lonlat(ds["lon"].values, ds["lat"].values)
+    frame = _frame(ds)
+    start = time.perf_counter()
+    result = run_pass(ds, metrics, frame, StreamSettings(progress=False), workdir)
+    return {"work_s": time.perf_counter() - start, "timings": result.timings,
+            "eke_mean": float(result.stats["eke"].mean())}
+
+
+def measure_recipe(path: Path) -> dict:
+    import dask
+    import xarray as xr
+
+    from coastmon.grid import operators
+    from coastmon.grid.metrics import GridMetrics
+
+    start = time.perf_counter()
+    ds = xr.open_dataset(path, chunks={"time": TIME_CHUNK})
+    metrics = GridMetrics.from_lonlat(ds["lon"].values, ds["lat"].values)
+    u, v = ds["u"], ds["v"]
+    core_dims = [["y", "x"], ["y", "x"]]
+    zeta = xr.apply_ufunc(operators.vorticity, u, v, kwargs={"metrics": metrics},
+                          input_core_dims=core_dims, output_core_dims=[["y", "x"]],
+                          dask="parallelized", output_dtypes=[np.float64])
+    w = xr.apply_ufunc(operators.okubo_weiss, u, v, kwargs={"metrics": metrics},
+                       input_core_dims=core_dims, output_core_dims=[["y", "x"]],
+                       dask="parallelized", output_dtypes=[np.float64])
+    valid = u.notnull() & v.notnull() & zeta.notnull()
+    fields = {"u": u.where(valid), "v": v.where(valid), "zeta": zeta.where(valid)}
+    means = dask.compute({k: f.mean("time") for k, f in fields.items()})[0]
+    anom = {k: f - means[k] for k, f in fields.items()}
+    ua, va, za = anom["u"], anom["v"], anom["zeta"]
+    out = {
+        "uu": (ua * ua).mean("time"), "uv": (ua * va).mean("time"), "vv": (va * va).mean("time"),
+        "u_zeta": (ua * za).mean("time"), "v_zeta": (va * za).mean("time"),
+        "zeta_var": (za * za).mean("time"),
+        "eke_flux_x": (0.5 * (ua * ua * ua + ua * va * va)).mean("time"),
+        "eke_flux_y": (0.5 * (ua * ua * va + va * va * va)).mean("time"),
+        "ow_core_fraction": (w < -0.2 * w.std(("y", "x"))).where(valid).mean("time"),
+    }
+    stats = dask.compute(out)[0]
+    return {"work_s": time.perf_counter() - start,
+            "eke_mean": float((0.5 * (stats["uu"] + stats["vv"])).mean())}
+
+
+def _child(kind: str, path: Path, workdir: Path) -> None:
+    start = time.perf_counter()
+    if kind == "read":
+        extra = measure_read(path)
+    elif kind == "pass":
+        extra = measure_pass(path, workdir)
+    else:
+        extra = measure_recipe(path)
+    wall = time.perf_counter() - start
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    print(json.dumps({"kind": kind, "file": path.name, "wall_s": wall, "peak_rss_gb": peak / 1e9,
+                      **extra}))
+
+
+def _drop_caches() -> bool:
+    try:
+        subprocess.run(["sync"], check=True)
+        Path("/proc/sys/vm/drop_caches").write_text("3\n")
+        return True
+    except OSError:
+        return False
+
+
+def main(argv: list[str] | None = None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--dir", type=Path, default=Path("/tmp/coastmon-bench"))
+    parser.add_argument("--ny", type=int, default=500)
+    parser.add_argument("--nx", type=int, default=500)
+    parser.add_argument("--nt", type=int, default=1100)
+    parser.add_argument("--variants", nargs="+", default=["plain", "zlib"],
+                        choices=["plain", "zlib"])
+    parser.add_argument("--runs", nargs="+", default=["read", "pass", "recipe"],
+                        choices=["read", "pass", "recipe"])
+    parser.add_argument("--cold", action="store_true", help="drop the page cache before each run")
+    parser.add_argument("--child", nargs=2, metavar=("KIND", "FILE"), help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.child:
+        _child(args.child[0], Path(args.child[1]), args.dir / "work")
+        return
+    args.dir.mkdir(parents=True, exist_ok=True)
+    results = []
+    for variant in args.variants:
+        path = args.dir / f"record_{args.ny}x{args.nx}x{args.nt}_{variant}.nc"
+        if not path.exists():
+            start = time.perf_counter()
+            make_record(path, args.ny, args.nx, args.nt, zlib=variant == "zlib")
+            print(f"# wrote {path} ({path.stat().st_size / 1e9:.2f} GB) in "
+                  f"{time.perf_counter() - start:.0f} s", flush=True)
+        for kind in args.runs:
+            cold = _drop_caches() if args.cold else False
+            out = subprocess.run(
+                [sys.executable, __file__, "--dir", str(args.dir), "--child", kind, str(path)],
+                check=True, capture_output=True, text=True,
+            )
+            record = json.loads(out.stdout.strip().splitlines()[-1])
+            record.update(variant=variant, cache="cold" if cold else "warm",
+                          size_gb=path.stat().st_size / 1e9)
+            results.append(record)
+            print(json.dumps(record), flush=True)
+    print(f"\n{'variant':8} {'run':7} {'cache':5} {'work s':>8} {'process s':>10} {'peak GB':>8}")
+    for r in results:
+        print(f"{r['variant']:8} {r['kind']:7} {r['cache']:5} {r['work_s']:8.1f} "
+              f"{r['wall_s']:10.1f} {r['peak_rss_gb']:8.2f}")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,714 @@
+"""Keep watching: a monitoring state that grows with each batch of new time steps.
+
+``update(state_dir, inputs, settings)`` creates the state on its first call (coastline,
+capes, along-shore frame, accumulators, sampled series, settings) and on later calls adds
+only the time steps it has not seen: it runs the streaming pass on those steps alone,
+merges their accumulators into the stored ones (Chan, Golub & LeVeque 1983), appends their
+sampled series, and refreshes every output of ``analyze`` in ``STATE_DIR/outputs``, plus
+``events.csv`` (shedding events, :mod:`coastmon.monitor.events`). The geometry is never
+recomputed: the frame's sampling operator is stored and reloaded, so every statistic stays
+on the same frame.
+
+Layout of ``STATE_DIR``::
+
+    current            name of the committed version folder (the pointer)
+    v000003/           manifest.json (format version, settings, record, history),
+                       moments.npz (accumulators), times.npz (time steps seen)
+    store/             grid.npz, frame.npz, coastline.npz, capes.npz (written once)
+                       series-*.nc (sampled series, one file per update, append-only)
+    outputs/           the outputs of analyze, and events.csv
+
+Nothing is ever pickled: ``.npz`` files are read with ``allow_pickle=False``, the rest is
+JSON and NetCDF. Crash safety: an update writes a *new* version folder and then replaces
+the pointer with :func:`os.replace` (atomic on POSIX and Windows); an update that dies
+before that leaves the previous version current and usable, and the next call removes the
+leftovers (partial folders, uncommitted series files) and starts again from it. The
+outputs are refreshed (atomically, as a whole) just before the pointer moves, so after a
+crash between the two the outputs can be one update ahead of the state until the next call.
+
+Rules for new data:
+
+* a time step equal to one already seen is skipped (feeding a file twice changes nothing);
+* a time step earlier than the last one seen but not seen before (out of order) is refused
+  with :class:`~coastmon.errors.RecordError`, always;
+* a gap larger than 1.5 × the record's time step (after the last step seen, or inside the
+  new data) is refused with :class:`~coastmon.errors.RecordError` unless
+  ``allow_gaps``; accepted gaps are filled with missing values in the sampled series so
+  that the series stay evenly spaced, and add nothing to the statistics.
+
+Settings: those stored in the state win. A later call may pass the defaults (no settings
+file) or the very same settings; anything else is refused with
+:class:`~coastmon.errors.SettingsError`. Settings that do not change the statistics (the
+run options ``stream.scheduler`` and ``stream.progress``, and the ``output`` section) are
+taken from the call where it sets them to something other than the default, and are
+otherwise the stored ones.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import datetime as _dt
+import json
+import os
+import secrets
+import shutil
+import tempfile
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+from scipy import sparse
+
+from coastmon import __version__, pipeline
+from coastmon.config import Settings, settings_from_dict
+from coastmon.errors import CoastmonError, InputError, OutputError, RecordError, SettingsError
+from coastmon.geometry import Coastline, Frame, Segment, local_projection
+from coastmon.grid.metrics import GridMetrics, coriolis_parameter
+from coastmon.io.atomic import atomic_write_text, staging_dir
+from coastmon.io.ingest import open_dataset
+from coastmon.monitor.events import shedding_events
+from coastmon.stream import load_state, merge_states, run_pass, save_state, stats_from_state
+from coastmon.stream.moments import grid_signature
+
+STATE_FORMAT_VERSION = 1
+"""Layout version of a monitoring state; a state with another version is refused."""
+POINTER = "current"
+STORE = "store"
+OUTPUTS = "outputs"
+GAP_FACTOR = 1.5
+"""A step longer than this many record time steps is a gap."""
+_TIME_UNITS = "seconds since 1970-01-01 00:00:00"
+_RUN_ONLY = (("stream", "scheduler"), ("stream", "progress"))
+
+
+# --------------------------------------------------------------------------- result
+@dataclass
+class UpdateResult:
+    """What one call of :func:`update` did."""
+
+    state_dir: Path
+    created: bool
+    version: int
+    n_new: int
+    n_duplicate: int
+    n_filled: int
+    n_time: int
+    time_start: str
+    time_end: str
+    outputs_refreshed: bool
+    n_events: int = 0
+    products: pipeline.Products | None = None
+    notes: list[str] = field(default_factory=list)
+    timings: dict[str, float] = field(default_factory=dict)
+
+    def summary_text(self) -> str:
+        head = "created" if self.created else ("updated" if self.n_new else "unchanged")
+        lines = [f"coastmon: monitoring state {head} (version {self.version}) in {self.state_dir}",
+                 f"  {self.n_new} new time step(s), {self.n_duplicate} already seen and skipped"
+                 + (f", {self.n_filled} missing step(s) filled" if self.n_filled else ""),
+                 f"  record: {self.n_time} time steps, {self.time_start} to {self.time_end}"]
+        if self.outputs_refreshed and self.products is not None:
+            lines.append(f"  {len(self.products.sources)} source(s); {self.n_events} shedding "
+                         f"event(s) logged; outputs in {self.state_dir / OUTPUTS}")
+        lines += [f"  note: {n}" for n in self.notes]
+        return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------- time
+def _calendar(values: np.ndarray) -> str:
+    values = np.asarray(values)
+    if np.issubdtype(values.dtype, np.datetime64):
+        return "proleptic_gregorian"
+    return str(getattr(values.flat[0], "calendar", "standard") or "standard")
+
+
+def time_seconds(values: np.ndarray) -> np.ndarray:
+    """Seconds since 1970-01-01 of datetime64 or cftime values (in their own calendar)."""
+    values = np.asarray(values)
+    if np.issubdtype(values.dtype, np.datetime64):
+        return values.astype("datetime64[ns]").astype(np.int64) / 1.0e9
+    import cftime
+
+    return np.asarray(cftime.date2num(list(values.ravel()), _TIME_UNITS,
+                                      calendar=_calendar(values)), dtype=np.float64)
+
+
+def _times_from_seconds(seconds: np.ndarray, calendar: str, like: np.ndarray) -> np.ndarray:
+    if np.issubdtype(np.asarray(like).dtype, np.datetime64):
+        return (np.round(np.asarray(seconds) * 1e9).astype(np.int64)).astype("datetime64[ns]")
+    import cftime
+
+    return np.asarray(cftime.num2date(np.asarray(seconds), _TIME_UNITS, calendar=calendar))
+
+
+def _text(seconds: float, calendar: str, like: np.ndarray) -> str:
+    value = _times_from_seconds(np.array([seconds]), calendar, like)[0]
+    if isinstance(value, np.datetime64):
+        return str(np.datetime_as_string(value, unit="s"))
+    return value.isoformat()
+
+
+# --------------------------------------------------------------------------- tables
+def _table_arrays(table: pd.DataFrame, prefix: str) -> dict[str, np.ndarray]:
+    """A DataFrame as plain arrays (numbers keep their dtype, everything else becomes text)."""
+    out = {f"{prefix}__columns": np.array(list(table.columns), dtype=str)}
+    for col in table.columns:
+        values = table[col].to_numpy()
+        if values.dtype.kind not in "biuf":
+            values = np.array(["" if v is None or (isinstance(v, float) and np.isnan(v))
+                               else str(v) for v in values], dtype=str)
+        out[f"{prefix}__{col}"] = values
+    return out
+
+
+def _table_from(data: Any, prefix: str) -> pd.DataFrame:
+    columns = [str(c) for c in data[f"{prefix}__columns"]]
+    return pd.DataFrame({c: np.asarray(data[f"{prefix}__{c}"]) for c in columns},
+                        columns=columns)
+
+
+def _savez(path: Path, arrays: dict[str, np.ndarray]) -> None:
+    tmp = path.with_name(path.name + ".part")
+    with open(tmp, "wb") as fh:
+        np.savez(fh, **arrays)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+def _loadz(path: Path) -> dict[str, np.ndarray]:
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            return {k: np.array(data[k]) for k in data.files}
+    except (OSError, ValueError, KeyError) as exc:
+        raise InputError(
+            f"A file of the monitoring state cannot be read ({exc})", where=str(path),
+            todo="The state is damaged; start a new state folder from the full record",
+        ) from None
+
+
+# --------------------------------------------------------------------------- geometry
+def save_geometry(store: Path, lon: np.ndarray, lat: np.ndarray, mask: np.ndarray,
+                  coastline: Coastline, capes: pd.DataFrame, frame: Frame) -> list[str]:
+    """Write grid, coastline, capes and frame as ``.npz`` files; returns their names."""
+    _savez(store / "grid.npz", {"lon": np.asarray(lon, np.float64),
+                                "lat": np.asarray(lat, np.float64),
+                                "mask": np.asarray(mask)})
+    seg: dict[str, np.ndarray] = {
+        "n_segments": np.array(len(coastline.segments)),
+        "lon_ref": np.array(coastline.lon_ref, np.float64),
+        "lat_ref": np.array(coastline.lat_ref, np.float64),
+        "boundary": np.array(coastline.boundary, dtype=str),
+    }
+    for i, s in enumerate(coastline.segments):
+        for name in ("lon", "lat", "x_km", "y_km", "alongshore_km"):
+            seg[f"s{i}_{name}"] = np.asarray(getattr(s, name), np.float64)
+        seg[f"s{i}_meta"] = np.array([s.segment_id, int(s.closed), int(s.island)], np.int64)
+    _savez(store / "coastline.npz", seg)
+    _savez(store / "capes.npz", _table_arrays(capes, "capes"))
+    csr = sparse.csr_matrix(frame.sampler)
+    arrays = {
+        "sampler_data": csr.data, "sampler_indices": csr.indices, "sampler_indptr": csr.indptr,
+        "sampler_shape": np.array(csr.shape, np.int64), "valid": np.asarray(frame.valid),
+        "offsets_km": np.asarray(frame.offsets_km), "ray_km": np.asarray(frame.ray_km),
+        "section_lon": frame.section_lon, "section_lat": frame.section_lat,
+        "ray_lon": frame.ray_lon, "ray_lat": frame.ray_lat,
+    }
+    arrays.update(_table_arrays(frame.stations, "stations"))
+    _savez(store / "frame.npz", arrays)
+    return ["grid.npz", "coastline.npz", "capes.npz", "frame.npz"]
+
+
+def load_geometry(store: Path) -> tuple[dict[str, np.ndarray], Coastline, pd.DataFrame, Frame]:
+    """Read what :func:`save_geometry` wrote (grid arrays, coastline, capes, frame)."""
+    grid = _loadz(store / "grid.npz")
+    c = _loadz(store / "coastline.npz")
+    lon_ref, lat_ref = float(c["lon_ref"]), float(c["lat_ref"])
+    crs, forward, inverse = local_projection(lon_ref, lat_ref)
+    segments = []
+    for i in range(int(c["n_segments"])):
+        sid, closed, island = (int(v) for v in c[f"s{i}_meta"])
+        segments.append(Segment(segment_id=sid, closed=bool(closed), island=bool(island),
+                                **{n: c[f"s{i}_{n}"] for n in ("lon", "lat", "x_km", "y_km",
+                                                               "alongshore_km")}))
+    coastline = Coastline(segments, crs, forward, inverse, lon_ref, lat_ref, str(c["boundary"]))
+    capes = _table_from(_loadz(store / "capes.npz"), "capes")
+    f = _loadz(store / "frame.npz")
+    sampler = sparse.csr_matrix((f["sampler_data"], f["sampler_indices"], f["sampler_indptr"]),
+                                shape=tuple(int(n) for n in f["sampler_shape"]))
+    frame = Frame(stations=_table_from(f, "stations"), offsets_km=f["offsets_km"],
+                  ray_km=f["ray_km"], section_lon=f["section_lon"], section_lat=f["section_lat"],
+                  ray_lon=f["ray_lon"], ray_lat=f["ray_lat"], sampler=sampler, valid=f["valid"])
+    return grid, coastline, capes, frame
+
+
+# --------------------------------------------------------------------------- folder
+@contextlib.contextmanager
+def _locked(state_dir: Path) -> Iterator[None]:
+    """Hold an exclusive lock on the state folder (POSIX); one update at a time."""
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - Windows has no fcntl
+        yield
+        return
+    fh = open(state_dir / ".lock", "a+")  # noqa: SIM115 - held open for the lock's life
+    try:
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            raise CoastmonError(
+                "Another update of this monitoring state is running", where=str(state_dir),
+                todo="Wait for it to finish, then run the update again",
+            ) from None
+        yield
+    finally:
+        fh.close()
+
+
+def _current(state_dir: Path) -> str | None:
+    pointer = state_dir / POINTER
+    if not pointer.is_file():
+        return None
+    name = pointer.read_text(encoding="utf-8").strip()
+    if not name or not (state_dir / name / "manifest.json").is_file():
+        raise InputError(
+            "The monitoring state's pointer names a version folder that is missing",
+            where=str(pointer),
+            todo="The state folder was edited or damaged; start a new state folder",
+        )
+    return name
+
+
+def _clean_leftovers(state_dir: Path, current: str | None, keep_store: set[str]) -> None:
+    """Remove what an interrupted update left: partial and superseded version folders,
+    staging folders of the outputs, and series files no committed version refers to."""
+    for p in state_dir.iterdir():
+        stale_version = p.is_dir() and p.name.startswith("v") and p.name[1:].isdigit() \
+            and p.name != current
+        partial = p.name.startswith(".") and p.name != ".lock"
+        if stale_version or partial:
+            shutil.rmtree(p, ignore_errors=True) if p.is_dir() else p.unlink(missing_ok=True)
+    store = state_dir / STORE
+    if store.is_dir():
+        for p in store.iterdir():
+            if p.name not in keep_store:
+                p.unlink(missing_ok=True)
+
+
+def _read_manifest(state_dir: Path, name: str) -> dict[str, Any]:
+    path = state_dir / name / "manifest.json"
+    try:
+        manifest = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise InputError(f"The monitoring state's manifest cannot be read ({exc})",
+                         where=str(path),
+                         todo="The state is damaged; start a new state folder") from None
+    version = manifest.get("format_version")
+    if not isinstance(version, int) or version > STATE_FORMAT_VERSION:
+        raise InputError(
+            f"The monitoring state has format version {version}, newer than this coastmon "
+            f"({__version__}) reads (version {STATE_FORMAT_VERSION})",
+            where=str(path),
+            todo="Update coastmon to the version that wrote the state, or start a new state "
+                 "folder",
+        )
+    if version < STATE_FORMAT_VERSION:
+        raise InputError(
+            f"The monitoring state has the old format version {version}; this coastmon reads "
+            f"version {STATE_FORMAT_VERSION} only",
+            where=str(path),
+            todo="Start a new state folder from the full record with this coastmon",
+        )
+    return manifest
+
+
+def _commit(state_dir: Path, number: int, manifest: dict[str, Any], moments, seen_s: np.ndarray
+            ) -> str:
+    """Write version ``number`` beside the current one and move the pointer to it."""
+    name = f"v{number:06d}"
+    partial = state_dir / f".{name}.partial-{secrets.token_hex(4)}"
+    partial.mkdir()
+    save_state(moments, partial / "moments.npz")
+    _savez(partial / "times.npz", {"seen_s": np.asarray(seen_s, np.float64)})
+    atomic_write_text(partial / "manifest.json", json.dumps(manifest, indent=2, default=str))
+    final = state_dir / name
+    if final.exists():
+        shutil.rmtree(final)
+    os.replace(partial, final)
+    _switch_pointer(state_dir, name)
+    return name
+
+
+def _switch_pointer(state_dir: Path, name: str) -> None:
+    """Make ``name`` the current version (one atomic rename)."""
+    atomic_write_text(state_dir / POINTER, name + "\n")
+
+
+def _run_only(settings: Settings) -> list[tuple[str, str]]:
+    """Keys that do not change the stored statistics: the run options and the output section."""
+    return list(_RUN_ONLY) + [("output", f.name) for f in dataclasses.fields(settings.output)]
+
+
+def _resolve_settings(stored: Settings, given: Settings) -> Settings:
+    """The stored settings, with run options and output choices taken from the call when
+    the call sets them (differs from the defaults); refuse any other difference."""
+    default = Settings()
+    free = _run_only(default)
+
+    def key(s: Settings) -> dict[str, dict[str, Any]]:
+        d = s.to_dict()
+        for section, name in free:
+            d[section].pop(name)
+        return d
+
+    if key(given) not in (key(stored), key(default)):
+        stored_d, given_d = key(stored), key(given)
+        diffs = [f"{sec}.{k} (stored {stored_d[sec][k]!r}, given {v!r})"
+                 for sec, table in given_d.items() for k, v in table.items()
+                 if stored_d[sec][k] != v]
+        raise SettingsError(
+            "The settings given differ from those the monitoring state was created with: "
+            + "; ".join(diffs),
+            where="coastmon update --settings",
+            todo="Run the update without --settings (the stored settings are used), or start "
+                 "a new state folder to analyse with other settings",
+        )
+    out = stored
+    for section, name in free:
+        value = getattr(getattr(given, section), name)
+        if value != getattr(getattr(default, section), name):
+            out = dataclasses.replace(out, **{section: dataclasses.replace(
+                getattr(out, section), **{name: value})})
+    return out
+
+
+# --------------------------------------------------------------------------- time steps
+@dataclass
+class _Plan:
+    new: np.ndarray          # indices of the new steps in the dataset
+    n_duplicate: int
+    fill_before: list[int]   # missing steps to insert before each new step
+    dt_s: float | None
+
+
+def _plan_steps(t_s: np.ndarray, seen_s: np.ndarray, dt_s: float | None, allow_gaps: bool,
+                where: str, calendar: str, like: np.ndarray) -> _Plan:
+    """Which steps are new, which are duplicates, and the gaps to fill."""
+    seen = set(np.round(seen_s, 3).tolist())
+    last = float(seen_s.max()) if seen_s.size else -np.inf
+    dup = np.array([round(float(t), 3) in seen for t in t_s], dtype=bool)
+    late = ~dup & (t_s <= last)
+    if late.any():
+        k = int(np.flatnonzero(late)[0])
+        raise RecordError(
+            f"The time step {_text(t_s[k], calendar, like)} lies before the last time already "
+            f"in the monitoring state ({_text(last, calendar, like)}) but was not part of it: "
+            "the new data are out of order",
+            where=where,
+            todo="Give the new files in time order; to include earlier data, start a new state "
+                 "folder from the full record",
+        )
+    new = np.flatnonzero(~dup)
+    if dt_s is None:
+        steps = np.diff(np.concatenate([seen_s[-1:], t_s[new]]))
+        dt_s = float(np.median(steps)) if steps.size else None
+    fill = [0] * new.size
+    if new.size and dt_s:
+        prev = np.concatenate([[last], t_s[new][:-1]])
+        steps = t_s[new] - prev
+        for i, step in enumerate(steps):
+            if np.isfinite(step) and step > GAP_FACTOR * dt_s:
+                if not allow_gaps:
+                    raise RecordError(
+                        f"The new data leave a gap of {step / 86400.0:g} days before "
+                        f"{_text(t_s[new][i], calendar, like)}; the record's time step is "
+                        f"{dt_s / 86400.0:g} days",
+                        where=where,
+                        todo="Give the missing files first, or pass --allow-gaps to accept the "
+                             "gap (it is filled with missing values)",
+                    )
+                fill[i] = int(round(step / dt_s)) - 1
+    return _Plan(new, int(dup.sum()), fill, dt_s)
+
+
+def _with_fill(series: xr.Dataset, plan: _Plan, t_new_s: np.ndarray, calendar: str
+               ) -> xr.Dataset:
+    """Insert rows of missing values where the plan has gaps (keeps the series even)."""
+    if not any(plan.fill_before):
+        return series
+    times, rows = [], []
+    for i, n_fill in enumerate(plan.fill_before):
+        for k in range(n_fill, 0, -1):
+            times.append(t_new_s[i] - k * plan.dt_s)
+            rows.append(-1)
+        times.append(t_new_s[i])
+        rows.append(i)
+    rows_arr = np.array(rows)
+    out = series.isel(time=np.where(rows_arr >= 0, rows_arr, 0)).copy(deep=True)
+    for name, var in out.data_vars.items():
+        if "time" in var.dims:
+            data = np.array(var.values)
+            data[rows_arr < 0] = np.nan
+            out[name] = (var.dims, data, var.attrs)
+    return out.assign_coords(time=_times_from_seconds(np.array(times), calendar,
+                                                      series["time"].values))
+
+
+def _load_series(state_dir: Path, parts: list[str]) -> xr.Dataset:
+    pieces = []
+    for name in parts:
+        with xr.open_dataset(state_dir / STORE / name, engine="netcdf4") as ds:
+            pieces.append(ds.load())
+    if len(pieces) == 1:
+        return pieces[0]
+    return xr.concat(pieces, dim="time", data_vars="minimal", coords="minimal",
+                     compat="override")
+
+
+def _write_part(series: xr.Dataset, path: Path) -> None:
+    enc = {"time": {"units": _TIME_UNITS, "dtype": "float64"}}
+    tmp = path.with_name(path.name + ".part")
+    series.to_netcdf(tmp, engine="netcdf4", encoding=enc)
+    os.replace(tmp, path)
+
+
+# --------------------------------------------------------------------------- update
+def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str]],
+           settings: Settings, allow_gaps: bool = False) -> UpdateResult:
+    """Create or extend the monitoring state in ``state_dir`` with the time steps of ``inputs``.
+
+    Parameters
+    ----------
+    state_dir
+        The state folder (created on the first call).
+    inputs
+        NetCDF files or a Zarr store, on the grid of the state.
+    settings
+        Used to create the state; on later calls see the module notes (stored ones win).
+    allow_gaps
+        Accept new data that leave a gap after the last step seen (filled with missing
+        values in the series).
+
+    Returns
+    -------
+    UpdateResult
+
+    Raises
+    ------
+    coastmon.errors.RecordError
+        Out-of-order time steps, or a gap without ``allow_gaps``.
+    coastmon.errors.InputError
+        The inputs are on another grid, or the state is damaged or of another version.
+    coastmon.errors.SettingsError
+        Settings different from the stored ones.
+    """
+    timings: dict[str, float] = {}
+    t0 = time.perf_counter()
+    state_dir = Path(state_dir).absolute()
+    paths = [Path(p) for p in inputs]
+    if state_dir.exists() and not state_dir.is_dir():
+        raise OutputError("The monitoring state path is a file", where=str(state_dir),
+                          todo="Give a folder (it is created on the first update)")
+    for p in paths:
+        rp = p.resolve()
+        if rp == state_dir.resolve() or state_dir.resolve() in rp.parents:
+            raise OutputError(
+                "An input lies inside the monitoring state folder", where=str(rp),
+                todo="Keep the input files outside the state folder")
+    try:
+        (state_dir / STORE).mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"Cannot create the monitoring state folder ({exc.strerror})",
+                          where=str(state_dir),
+                          todo="Choose a folder you may write to") from None
+    with _locked(state_dir):
+        current = _current(state_dir)
+        manifest = _read_manifest(state_dir, current) if current else None
+        keep = set(manifest["store_files"]) | set(manifest["series_parts"]) if manifest else set()
+        _clean_leftovers(state_dir, current, keep)
+        result = _update(state_dir, paths, settings, allow_gaps, manifest, current, timings)
+    result.timings["total_s"] = time.perf_counter() - t0
+    return result
+
+
+def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: bool,
+            manifest: dict[str, Any] | None, current: str | None,
+            timings: dict[str, float]) -> UpdateResult:
+    store = state_dir / STORE
+    where = paths[0].name if len(paths) == 1 else f"{paths[0].name} (and {len(paths) - 1} more)"
+    created = manifest is None
+    t = time.perf_counter()
+    if created:
+        prep = pipeline.prepare(paths, settings)
+        ds, metrics, coastline, capes, frame = (prep.ds, prep.metrics, prep.coastline,
+                                                prep.capes, prep.frame)
+        lon, lat = metrics.lon, metrics.lat
+        mask = np.asarray(ds["mask"].values)
+        ld_km = prep.ld_km
+        calendar = _calendar(ds["time"].values)
+        seen_s = np.zeros(0)
+        dt_s = None
+        moments = None
+        parts: list[str] = []
+        number = 1
+        history: list[dict[str, Any]] = []
+        inputs_seen: list[dict[str, Any]] = []
+    else:
+        settings = _resolve_settings(settings_from_dict(manifest["settings"],
+                                                        where="the monitoring state"), settings)
+        grid, coastline, capes, frame = load_geometry(store)
+        lon, lat, mask = grid["lon"], grid["lat"], grid["mask"]
+        ds = open_dataset(paths, settings.ingest)
+        _check_same_grid(ds, lon, lat, mask, manifest, where)
+        metrics = GridMetrics.from_lonlat(lon, lat)
+        ld_km = float(manifest["deformation_radius_km"])
+        calendar = manifest["calendar"]
+        if _calendar(ds["time"].values) != calendar:
+            raise InputError(
+                f"The new data use the '{_calendar(ds['time'].values)}' calendar, the "
+                f"monitoring state '{calendar}'", where=where,
+                todo="Give data of the same model run or product, in the same calendar")
+        seen_s = _loadz(state_dir / current / "times.npz")["seen_s"]
+        dt_s = manifest["time_step_s"]
+        moments = load_state(state_dir / current / "moments.npz")
+        parts = list(manifest["series_parts"])
+        number = int(current[1:]) + 1
+        history = list(manifest["history"])
+        inputs_seen = list(manifest["inputs"])
+    timings["prepare_s"] = time.perf_counter() - t
+
+    like = ds["time"].values
+    t_s = time_seconds(like)
+    plan = _plan_steps(t_s, seen_s, dt_s, allow_gaps, where, calendar, like)
+    if plan.new.size == 0:
+        return UpdateResult(
+            state_dir, False, number - 1, 0, plan.n_duplicate, 0, int(seen_s.size),
+            _text(seen_s.min(), calendar, like), _text(seen_s.max(), calendar, like),
+            False, notes=["Every time step given was already in the state; nothing changed."],
+            timings=timings)
+
+    if created:
+        store_files = save_geometry(store, lon, lat, mask, coastline, capes, frame)
+    else:
+        store_files = list(manifest["store_files"])
+
+    notes: list[str] = []
+    t = time.perf_counter()
+    with tempfile.TemporaryDirectory(prefix="coastmon-update-") as work:
+        steps = plan.new
+        if np.all(np.diff(steps) == 1):
+            steps = slice(int(steps[0]), int(steps[-1]) + 1)
+        passed = run_pass(ds.isel(time=steps), metrics, frame, settings.stream, Path(work))
+        timings["stream_pass_s"] = time.perf_counter() - t
+        merged = passed.state if moments is None else merge_states(moments, passed.state)
+        new_series = _with_fill(passed.series, plan, t_s[plan.new], calendar)
+        part = f"series-{number:06d}-{secrets.token_hex(3)}.nc"
+        _write_part(new_series, store / part)
+    parts.append(part)
+    stats = stats_from_state(merged, metrics)
+    series = _load_series(state_dir, parts)
+    seen_all = np.concatenate([seen_s, t_s[plan.new]])
+    n_filled = int(sum(plan.fill_before))
+
+    light = xr.Dataset({"mask": (("y", "x"), np.asarray(mask))},
+                       coords={"lon": (("y", "x"), lon), "lat": (("y", "x"), lat),
+                               "time": series["time"].values},
+                       attrs={k: ds.attrs.get(k, manifest["dataset_attrs"].get(k) if manifest
+                                              else None)
+                              for k in ("velocity_kind", "depth_m")})
+    prep = pipeline.Prepared(light, metrics, coastline, capes, frame, ld_km, paths)
+    t = time.perf_counter()
+    products = None
+    n_events = 0
+    try:
+        products = pipeline.analyse_series(stats, series, frame, capes, settings, ld_km)
+    except RecordError as exc:
+        notes.append(f"Outputs not refreshed yet: {exc}")
+    timings["analyses_s"] = time.perf_counter() - t
+
+    inputs_seen = inputs_seen + [pipeline.describe_input(p) for p in paths]
+    now = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
+    history.append({"version": number, "when": now, "n_new": int(plan.new.size),
+                    "n_duplicate": plan.n_duplicate, "n_filled": n_filled,
+                    "inputs": [str(p.resolve()) for p in paths]})
+    new_manifest = {
+        "format": "coastmon monitoring state",
+        "format_version": STATE_FORMAT_VERSION,
+        "coastmon_version": __version__,
+        "created": manifest["created"] if manifest else now,
+        "updated": now,
+        "settings": settings.to_dict(),
+        "grid_id": grid_signature(lon, lat),
+        "grid_shape": list(np.shape(lon)),
+        "calendar": calendar,
+        "time_units": _TIME_UNITS,
+        "time_step_s": plan.dt_s,
+        "n_seen": int(seen_all.size),
+        "n_filled_total": int((manifest or {}).get("n_filled_total", 0)) + n_filled,
+        "time_start": _text(seen_all.min(), calendar, like),
+        "time_end": _text(seen_all.max(), calendar, like),
+        "deformation_radius_km": ld_km,
+        "dataset_attrs": {k: light.attrs.get(k) for k in ("velocity_kind", "depth_m")},
+        "store_files": store_files,
+        "series_parts": parts,
+        "inputs": inputs_seen,
+        "history": history,
+    }
+    if products is not None:
+        t = time.perf_counter()
+        f_station = coriolis_parameter(frame.stations["lat"].to_numpy(float))
+        events = shedding_events(series, products.sources, frame, f_station, settings)
+        n_events = len(events)
+        provenance = {
+            "coastmon_version": __version__, "command": "update", "state_version": number,
+            "inputs": inputs_seen, "settings": settings.to_dict(),
+            "versions": pipeline.versions(), "timings_s": timings,
+            "n_time": int(series.sizes["time"]), "n_time_seen": int(seen_all.size),
+            "n_time_filled": new_manifest["n_filled_total"],
+            "grid_shape": list(metrics.shape), "deformation_radius_km": ld_km,
+            "history": history,
+        }
+        with staging_dir(state_dir / OUTPUTS) as stage:
+            pipeline.write_outputs(stage, prep, products, settings, provenance, series=series)
+            events.to_csv(stage / "events.csv", index=False)
+        timings["outputs_s"] = time.perf_counter() - t
+    _commit(state_dir, number, new_manifest, merged, seen_all)
+    _clean_leftovers(state_dir, f"v{number:06d}", set(store_files) | set(parts))
+    return UpdateResult(state_dir, created, number, int(plan.new.size), plan.n_duplicate,
+                        n_filled, int(seen_all.size), new_manifest["time_start"],
+                        new_manifest["time_end"], products is not None, n_events, products,
+                        notes, timings)
+
+
+def _check_same_grid(ds: xr.Dataset, lon: np.ndarray, lat: np.ndarray, mask: np.ndarray,
+                     manifest: dict[str, Any], where: str) -> None:
+    new_lon = np.asarray(ds["lon"].values, np.float64)
+    new_lat = np.asarray(ds["lat"].values, np.float64)
+    problems = []
+    if new_lon.shape != lon.shape:
+        problems.append(f"grid shape {new_lon.shape} instead of {lon.shape}")
+    elif grid_signature(new_lon, new_lat) != manifest["grid_id"]:
+        problems.append("other longitudes or latitudes")
+    elif not np.array_equal(np.asarray(ds["mask"].values), mask):
+        problems.append("another land/sea mask")
+    kind = ds.attrs.get("velocity_kind")
+    stored_kind = manifest["dataset_attrs"].get("velocity_kind")
+    if kind and stored_kind and kind != stored_kind:
+        problems.append(f"{kind} velocity where the state holds {stored_kind} velocity")
+    if problems:
+        raise InputError(
+            "The new data do not belong to this monitoring state: " + "; ".join(problems),
+            where=where,
+            todo="Give files of the same grid and variables as the state, or start a new state "
+                 "folder for this grid",
+        )
+
+
+__all__ = ["STATE_FORMAT_VERSION", "UpdateResult", "load_geometry", "save_geometry",
+           "time_seconds", "update"]
