@@ -2,9 +2,12 @@
 
 The Python API mirrors the pipeline stages (see DEVELOPERS.md for the map)::
 
-    from coastmon import open_dataset, Settings, analyze
-    ds = open_dataset(["run.nc"], Settings().ingest)
-    result = analyze(["run.nc"], out="results/", settings=Settings())
+    from coastmon import Settings
+    from coastmon.io.ingest import open_dataset
+    from coastmon.pipeline import analyze, prepare, analyse_series
+
+    ds = open_dataset(["run.nc"], Settings().ingest)        # canonical, lazy
+    result = analyze(["run.nc"], "results/", Settings())    # the whole job
 """
 
 from __future__ import annotations

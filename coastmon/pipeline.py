@@ -57,6 +57,7 @@ from coastmon.sources import (
     alongshore_profiles,
     find_sources,
     gate_set,
+    gate_stations,
     offshore_feed,
     plume_axes,
     rank_sources,
@@ -123,6 +124,7 @@ class Products:
     spinup: SpinupCurve
     rossby_speed_cm_s: float
     series: xr.Dataset
+    bootstrap_feeds: np.ndarray
     warnings: list[str] = field(default_factory=list)
 
 
@@ -145,9 +147,9 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     warnings: list[str] = []
     profiles = alongshore_profiles(series, frame, settings, ld_km)
     found = find_sources(profiles, frame, capes, settings, ld_km)
-    gates = gate_set(series, frame, settings, dt)
+    gates = gate_set(series, frame, settings, dt, precise=gate_stations(found, frame, settings))
     feed = offshore_feed(found, gates, frame, settings)
-    ranked, gates_df = rank_sources(found, feed)
+    ranked, gates_df, boot = rank_sources(found, feed)
     axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km)
     ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
     if len(ranked) and np.nanmin(ranked["rank_stability"].values[:3]) < 0.8:
@@ -181,7 +183,7 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
                               {"long_name": "coast segment id", "units": "1"})
     spectra = source_spectra(series, frame, ranked, settings, dt)
     return Products(stats, profiles, ranked, gates_df, axes, spacing, spectra, spin,
-                    100.0 * c_rossby, series, warnings)
+                    100.0 * c_rossby, series, boot, warnings)
 
 
 def source_spectra(series: xr.Dataset, frame, ranked: pd.DataFrame, settings: Settings,

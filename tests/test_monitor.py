@@ -157,6 +157,9 @@ def test_settings_and_versions_are_checked(record, tmp_path):
     other = SETTINGS.replace("sources", nearshore_km=20.0)
     with pytest.raises(SettingsError, match="nearshore_km"):
         update(record.state, [record.pieces[2]], other)
+    # output choices do not change the statistics: accepted (nothing new to add here)
+    same = update(record.state, [record.pieces[2]], SETTINGS.replace("output", gis=("gpkg",)))
+    assert same.n_new == 0 and same.version == 3
     copy = tmp_path / "state"
     shutil.copytree(record.state, copy)
     manifest_path = _current(copy) / "manifest.json"
@@ -197,10 +200,10 @@ def test_crash_mid_update_leaves_a_usable_state(record, tmp_path, monkeypatch):
 
 
 # --------------------------------------------------------------------------- events
-def _planted_series(onsets, signs, duration, n_days=400, lag_days=20, probe_km=100.0,
-                    seed=3):
-    """Near-shore vorticity with box-shaped bursts at known onsets, white noise, and the
-    same signal arriving ``lag_days`` later at ``probe_km`` along the zonal ray."""
+def _planted_series(onsets, signs, duration, n_days=400, seed=3):
+    """Near-shore vorticity with box-shaped bursts at known onsets and white noise; the same
+    signal arrives 12 days later at 50 km and 22 days later at 100 km along the zonal ray
+    (eddies form offshore of the station, then drift 50 km in 10 days)."""
     rng = np.random.default_rng(seed)
     amplitude = 3e-5
     signal = np.zeros(n_days)
@@ -210,8 +213,9 @@ def _planted_series(onsets, signs, duration, n_days=400, lag_days=20, probe_km=1
     near = signal + rng.normal(0.0, 2e-6, n_days)
     ray_km = np.arange(0.0, 210.0, 10.0)
     ray = rng.normal(0.0, 2e-6, (n_days, ray_km.size))
-    k = int(np.argmin(np.abs(ray_km - probe_km)))
-    ray[lag_days:, k] += signal[: n_days - lag_days]
+    for distance, lag in ((50.0, 12), (100.0, 22)):
+        k = int(np.argmin(np.abs(ray_km - distance)))
+        ray[lag:, k] += signal[: n_days - lag]
     offsets = np.array([0.0, 10.0, 20.0, 40.0])
     section = np.repeat(near[:, None], offsets.size, axis=1)
     # station 1: one anticyclonic 10-day burst at day 90, no ray
@@ -247,9 +251,9 @@ def test_planted_bursts_are_recovered():
         assert row.duration_days == pytest.approx(duration, abs=1.0)  # check: planted duration
         assert row.sign == ("cyclonic" if sign > 0 else "anticyclonic")  # check: Cushman-Roisin & Beckers 2011 (cyclonic: zeta f > 0)
         assert row.peak_rossby == pytest.approx(sign * 3e-5 / f, rel=0.3)  # check: planted amplitude / f
-        # planted transit: 100 km in 20 days = 5.787 cm/s
+        # planted drift: 50 km (from 50 to 100 km) in 10 days = 5.787 cm/s
         assert row.speed_from == "lag correlation"
-        assert row.offshore_speed_cm_s == pytest.approx(1e7 / (20 * 86400.0), rel=1e-9)  # check: analytic D / lag
+        assert row.offshore_speed_cm_s == pytest.approx(5e6 / (10 * 86400.0), rel=1e-9)  # check: analytic distance / time
     second = events[events["source_rank"] == 2]
     assert len(second) == 1
     assert abs((pd.Timestamp(second["onset"].iloc[0]) - pd.Timestamp("2003-04-01")).days) <= 1  # check: planted onset (day 90)

@@ -557,7 +557,7 @@ def profiles_figure(path: str | os.PathLike[str], stations: pd.DataFrame, eke_a:
         ax.plot(x[order], 1e4 * eke_a[sel][order], color=_fig.BLUE, linewidth=1.4, label="run A")
         ax.plot(x[order], 1e4 * eke_b_on_a[sel][order], color=_fig.ORANGE, linewidth=1.4,
                 linestyle="--", label="run B")
-        ax.set_ylabel("EKE (cm² s⁻²)")
+        ax.set_ylabel("near-shore EKE (cm² s⁻²)")
         ax.text(0.99, 0.97, f"segment {seg}", transform=ax.transAxes, ha="right", va="top",
                 fontsize=8, color="0.3")
         ax.grid(color="0.92", linewidth=0.6)

@@ -29,14 +29,32 @@ def _dual_sum(q: np.ndarray, weights: np.ndarray) -> np.ndarray:
     return out
 
 
+def _cell_mean(q: np.ndarray) -> np.ndarray:
+    """Mean of the four vertices of each dual cell."""
+    out = q[..., _VERTS[0][0], _VERTS[0][1]]
+    for k in range(1, 4):
+        out = out + q[..., _VERTS[k][0], _VERTS[k][1]]
+    return 0.25 * out
+
+
+def _grad_dual(q: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Green's-theorem derivative with the cell mean removed (zero for a constant field)."""
+    return _dual_sum(q, weights) - _cell_mean(q) * weights.sum(axis=0)
+
+
 def gradient_dual(q: np.ndarray, metrics: GridMetrics) -> tuple[np.ndarray, np.ndarray]:
     r"""Eastward and northward derivatives of ``q`` on the dual cells (units of q per m).
 
-    :math:`\partial q/\partial x = A^{-1}\oint q\,dN`, :math:`\partial q/\partial y =
-    -A^{-1}\oint q\,dE` (Green's theorem; trapezoidal line integral).
+    :math:`\partial q/\partial x = A^{-1}\oint (q-\bar q)\,dN`,
+    :math:`\partial q/\partial y = -A^{-1}\oint (q-\bar q)\,dE` (Green's theorem,
+    trapezoidal line integral). On the sphere the plain line integral of a scalar gives the
+    divergence form :math:`(a\cos\varphi)^{-1}\partial(q\cos\varphi)/\partial\varphi`,
+    which differs from the gradient by :math:`q\tan\varphi/a`; removing the cell mean
+    :math:`\bar q` first makes the gradient of a constant exactly zero and keeps the
+    estimate second-order accurate.
     """
     q = np.asarray(q, dtype=np.float64)
-    return _dual_sum(q, metrics.gx), _dual_sum(q, metrics.gy)
+    return _grad_dual(q, metrics.gx), _grad_dual(q, metrics.gy)
 
 
 def gradient(q: np.ndarray, metrics: GridMetrics) -> tuple[np.ndarray, np.ndarray]:
@@ -79,8 +97,8 @@ def strain(u: np.ndarray, v: np.ndarray, metrics: GridMetrics) -> tuple[np.ndarr
     """
     u = np.asarray(u, dtype=np.float64)
     v = np.asarray(v, dtype=np.float64)
-    sn = _dual_sum(u, metrics.gx) - _dual_sum(v, metrics.gy)
-    ss = _dual_sum(v, metrics.gx) + _dual_sum(u, metrics.gy)
+    sn = _grad_dual(u, metrics.gx) - _grad_dual(v, metrics.gy)
+    ss = _grad_dual(v, metrics.gx) + _grad_dual(u, metrics.gy)
     return _to_points(sn), _to_points(ss)
 
 
@@ -88,13 +106,15 @@ def okubo_weiss(u: np.ndarray, v: np.ndarray, metrics: GridMetrics) -> np.ndarra
     r"""Okubo–Weiss parameter :math:`W = s_n^2 + s_s^2 - \zeta^2` (s-2).
 
     Negative W marks rotation-dominated eddy cores (Okubo 1970; Weiss 1991). Computed on
-    the dual cells, then averaged to the points.
+    the dual cells (strain from :func:`gradient_dual`, vorticity from the circulation), then
+    averaged to the points.
     """
     u = np.asarray(u, dtype=np.float64)
     v = np.asarray(v, dtype=np.float64)
-    ux, uy = _dual_sum(u, metrics.gx), _dual_sum(u, metrics.gy)
-    vx, vy = _dual_sum(v, metrics.gx), _dual_sum(v, metrics.gy)
-    return _to_points((ux - vy) ** 2 + (vx + uy) ** 2 - (vx - uy) ** 2)
+    ux, uy = _grad_dual(u, metrics.gx), _grad_dual(u, metrics.gy)
+    vx, vy = _grad_dual(v, metrics.gx), _grad_dual(v, metrics.gy)
+    zeta = vorticity_dual(u, v, metrics)
+    return _to_points((ux - vy) ** 2 + (vx + uy) ** 2 - zeta**2)
 
 
 def rossby_number(zeta: np.ndarray, metrics: GridMetrics) -> np.ndarray:

@@ -15,15 +15,18 @@ step), and the sense of rotation: **cyclonic** where ζ′·f > 0, **anticycloni
 Earth's rotation).
 
 **Offshore speed.** Eddies shed at the coast drift offshore, so the vorticity seen at the
-station reappears later at a point ``monitor.probe_km`` along the source's zonal ray. The
-lag τ that maximises the correlation between the station's ζ′(t) and the probe's ζ′(t + τ)
-gives the speed D/τ (the lagged-correlation transit-time method; e.g. Emery & Thomson
-2014, *Data Analysis Methods in Physical Oceanography*, ch. 5). The lag is accepted when the
-maximum lies strictly inside the searched range (1 step to the time needed at 0.5 cm s-1,
-at most a third of the record) and the correlation reaches
-``monitor.min_lag_correlation``; otherwise the source's measured ``west_speed_cm_s`` is
-given. The column ``speed_from`` says which: ``lag correlation``, ``source west speed``
-or ``not measured``.
+station reappears later along the source's zonal ray. The lag τ(D) that maximises the
+correlation between the station's ζ′(t) and ζ′(t + τ) at distance D along the ray is the
+transit time to D (the lagged-correlation transit-time method; e.g. Emery & Thomson 2014,
+*Data Analysis Methods in Physical Oceanography*, ch. 5). Eddies form some way offshore and
+take time to grow, so τ(D) alone overstates the time spent travelling; the difference of
+two transit times cancels both: the speed is (D₂ − D₁)/(τ(D₂) − τ(D₁)) with
+D₂ = ``monitor.probe_km`` and D₁ = D₂/2. Each lag is accepted when the maximum lies
+strictly inside the searched range (1 step to the time needed at 0.5 cm s-1, at most a
+third of the record) and the correlation reaches ``monitor.min_lag_correlation``, and
+τ(D₂) must exceed τ(D₁); otherwise the source's measured ``west_speed_cm_s`` is given. The
+column ``speed_from`` says which: ``lag correlation``, ``source west speed`` or ``not
+measured``; ``lag_correlation`` is the smaller of the two correlations.
 """
 
 from __future__ import annotations
@@ -181,9 +184,8 @@ def shedding_events(series: xr.Dataset, sources: pd.DataFrame, frame: Any,
     zeta = nearshore_anomaly(series["section_zeta"].values, series["offset_km"].values,
                              settings.sources.nearshore_km)
     ray_km = np.asarray(series["ray_km"].values, dtype=float)
-    probe_k = int(np.argmin(np.abs(ray_km - m.probe_km)))
-    probe_km = float(ray_km[probe_k])
-    max_lag = int(min(np.ceil(probe_km / (MIN_SPEED_CM_S / _CM_S_PER_KM_DAY) / dt),
+    probes = [int(np.argmin(np.abs(ray_km - d))) for d in (0.5 * m.probe_km, m.probe_km)]
+    max_lag = int(min(np.ceil(ray_km[probes[1]] / (MIN_SPEED_CM_S / _CM_S_PER_KM_DAY) / dt),
                       zeta.shape[0] // 3))
     min_steps = int(np.ceil(m.event_min_days / dt - 1e-9))
     rows = []
@@ -197,7 +199,7 @@ def shedding_events(series: xr.Dataset, sources: pd.DataFrame, frame: Any,
         runs = exceedance_runs(x, threshold, min_steps)
         if not runs:
             continue
-        speed, speed_from, corr = _offshore_speed(series, x, s, frame, probe_k, probe_km,
+        speed, speed_from, corr = _offshore_speed(series, x, s, frame, probes, ray_km,
                                                   max_lag, dt, m.min_lag_correlation,
                                                   src.get("west_speed_cm_s", np.nan))
         f = float(f_per_s[s])
@@ -218,19 +220,28 @@ def shedding_events(series: xr.Dataset, sources: pd.DataFrame, frame: Any,
     return pd.DataFrame(rows, columns=EVENT_COLUMNS)
 
 
-def _offshore_speed(series: xr.Dataset, near: np.ndarray, s: int, frame: Any, probe_k: int,
-                    probe_km: float, max_lag: int, dt: float, min_corr: float,
-                    fallback: float) -> tuple[float, str, float]:
+def _offshore_speed(series: xr.Dataset, near: np.ndarray, s: int, frame: Any,
+                    probes: list[int], ray_km: np.ndarray, max_lag: int, dt: float,
+                    min_corr: float, fallback: float) -> tuple[float, str, float]:
     """Offshore speed (cm s-1) of the source at station ``s``, how it was found, and r."""
     corr = float("nan")
     r_station = _ray_station(frame.stations, s)
-    if r_station is not None and max_lag >= 2 and "ray_zeta" in series:
-        probe = np.asarray(series["ray_zeta"].values[:, r_station, probe_k], dtype=float)
-        if np.isfinite(probe).sum() >= 10:
-            probe = probe - np.nanmean(probe)
-            lag, corr = offshore_lag(near, probe, max_lag, min_corr)
-            if lag is not None:
-                return probe_km / (lag * dt) * _CM_S_PER_KM_DAY, "lag correlation", corr
+    lags, corrs = [], []
+    if r_station is not None and max_lag >= 2 and "ray_zeta" in series \
+            and probes[1] > probes[0]:
+        for k in probes:
+            probe = np.asarray(series["ray_zeta"].values[:, r_station, k], dtype=float)
+            if np.isfinite(probe).sum() < 10:
+                break
+            lag, r = offshore_lag(near, probe - np.nanmean(probe), max_lag, min_corr)
+            lags.append(lag)
+            corrs.append(r)
+        if corrs:
+            corr = float(np.nanmin(corrs)) if np.isfinite(corrs).any() else float("nan")
+        if len(lags) == 2 and None not in lags and lags[1] > lags[0]:
+            distance = float(ray_km[probes[1]] - ray_km[probes[0]])
+            speed = distance / ((lags[1] - lags[0]) * dt) * _CM_S_PER_KM_DAY
+            return speed, "lag correlation", corr
     fallback = float(fallback) if fallback is not None else float("nan")
     if np.isfinite(fallback):
         return fallback, "source west speed", corr

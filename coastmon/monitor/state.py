@@ -67,7 +67,7 @@ from scipy import sparse
 
 from coastmon import __version__, pipeline
 from coastmon.config import Settings, settings_from_dict
-from coastmon.errors import CoastmonError, InputError, OutputError, RecordError, SettingsError
+from coastmon.errors import InputError, OutputError, RecordError, SettingsError
 from coastmon.geometry import Coastline, Frame, Segment, local_projection
 from coastmon.grid.metrics import GridMetrics, coriolis_parameter
 from coastmon.io.atomic import atomic_write_text, staging_dir
@@ -262,7 +262,7 @@ def _locked(state_dir: Path) -> Iterator[None]:
         try:
             fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
         except OSError:
-            raise CoastmonError(
+            raise OutputError(
                 "Another update of this monitoring state is running", where=str(state_dir),
                 todo="Wait for it to finish, then run the update again",
             ) from None

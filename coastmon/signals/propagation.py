@@ -144,6 +144,22 @@ def _complete_block(field: np.ndarray) -> tuple[np.ndarray, tuple[int, int]]:
     return data[:, best[0]:best[1]], best
 
 
+
+def detrend_time(data: np.ndarray) -> np.ndarray:
+    """Remove a least-squares straight line in time (axis 0) at every distance.
+
+    Closed-form normal equations for the line ``a + b t`` (the same result as
+    ``scipy.signal.detrend(data, axis=0, type="linear")``, without a general solver).
+    """
+    data = np.asarray(data, dtype=np.float64)
+    n = data.shape[0]
+    t = np.arange(n, dtype=np.float64) - 0.5 * (n - 1)
+    mean = data.mean(axis=0)
+    denom = float(np.sum(t * t))
+    slope = (t @ data) / denom if denom > 0 else np.zeros_like(mean)
+    return data - mean - np.multiply.outer(t, slope)
+
+
 def wavenumber_frequency(field: np.ndarray, dt: float, dd: float,
                          taper: bool = True) -> KWSpectrum:
     r"""Wavenumber-frequency spectrum of a Hovmöller field, split by propagation direction.
@@ -182,7 +198,7 @@ def wavenumber_frequency(field: np.ndarray, dt: float, dd: float,
     """
     data, used = _complete_block(field)
     n_t, n_d = data.shape
-    detrended = scipy.signal.detrend(data, axis=0, type="linear")
+    detrended = detrend_time(data)
     if taper:
         window = np.outer(scipy.signal.windows.hann(n_t, sym=False),
                           scipy.signal.windows.hann(n_d, sym=False))
@@ -315,27 +331,40 @@ def radon_speed(field: np.ndarray, dt: float, dd: float,
     """
     data, _ = _complete_block(field)
     n_t, n_d = data.shape
-    detrended = scipy.signal.detrend(data, axis=0, type="linear").ravel()
+    detrended = detrend_time(data).ravel()
     steps_t = np.repeat(np.arange(n_t, dtype=float), n_d)
     steps_d = np.tile(np.arange(n_d, dtype=float), n_t)
 
-    def energy(theta: float) -> float:
-        position = steps_d * np.cos(theta) - steps_t * np.sin(theta)
-        position -= position.min()
-        low = position.astype(int)
+    def energies(thetas: np.ndarray) -> np.ndarray:
+        # All angles in one pass: each angle's bins are offset into its own range.
+        thetas = np.atleast_1d(np.asarray(thetas, dtype=float))
+        position = (np.outer(np.cos(thetas), steps_d) - np.outer(np.sin(thetas), steps_t))
+        position -= position.min(axis=1, keepdims=True)
+        low = position.astype(np.int64)
         upper = position - low
         size = int(low.max()) + 2
-        sums = (np.bincount(low, detrended * (1.0 - upper), size)
-                + np.bincount(low + 1, detrended * upper, size))
-        counts = np.bincount(low, 1.0 - upper, size) + np.bincount(low + 1, upper, size)
-        return float(np.sum(sums ** 2) / np.sum(counts ** 2))
+        low += (np.arange(thetas.size) * size)[:, None]
+        total = thetas.size * size
+        w_low, w_up = 1.0 - upper, upper
+        sums = (np.bincount(low.ravel(), (detrended * w_low).ravel(), total)
+                + np.bincount((low + 1).ravel(), (detrended * w_up).ravel(), total))
+        counts = (np.bincount(low.ravel(), w_low.ravel(), total)
+                  + np.bincount((low + 1).ravel(), w_up.ravel(), total))
+        sums = sums.reshape(thetas.size, size)
+        counts = counts.reshape(thetas.size, size)
+        return np.sum(sums**2, axis=1) / np.sum(counts**2, axis=1)
+
+    def energy(theta: float) -> float:
+        return float(energies(np.array([theta]))[0])
 
     low_deg, high_deg = {"dominant": (-89.5, 89.5), "positive": (0.25, 89.5),
                          "negative": (-89.5, -0.25)}[direction]
     coarse = np.deg2rad(np.arange(low_deg, high_deg + 1e-9, 1.0))
-    best = coarse[int(np.argmax([energy(a) for a in coarse]))]
+    coarse_energy = np.concatenate([energies(part) for part in np.array_split(
+        coarse, max(1, coarse.size // 30))])
+    best = coarse[int(np.argmax(coarse_energy))]
     fine = np.clip(best + np.deg2rad(np.arange(-1.0, 1.01, 0.1)), coarse[0], coarse[-1])
-    fine_energy = np.array([energy(a) for a in fine])
+    fine_energy = energies(fine)
     best = fine[int(np.argmax(fine_energy))]
     step = np.deg2rad(0.1)
     refined = minimize_scalar(lambda a: -energy(a), method="bounded",

@@ -1,7 +1,14 @@
 """Find the vorticity sources, measure the eddy energy they feed offshore, rank them."""
 
 from coastmon.sources.detect import alongshore_profiles, find_sources, nearest_cape
-from coastmon.sources.feed import FeedResult, GateSet, gate_set, offshore_feed, rank_sources
+from coastmon.sources.feed import (
+    FeedResult,
+    GateSet,
+    gate_set,
+    gate_stations,
+    offshore_feed,
+    rank_sources,
+)
 from coastmon.sources.plumes import jet_spacing_km, mean_zonal_anomaly, plume_axes
 
 __all__ = [
@@ -10,6 +17,7 @@ __all__ = [
     "alongshore_profiles",
     "find_sources",
     "gate_set",
+    "gate_stations",
     "jet_spacing_km",
     "mean_zonal_anomaly",
     "nearest_cape",

@@ -39,7 +39,7 @@ import xarray as xr
 
 from coastmon.config import Settings
 from coastmon.grid.metrics import haversine_m
-from coastmon.signals import propagation_speed, wavenumber_frequency
+from coastmon.signals import centroid_speed, propagation_speed, wavenumber_frequency
 
 G = 9.80665
 
@@ -64,8 +64,26 @@ def _window(ray_km: np.ndarray, centre_km: float, half_km: float) -> np.ndarray:
     return np.flatnonzero(np.abs(ray_km - centre_km) <= half_km + 1e-9)
 
 
-def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float) -> GateSet:
-    """Measure the gate quantities on every ray that reaches ``gate_offset_km``."""
+def gate_stations(sources: pd.DataFrame, frame, settings: Settings) -> set[int]:
+    """Stations whose rays form the gate of at least one source."""
+    st = frame.stations
+    out: set[int] = set()
+    for _, row in sources.iterrows():
+        same = st["segment_id"].values == row["segment_id"]
+        near = np.abs(st["alongshore_km"].values - row["alongshore_km"])
+        out.update(np.flatnonzero(same & (near <= settings.sources.gate_halfwidth_km)).tolist())
+    return out
+
+
+def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
+             precise: set[int] | None = None) -> GateSet:
+    """Measure the gate quantities on every ray that reaches ``gate_offset_km``.
+
+    The offshore propagation speed is the Radon-transform estimate
+    (:func:`coastmon.signals.propagation_speed`) on the rays of ``precise`` stations (the
+    source gates) and the cheaper spectral-centroid estimate elsewhere (used only for the
+    coast-wide background).
+    """
     src = settings.sources
     ray_km = np.asarray(series["ray_km"].values, dtype=float)
     if ray_km.size < 4:
@@ -100,10 +118,14 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float) -> G
         total += spec_v.positive_energy + spec_v.negative_energy
         off = spec_u.positive_energy + spec_v.positive_energy
         fraction = float(off / total) if total > 0 else 0.0
-        est = propagation_speed(z, dt_days, dd_km)
         km_per_day = 1000.0 / 86400.0
-        speed = float(est.speed) * km_per_day
-        sd = float(abs(est.speed_hi - est.speed_lo)) / (2 * 1.96) * km_per_day
+        if precise is None or s in precise:
+            est = propagation_speed(z, dt_days, dd_km, direction="positive")
+            speed = float(est.speed) * km_per_day
+            sd = float(abs(est.speed_hi - est.speed_lo)) / (2 * 1.96) * km_per_day
+        else:
+            speed = float(centroid_speed(spec_v, +1)) * km_per_day
+            sd = 0.0
         pw = np.nan
         if has_ssh:
             h = np.asarray(rh[:, s, gate_i], dtype=np.float64)
@@ -259,11 +281,13 @@ def offshore_feed(
     return FeedResult(pd.DataFrame(rows), gate_geoms, boot_feeds, rho0 * bg)
 
 
-def rank_sources(sources: pd.DataFrame, feed: FeedResult) -> tuple[pd.DataFrame, pd.DataFrame]:
+def rank_sources(sources: pd.DataFrame, feed: FeedResult
+                 ) -> tuple[pd.DataFrame, pd.DataFrame, np.ndarray]:
     """Join feeds to the sources, rank by feed (1 = largest), and measure rank stability.
 
     Rank stability of a source is the fraction of bootstrap resamples in which it keeps its
-    rank (a short record gives unstable ranks).
+    rank (a short record gives unstable ranks). Returns the ranked table, the gates (in rank
+    order) and the bootstrap feeds with columns in rank order, shape (n_boot, n_sources).
     """
     table = pd.concat([sources.reset_index(drop=True), feed.table.reset_index(drop=True)], axis=1)
     order = np.argsort(-np.nan_to_num(table["feed_w_per_m"].values, nan=-np.inf), kind="stable")
@@ -282,4 +306,6 @@ def rank_sources(sources: pd.DataFrame, feed: FeedResult) -> tuple[pd.DataFrame,
                              "lon": [g.get("lon") for g in gate_order],
                              "lat": [g.get("lat") for g in gate_order]}) if len(table) else \
         pd.DataFrame({"rank": pd.Series(dtype=int), "lon": [], "lat": []})
-    return table, gates_df
+    boot = feed.bootstrap_feeds[:, np.argsort(rank)] if feed.bootstrap_feeds.size else \
+        np.zeros((0, len(table)))
+    return table, gates_df, boot

@@ -109,6 +109,16 @@ def _dual_fields(u, v, gx, gy, ow_threshold, zeta, core, zd, wd, wp):  # pragma:
                 vy = vy + gy[3, j, i] * v3
                 z = vx - uy
                 zd[t, j, i] = z
+                # Strain uses derivatives with the cell mean removed, as
+                # coastmon.grid.operators.gradient_dual does; vorticity is the circulation.
+                mu = 0.25 * (((u0 + u1) + u2) + u3)
+                mv = 0.25 * (((v0 + v1) + v2) + v3)
+                sgx = ((gx[0, j, i] + gx[1, j, i]) + gx[2, j, i]) + gx[3, j, i]
+                sgy = ((gy[0, j, i] + gy[1, j, i]) + gy[2, j, i]) + gy[3, j, i]
+                ux = ux - mu * sgx
+                uy = uy - mu * sgy
+                vx = vx - mv * sgx
+                vy = vy - mv * sgy
                 wd[t, j, i] = (ux - vy) ** 2 + (vx + uy) ** 2 - z**2
     # 2. Points: mean of the valid dual cells around each point; row sums of W per t.
     rsum = np.zeros((ny, nt))
@@ -219,11 +229,12 @@ def dual_fields(
 ) -> tuple[np.ndarray, np.ndarray]:
     r"""Vorticity and Okubo–Weiss eddy-core flags at the grid points of a ``(t, y, x)`` block.
 
-    On each dual cell, the derivatives are the Green's-theorem sums
-    :math:`\partial q/\partial x = \sum_k g^x_k q_k`, :math:`\partial q/\partial y =
-    \sum_k g^y_k q_k`; vorticity is :math:`\zeta = v_x - u_y` (circulation over area,
-    Stokes) and :math:`W = (u_x - v_y)^2 + (v_x + u_y)^2 - \zeta^2` (Okubo 1970; Weiss
-    1991). Point values are the mean of the valid dual cells around the point, exactly
+    On each dual cell, vorticity is the circulation over the area (Stokes),
+    :math:`\zeta = \sum_k g^x_k v_k - \sum_k g^y_k u_k`, and the strain uses the
+    Green's-theorem derivatives with the cell mean removed,
+    :math:`\partial q/\partial x = \sum_k g^x_k (q_k - \bar q)` (as
+    :func:`coastmon.grid.operators.gradient_dual`), in
+    :math:`W = (u_x - v_y)^2 + (v_x + u_y)^2 - \zeta^2` (Okubo 1970; Weiss 1991). Point values are the mean of the valid dual cells around the point, exactly
     as :func:`coastmon.grid.operators.vorticity`. A point is an eddy core when
     :math:`W < -\theta\,\sigma_W`, with :math:`\sigma_W` the spatial (population)
     standard deviation of W over the valid points of that snapshot.

@@ -1,0 +1,179 @@
+"""End-to-end: the planted-truth scenarios through the whole pipeline.
+
+The truth is planted by the scenario generator (its own analytic feed formula, its own
+capes and birth sites); nothing here is read back from the code under test.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pyogrio
+import pytest
+import xarray as xr
+
+from coastmon.config import Settings
+from coastmon.grid.metrics import haversine_m
+from coastmon.pipeline import analyse_series, analyze, prepare
+from coastmon.scenario import (
+    ScenarioParams,
+    default_params,
+    make_scenario,
+    straight_coast_params,
+)
+from coastmon.stream import run_pass
+
+QUIET = Settings().replace("stream", progress=False)
+
+
+def _run(params: ScenarioParams, tmp: Path, settings: Settings = QUIET):
+    nc, truth = make_scenario(params, tmp)
+    prep = prepare([nc], settings)
+    res = run_pass(prep.ds, prep.metrics, prep.frame, settings.stream, tmp / "work")
+    products = analyse_series(res.stats, res.series, prep.frame, prep.capes, settings, prep.ld_km)
+    return prep, products, json.loads(truth.read_text())
+
+
+def _match(sources: pd.DataFrame, lon: float, lat: float) -> tuple[int, float]:
+    d = haversine_m(sources["lon"].values, sources["lat"].values, lon, lat) / 1000.0
+    k = int(np.argmin(d))
+    return k, float(d[k])
+
+
+@pytest.fixture(scope="module")
+def default_run(tmp_path_factory):
+    out = tmp_path_factory.mktemp("e2e") / "out"
+    nc, truth = make_scenario(default_params(), out.parent / "data")
+    result = analyze([nc], out, QUIET)
+    return out, result, json.loads(truth.read_text())
+
+
+@pytest.mark.slow
+def test_planted_order_and_positions_recovered(default_run):
+    _, result, truth = default_run
+    src = result.products.sources
+    planted = {p["name"]: p for p in truth["sources"]}
+    found_ranks = []
+    for name in truth["expected_rank"]:
+        p = planted[name]
+        k, dist = _match(src, p["cape_lon"], p["cape_lat"])
+        # check: planted truth (scenario generator); one grid cell is ~8 km, cape width >= 40 km
+        assert dist < 30.0, f"{name}: nearest source {dist:.0f} km from its cape"
+        assert src["cape_id"].values[k] != ""
+        found_ranks.append(int(src["rank"].values[k]))
+    # check: planted truth (expected rank order written by the generator)
+    assert found_ranks == sorted(found_ranks) and found_ranks[0] == 1
+
+
+@pytest.mark.slow
+def test_feed_ratio_within_factor_1_5_of_planted(default_run):
+    _, result, truth = default_run
+    src = result.products.sources
+    feeds = []
+    for p in truth["sources"][:2]:
+        k, _ = _match(src, p["cape_lon"], p["cape_lat"])
+        feeds.append((src["feed_w_per_m"].values[k], p["realized_feed_w_per_m"]))
+    measured = feeds[0][0] / feeds[1][0]
+    planted = feeds[0][1] / feeds[1][1]
+    # check: planted truth; feed = rate * rho0 * pi * psi0^2 / 2 (Gaussian-eddy energy integral)
+    assert planted / 1.5 <= measured <= planted * 1.5
+
+
+@pytest.mark.slow
+def test_absolute_feed_and_speed_match_the_planted_eddies(default_run):
+    _, result, truth = default_run
+    src = result.products.sources
+    for p in truth["sources"]:
+        k, _ = _match(src, p["cape_lon"], p["cape_lat"])
+        # check: planted truth (analytic energy flux of the planted eddies across the gate)
+        assert p["realized_feed_w_per_m"] / 2 < src["feed_w_per_m"].values[k] < \
+            2 * p["realized_feed_w_per_m"]
+        # check: planted truth (westward translation speed of the planted eddies)
+        assert abs(src["west_speed_cm_s"].values[k] / 100 - truth["planted_westward_speed_m_s"]) \
+            < 0.3 * truth["planted_westward_speed_m_s"]
+
+
+@pytest.mark.slow
+def test_output_contract_is_complete(default_run):
+    out, _, _ = default_run
+    for name in ("map.gpkg", "sources.csv", "capes.csv", "results.nc", "report.html",
+                 "run.json"):
+        assert (out / name).is_file(), name
+    layers = {name for name, _ in pyogrio.list_layers(out / "map.gpkg")}
+    # check: design.md output contract, read back through GDAL (pyogrio)
+    assert {"coastline", "capes", "sources", "gates", "plume_axes"} <= layers
+    src = gpd.read_file(out / "map.gpkg", layer="sources")
+    assert src.crs.to_epsg() == 4326
+    need = {"rank", "feed_w_per_m", "feed_lo", "feed_hi", "persistence", "cape_id",
+            "dist_to_cape_km", "alongshore_km", "west_speed_cm_s"}
+    assert need <= set(src.columns)
+    assert (src["feed_lo"] <= src["feed_w_per_m"]).all() and (src["feed_w_per_m"] <= src["feed_hi"]).all()
+    with xr.open_dataset(out / "results.nc") as ds:
+        assert "eke" in ds and ds["eke"].attrs["units"] == "m2 s-2"
+    run = json.loads((out / "run.json").read_text())
+    assert run["inputs"][0]["metadata_sha256"] and run["timings_s"]["stream_pass_s"] > 0
+    assert sorted(p.name for p in (out / "figures").glob("*.png"))
+    assert not list(out.parent.glob(".out.partial-*"))
+
+
+@pytest.mark.slow
+def test_straight_coast_control_has_no_anchored_persistent_source(tmp_path):
+    params = dataclasses.replace(straight_coast_params(), n_days=400, compress=False)
+    _, products, truth = _run(params, tmp_path)
+    assert truth["sources"] == []
+    src = products.sources
+    anchored = src[(src["cape_id"].astype(str) != "") &
+                   (src["persistence"] >= QUIET.sources.min_persistence)]
+    # check: planted truth (control: births uniform along a straight coast, no capes)
+    assert len(anchored) == 0
+
+
+def _small(seed: int) -> ScenarioParams:
+    base = default_params()
+    keep = {"Tasker Head", "Cape Orrin"}
+    return dataclasses.replace(
+        base, seed=seed, n_days=400, lon_min=-42.0, lat_min=33.0, lat_max=38.0,
+        resolution_deg=0.1, compress=False,
+        capes=tuple(c for c in base.capes if c.name in keep),
+        islands=(),
+        sources=tuple(s for s in base.sources if s.cape in keep),
+    )
+
+
+@pytest.mark.slow
+def test_bootstrap_intervals_cover_the_planted_ratio(tmp_path):
+    covered, n = 0, 20
+    for seed in range(n):
+        _, products, truth = _run(_small(1000 + seed), tmp_path / f"s{seed}")
+        src = products.sources
+        ks = []
+        for p in truth["sources"]:
+            k, d = _match(src, p["cape_lon"], p["cape_lat"]) if len(src) else (-1, np.inf)
+            ks.append(k if d < 30 else -1)
+        if min(ks) < 0:
+            continue
+        planted = truth["sources"][0]["realized_feed_w_per_m"] / \
+            truth["sources"][1]["realized_feed_w_per_m"]
+        boot = products.bootstrap_feeds
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = boot[:, ks[0]] / boot[:, ks[1]]
+        lo, hi = np.nanpercentile(ratio, [2.5, 97.5])
+        covered += int(lo <= planted <= hi)
+    # check: Künsch (1989) moving-block bootstrap; nominal 95 % coverage, "most" = >= 70 %
+    assert covered >= 0.7 * n, f"covered {covered} of {n}"
+
+
+def test_demo_command_refuses_an_output_that_is_a_file(tmp_path):
+    f = tmp_path / "taken"
+    f.write_text("x")
+    proc = subprocess.run([sys.executable, "-m", "coastmon", "demo", "--out", str(f),
+                           "--no-progress"], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr
+    assert f.read_text() == "x"
