@@ -22,7 +22,8 @@ class CoastmonError(Exception):
         if where:
             parts.append(f"Where: {where}.")
         if todo:
-            parts.append(todo.strip().rstrip(".") + ".")
+            todo = todo.strip().rstrip(".")
+            parts.append(todo if todo.endswith(("?", "!")) else todo + ".")
         super().__init__(" ".join(parts))
 
 

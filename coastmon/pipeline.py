@@ -15,12 +15,15 @@ succeeded, so a failed or interrupted run leaves no half-written results.
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import json
 import platform
 import shutil
 import tempfile
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -34,7 +37,7 @@ from shapely.geometry import LineString, Point
 from coastmon import __version__
 from coastmon.assess.spinup import SpinupCurve, spinup_curve
 from coastmon.config import Settings
-from coastmon.errors import OutputError, RecordError
+from coastmon.errors import CoastmonError, GeometryError, InputError, OutputError, RecordError
 from coastmon.geometry import (
     build_frame,
     capes_layer,
@@ -43,13 +46,14 @@ from coastmon.geometry import (
     find_capes,
 )
 from coastmon.grid.metrics import GridMetrics, beta_parameter
-from coastmon.io.atomic import atomic_write_text, staging_dir
+from coastmon.io.atomic import atomic_write_text, output_error, staging_dir
 from coastmon.io.gis import write_layers
 from coastmon.io.ingest import open_dataset
 from coastmon.io.results import CAUTIONS, write_results
 from coastmon.signals import (
     cwt_morlet,
     default_deformation_radius_km,
+    fourier_factor,
     long_rossby_speed,
     wavenumber_frequency,
 )
@@ -87,6 +91,16 @@ def deformation_radius_km(settings: Settings, frame) -> float:
     return float(default_deformation_radius_km(float(np.nanmedian(frame.stations["lat"]))))
 
 
+@contextmanager
+def geometry_of(path: str | Path) -> Iterator[None]:
+    """Name the input file in a :class:`GeometryError` raised from its land/sea mask."""
+    try:
+        yield
+    except GeometryError as exc:
+        where = f"{exc.where}, land/sea mask of {path}" if exc.where else f"land/sea mask of {path}"
+        raise GeometryError(exc.what, where=where, todo=exc.todo) from None
+
+
 def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
     """Open the inputs lazily and build grid metrics, coastline, capes and frame."""
     ds = open_dataset([Path(p) for p in inputs], settings.ingest)
@@ -95,9 +109,10 @@ def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
     mask = np.asarray(ds["mask"].values)
     metrics = GridMetrics.from_lonlat(lon, lat)
     bathy = np.asarray(ds["bathymetry"].values) if "bathymetry" in ds else None
-    coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
-    capes = find_capes(coastline, settings.coast)
-    frame = build_frame(coastline, lon, lat, mask, settings.coast)
+    with geometry_of(inputs[0]):
+        coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
+        capes = find_capes(coastline, settings.coast)
+        frame = build_frame(coastline, lon, lat, mask, settings.coast)
     return Prepared(ds, metrics, coastline, capes, frame, deformation_radius_km(settings, frame),
                     [Path(p) for p in inputs])
 
@@ -108,6 +123,31 @@ def time_in_days(time: xr.DataArray) -> np.ndarray:
     idx = time.to_index()
     delta = pd.to_timedelta(idx - idx[0])
     return np.asarray(delta.total_seconds(), dtype=float) / 86400.0
+
+
+def check_record_length(n_t: int, dt_days: float, settings: Settings,
+                        where: str = "the input files' time axis") -> None:
+    """Refuse a record too short for the eddy band, before any work is spent on it.
+
+    Persistence is measured only where the longest eddy period is clear of the record ends,
+    i.e. inside the Morlet cone of influence: at the middle of a record of N steps of dt its
+    e-folding time is ``lambda/s * N dt / (2 sqrt 2)`` (Torrence & Compo 1998, sec. 3g), so
+    N dt must be at least ``2 sqrt(2) / (lambda/s)`` (about 2.74 for omega0 = 6) times the
+    longest period of ``signals.eddy_period_days``.
+    """
+    longest = float(settings.signals.eddy_period_days[1])
+    needed = 2.0 * np.sqrt(2.0) * longest / fourier_factor(settings.signals.omega0)
+    length = n_t * dt_days
+    if length < needed:
+        raise RecordError(
+            f"The record is {length:.0f} days long ({n_t} steps, {dt_days:g} d apart), too short "
+            f"to measure eddy shedding at periods up to {longest:.0f} days: the middle of the "
+            f"record must be clear of edge effects at that period, which needs at least "
+            f"{np.ceil(needed):.0f} days",
+            where=f"{where}; signals.eddy_period_days",
+            todo="Give a longer record (better, several years), or lower the upper end of "
+                 "signals.eddy_period_days in a settings file",
+        )
 
 
 @dataclass
@@ -133,17 +173,8 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     """Signals, sources, feeds, plumes and spin-up from the pass's small outputs."""
     if "time_days" not in series.coords:
         series = series.assign_coords(time_days=("time", time_in_days(series["time"])))
-    n_t = series.sizes["time"]
-    longest = settings.signals.eddy_period_days[1]
     dt = time_step_days(series)
-    if n_t * dt < 2.0 * longest:
-        raise RecordError(
-            f"The record is {n_t * dt:.0f} days long, too short to measure eddy shedding at "
-            f"periods up to {longest:.0f} days",
-            where="the input files' time axis",
-            todo="Give at least twice the longest eddy period (better, several years), or lower "
-                 "signals.eddy_period_days in the settings",
-        )
+    check_record_length(series.sizes["time"], dt, settings)
     warnings: list[str] = []
     profiles = alongshore_profiles(series, frame, settings, ld_km)
     found = find_sources(profiles, frame, capes, settings, ld_km)
@@ -333,11 +364,22 @@ def check_out_dir(out: Path, inputs: list[Path]) -> Path:
                           todo="Give --out a folder name (it is created if missing)")
     for p in inputs:
         rp = Path(p).resolve()
-        if rp == out or out in rp.parents:
+        if rp == out or out in rp.parents or rp in out.parents:
             raise OutputError(
-                "The output folder is (or contains) an input", where=f"--out {out}, input {rp}",
+                "The output folder is, contains or lies inside an input",
+                where=f"--out {out}, input {rp}",
                 todo="Write the results to a separate folder so inputs are never touched")
     return out
+
+
+def pass_error(exc: OSError, work: Path, inputs: list[Path]) -> CoastmonError:
+    """A file-system error in the streaming pass: its working folder, or reading an input."""
+    if exc.errno in (errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM):
+        return output_error(exc, work, "write the working files of the streaming pass (in the "
+                            "system temporary folder; set TMPDIR to use another)")
+    return InputError(f"Reading the input failed during the streaming pass ({exc})",
+                      where=", ".join(str(p) for p in inputs),
+                      todo="Check the files with a NetCDF or Zarr tool, or copy them again")
 
 
 @dataclass
@@ -368,10 +410,16 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings) -> An
     inputs = [Path(p) for p in inputs]
     out = check_out_dir(Path(out), inputs)
     prep = prepare(inputs, settings)
+    days = time_in_days(prep.ds["time"])
+    check_record_length(days.size, float(np.median(np.diff(days))), settings,
+                        where=f"time axis of {', '.join(str(p) for p in inputs)}")
     timings["prepare_s"] = time.perf_counter() - t
     with staging_dir(out) as stage, tempfile.TemporaryDirectory(prefix="coastmon-work-") as work:
         t = time.perf_counter()
-        result = run_pass(prep.ds, prep.metrics, prep.frame, settings.stream, Path(work))
+        try:
+            result = run_pass(prep.ds, prep.metrics, prep.frame, settings.stream, Path(work))
+        except OSError as exc:
+            raise pass_error(exc, Path(work), inputs) from None
         timings["stream_pass_s"] = time.perf_counter() - t
         t = time.perf_counter()
         products = analyse_series(result.stats, result.series, prep.frame, prep.capes,
@@ -418,8 +466,9 @@ def coast(input_path: str | Path, out: str | Path, settings: Settings) -> CoastR
     lat = np.asarray(ds["lat"].values, dtype=np.float64)
     mask = np.asarray(ds["mask"].values)
     bathy = np.asarray(ds["bathymetry"].values) if "bathymetry" in ds else None
-    coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
-    capes = find_capes(coastline, settings.coast)
+    with geometry_of(input_path):
+        coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
+        capes = find_capes(coastline, settings.coast)
     layers = {"coastline": coastline_layer(coastline), "capes": capes_layer(capes)}
     with staging_dir(out) as stage:
         formats = tuple(f for f in settings.output.gis if f != "csv") or ("gpkg",)

@@ -150,16 +150,19 @@ def test_fused_vorticity_matches_operators():
     v[:, 5:9, 10:14] = np.nan
     u[:, 0, 0] = np.nan
     v[:, 0, 0] = np.nan
-    zeta, core = kernels.dual_fields(u.astype(np.float32), v.astype(np.float32),
-                                     metrics.gx, metrics.gy, 0.2)
-    expected = operators.vorticity(u.astype(np.float32), v.astype(np.float32), metrics)
+    u32, v32 = u.astype(np.float32), v.astype(np.float32)
+    zeta, w, limit = kernels.dual_fields(u32, v32, metrics.gx, metrics.gy, 0.2)
+    expected = operators.vorticity(u32, v32, metrics)
     assert np.array_equal(np.isnan(zeta), np.isnan(expected))
     # check: coastmon.grid.operators.vorticity (numpy reference of the same Green's-theorem sums)
     np.testing.assert_allclose(zeta, expected, rtol=1e-12, atol=0)
-    w = operators.okubo_weiss(u.astype(np.float32), v.astype(np.float32), metrics)
-    sigma = np.nanstd(w, axis=(1, 2))
-    # check: Okubo 1970; Weiss 1991 (W < -0.2 sigma_W marks eddy cores), numpy nanstd
-    assert np.array_equal(core.astype(bool), w < -0.2 * sigma[:, None, None])
+    expected_w = operators.okubo_weiss(u32, v32, metrics)
+    # check: coastmon.grid.operators.okubo_weiss (numpy reference; Okubo 1970, Weiss 1991)
+    np.testing.assert_allclose(w, expected_w, rtol=1e-12, atol=1e-12 * np.nanmax(np.abs(expected_w)))
+    sigma = np.nanstd(expected_w, axis=(1, 2))
+    # check: Okubo 1970; Weiss 1991 (cores where W < -0.2 sigma_W), numpy nanstd
+    np.testing.assert_allclose(limit, -0.2 * sigma, rtol=1e-10)
+    assert np.array_equal(w < limit[:, None, None], expected_w < -0.2 * sigma[:, None, None])
 
 
 def test_solid_body_rotation_vorticity():
@@ -171,7 +174,7 @@ def test_solid_body_rotation_vorticity():
     radius = 6_371_000.0
     u = (omega * radius * np.cos(np.deg2rad(lat2)))[None]
     v = np.zeros_like(u)
-    zeta, _ = kernels.dual_fields(u, v, metrics.gx, metrics.gy, 0.2)
+    zeta, _, _ = kernels.dual_fields(u, v, metrics.gx, metrics.gy, 0.2)
     # check: solid-body rotation about the polar axis has zeta = 2 omega sin(lat)
     # (Vallis 2017, section 2.2), to the dual-cell averaging error
     np.testing.assert_allclose(zeta[0, 1:-1, 1:-1], 2 * omega * np.sin(np.deg2rad(lat2))[1:-1, 1:-1],
@@ -256,34 +259,40 @@ def test_missing_variable_and_wrong_grid(tmp_path):
 
 MEMORY_SCRIPT = textwrap.dedent(
     """
-    import json, resource, sys
-    import numpy as np, pandas as pd, xarray as xr
-    from scipy import sparse
+    import json, sys
+    from pathlib import Path
+    import numpy as np, xarray as xr
     sys.path.insert(0, {tests!r})
-    from test_stream_pass import StandInFrame, make_frame
+    from test_stream_pass import make_frame
     from coastmon.config import StreamSettings
     from coastmon.grid.metrics import GridMetrics
     from coastmon.stream import run_pass
+
+    def high_water_kb():
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1])
+
     ds = xr.open_dataset({path!r}, chunks={{"time": 25}})
     metrics = GridMetrics.from_lonlat(ds["lon"].values, ds["lat"].values)
     sea = ds["mask"].values.astype(bool)
     frame = make_frame(metrics.shape, sea, np.random.default_rng(0))
     settings = StreamSettings(progress=False)
     run_pass(ds.isel(time=slice(0, 25)), metrics, frame, settings, {work!r} + "-warm")
-    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    Path("/proc/self/clear_refs").write_text("5")  # reset the peak RSS (Linux proc(5))
+    before = high_water_kb()
     run_pass(ds, metrics, frame, settings, {work!r})
-    after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    print(json.dumps({{"before_kb": before, "after_kb": after}}))
+    print(json.dumps({{"before_kb": before, "after_kb": high_water_kb()}}))
     """
 )
 
 
 def test_memory_does_not_grow_with_record_length(tmp_path):
-    ny, nx = 100, 120
+    ny, nx = 150, 160
     peaks = {}
     sizes = {}
     for factor in (1, 4):
-        nt = 150 * factor
+        nt = 100 * factor
         rng = np.random.default_rng(factor)
         lon, lat = np.meshgrid(np.linspace(-15, -5, nx), np.linspace(15, 25, ny))
         u = rng.standard_normal((nt, ny, nx), dtype=np.float32)
@@ -300,8 +309,9 @@ def test_memory_does_not_grow_with_record_length(tmp_path):
                                       path=str(path), work=str(tmp_path / f"work{factor}"))
         out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
                              check=True)
-        peaks[factor] = json.loads(out.stdout.strip().splitlines()[-1])["after_kb"] * 1024
+        usage = json.loads(out.stdout.strip().splitlines()[-1])
+        peaks[factor] = (usage["after_kb"] - usage["before_kb"]) * 1024
     growth = peaks[4] - peaks[1]
     # check: common practice, no source (a streaming pass holds a few chunks, not the record;
-    # a pass that kept the record would grow by the record's size difference, ~43 MB here)
-    assert growth < 0.25 * (sizes[4] - sizes[1]), (peaks, sizes)
+    # a pass that kept the record would grow by at least the records' size difference, 58 MB)
+    assert growth < 0.5 * (sizes[4] - sizes[1]), (peaks, sizes)

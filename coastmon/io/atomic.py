@@ -158,7 +158,8 @@ def staging_dir(out_dir: str | os.PathLike[str]) -> Iterator[Path]:
     e.g. ``figures/``) is moved into ``out_dir`` with :func:`os.replace`, replacing files of
     the same name; files already in ``out_dir`` that the run did not produce are kept.
     When the body raises (or is interrupted), the staging folder is deleted and
-    ``out_dir`` is left exactly as it was.
+    ``out_dir`` is left exactly as it was; so it is when a move fails part-way (the moves
+    already made are undone and the files they replaced are put back).
 
     Parameters
     ----------
@@ -212,6 +213,37 @@ def _publish(stage: Path, out_dir: Path) -> None:
                     "A file in the output folder has the name of an output sub-folder",
                     where=str(up), todo="Move or rename that file, then run again",
                 )
-    for src, dst in moves:
-        dst.parent.mkdir(parents=True, exist_ok=True)
-        os.replace(src, dst)
+    backups = stage.with_name(stage.name + "-replaced")
+    done: list[tuple[Path, Path, Path | None]] = []
+    created: list[Path] = []
+    try:
+        for src, dst in moves:
+            for folder in reversed([dst.parent, *dst.parent.parents]):
+                if not folder.exists():
+                    folder.mkdir()
+                    created.append(folder)
+            backup = None
+            if dst.exists() or dst.is_symlink():
+                backup = backups / src.relative_to(stage)
+                backup.parent.mkdir(parents=True, exist_ok=True)
+                os.replace(dst, backup)
+            done.append((src, dst, backup))
+            os.replace(src, dst)
+    except BaseException:
+        _roll_back(done, created)
+        raise
+    finally:
+        shutil.rmtree(backups, ignore_errors=True)
+
+
+def _roll_back(done: list[tuple[Path, Path, Path | None]], created: list[Path]) -> None:
+    """Undo a failed publication: every replaced file back in place, new folders removed."""
+    for src, dst, backup in reversed(done):
+        with suppress(OSError):
+            if not (src.exists() or src.is_symlink()):
+                os.replace(dst, src)
+            if backup is not None:
+                os.replace(backup, dst)
+    for folder in reversed(created):
+        with suppress(OSError):
+            folder.rmdir()

@@ -521,18 +521,25 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
             raise OutputError(
                 "An input lies inside the monitoring state folder", where=str(rp),
                 todo="Keep the input files outside the state folder")
+    fresh = not state_dir.exists()
     try:
-        (state_dir / STORE).mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise OutputError(f"Cannot create the monitoring state folder ({exc.strerror})",
-                          where=str(state_dir),
-                          todo="Choose a folder you may write to") from None
-    with _locked(state_dir):
-        current = _current(state_dir)
-        manifest = _read_manifest(state_dir, current) if current else None
-        keep = set(manifest["store_files"]) | set(manifest["series_parts"]) if manifest else set()
-        _clean_leftovers(state_dir, current, keep)
-        result = _update(state_dir, paths, settings, allow_gaps, manifest, current, timings)
+        try:
+            (state_dir / STORE).mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise OutputError(f"Cannot create the monitoring state folder ({exc.strerror})",
+                              where=str(state_dir),
+                              todo="Choose a folder you may write to") from None
+        with _locked(state_dir):
+            current = _current(state_dir)
+            manifest = _read_manifest(state_dir, current) if current else None
+            keep = (set(manifest["store_files"]) | set(manifest["series_parts"]) if manifest
+                    else set())
+            _clean_leftovers(state_dir, current, keep)
+            result = _update(state_dir, paths, settings, allow_gaps, manifest, current, timings)
+    except BaseException:
+        if fresh:  # a first update that failed leaves no half-made state folder behind
+            shutil.rmtree(state_dir, ignore_errors=True)
+        raise
     result.timings["total_s"] = time.perf_counter() - t0
     return result
 

@@ -2,14 +2,14 @@
 
 The per-chunk work on a ``(time, y, x)`` block is done by four kernels:
 
-* :func:`dual_fields` — relative vorticity and the Okubo–Weiss eddy-core flag at the grid
-  points, with the same Green's-theorem arithmetic as :mod:`coastmon.grid.operators`
+* :func:`dual_fields` — relative vorticity, the Okubo–Weiss parameter and its eddy-core
+  limit at the grid points, with the same Green's-theorem arithmetic as :mod:`coastmon.grid.operators`
   (dual-cell circulation, then the mean of the valid dual cells around each point);
 * :func:`chunk_moments` — count, means, second and third central co-moments per point
   for a subset of the chunk's time steps (two passes over time, rows in parallel);
 * :func:`merge_moments` — the pairwise combination of two sets of moments
   (Chan, Golub & LeVeque 1983; Pébay 2008 for third order), in place;
-* :func:`sample_rows` — a CSR sparse-matrix product that ignores missing inputs and
+* :class:`Sampler` — a sparse-matrix product that ignores missing inputs and
   renormalises each row's weights over the finite ones.
 
 All kernels release the GIL (``nogil``) so that several chunks can be processed by
@@ -21,6 +21,7 @@ memory on first use otherwise.
 
 from __future__ import annotations
 
+import numba
 import numpy as np
 from numba import njit, prange
 
@@ -49,152 +50,152 @@ def _compile(parallel: bool):
 
 
 @njit(nogil=True, inline="always")
-def _cell_to_point(zd, wd, t, j, i, ny, nx):  # pragma: no cover - compiled
-    # Same order as grid.metrics._to_points: the cell having this point as its vertex
-    # 0, then 1, 2, 3; invalid cells add exactly 0.
-    zt = 0.0
-    wt = 0.0
-    c = 0.0
-    if j < ny - 1 and i < nx - 1 and np.isfinite(zd[t, j, i]):
-        zt += zd[t, j, i]
-        wt += wd[t, j, i]
-        c += 1.0
-    if j < ny - 1 and i > 0 and np.isfinite(zd[t, j, i - 1]):
-        zt += zd[t, j, i - 1]
-        wt += wd[t, j, i - 1]
-        c += 1.0
-    if j > 0 and i > 0 and np.isfinite(zd[t, j - 1, i - 1]):
-        zt += zd[t, j - 1, i - 1]
-        wt += wd[t, j - 1, i - 1]
-        c += 1.0
-    if j > 0 and i < nx - 1 and np.isfinite(zd[t, j - 1, i]):
-        zt += zd[t, j - 1, i]
-        wt += wd[t, j - 1, i]
-        c += 1.0
-    if c > 0:
-        return zt / c, wt / c
-    return np.nan, np.nan
+def _dual_row(u, v, gx, gy, j, zrow, wrow):  # pragma: no cover - compiled
+    """Vorticity and W on dual row j for every time step, into zrow/wrow[:, 1:nx].
+
+    A row's 16 weight vectors stay in cache over all time steps.
+    """
+    nt = u.shape[0]
+    nx = u.shape[2]
+    for t in range(nt):
+        for i in range(nx - 1):
+            u0 = np.float64(u[t, j, i])
+            u1 = np.float64(u[t, j, i + 1])
+            u2 = np.float64(u[t, j + 1, i + 1])
+            u3 = np.float64(u[t, j + 1, i])
+            v0 = np.float64(v[t, j, i])
+            v1 = np.float64(v[t, j, i + 1])
+            v2 = np.float64(v[t, j + 1, i + 1])
+            v3 = np.float64(v[t, j + 1, i])
+            g0 = gx[0, j, i]
+            g1 = gx[1, j, i]
+            g2 = gx[2, j, i]
+            g3 = gx[3, j, i]
+            h0 = gy[0, j, i]
+            h1 = gy[1, j, i]
+            h2 = gy[2, j, i]
+            h3 = gy[3, j, i]
+            ux = g0 * u0
+            ux = ux + g1 * u1
+            ux = ux + g2 * u2
+            ux = ux + g3 * u3
+            uy = h0 * u0
+            uy = uy + h1 * u1
+            uy = uy + h2 * u2
+            uy = uy + h3 * u3
+            vx = g0 * v0
+            vx = vx + g1 * v1
+            vx = vx + g2 * v2
+            vx = vx + g3 * v3
+            vy = h0 * v0
+            vy = vy + h1 * v1
+            vy = vy + h2 * v2
+            vy = vy + h3 * v3
+            z = vx - uy
+            # Strain uses derivatives with the cell mean removed, as
+            # coastmon.grid.operators.gradient_dual does; vorticity is the circulation.
+            mu = 0.25 * (((u0 + u1) + u2) + u3)
+            mv = 0.25 * (((v0 + v1) + v2) + v3)
+            sgx = ((g0 + g1) + g2) + g3
+            sgy = ((h0 + h1) + h2) + h3
+            ux = ux - mu * sgx
+            uy = uy - mu * sgy
+            vx = vx - mv * sgx
+            vy = vy - mv * sgy
+            zrow[t, i + 1] = z
+            wrow[t, i + 1] = (ux - vy) ** 2 + (vx + uy) ** 2 - z**2
 
 
 @_compile(parallel=True)
-def _dual_fields(u, v, gx, gy, ow_threshold, zeta, core, zd, wd, wp):  # pragma: no cover
+def _dual_fields(u, v, gx, gy, ow_threshold, zeta, w, limit, n_bands):  # pragma: no cover
     nt, ny, nx = u.shape
-    # 1. Dual cells, row by row; a row's 16 weight vectors stay in cache over all t.
-    for j in prange(ny - 1):
-        for t in range(nt):
-            for i in range(nx - 1):
-                u0 = np.float64(u[t, j, i])
-                u1 = np.float64(u[t, j, i + 1])
-                u2 = np.float64(u[t, j + 1, i + 1])
-                u3 = np.float64(u[t, j + 1, i])
-                v0 = np.float64(v[t, j, i])
-                v1 = np.float64(v[t, j, i + 1])
-                v2 = np.float64(v[t, j + 1, i + 1])
-                v3 = np.float64(v[t, j + 1, i])
-                ux = gx[0, j, i] * u0
-                ux = ux + gx[1, j, i] * u1
-                ux = ux + gx[2, j, i] * u2
-                ux = ux + gx[3, j, i] * u3
-                uy = gy[0, j, i] * u0
-                uy = uy + gy[1, j, i] * u1
-                uy = uy + gy[2, j, i] * u2
-                uy = uy + gy[3, j, i] * u3
-                vx = gx[0, j, i] * v0
-                vx = vx + gx[1, j, i] * v1
-                vx = vx + gx[2, j, i] * v2
-                vx = vx + gx[3, j, i] * v3
-                vy = gy[0, j, i] * v0
-                vy = vy + gy[1, j, i] * v1
-                vy = vy + gy[2, j, i] * v2
-                vy = vy + gy[3, j, i] * v3
-                z = vx - uy
-                zd[t, j, i] = z
-                # Strain uses derivatives with the cell mean removed, as
-                # coastmon.grid.operators.gradient_dual does; vorticity is the circulation.
-                mu = 0.25 * (((u0 + u1) + u2) + u3)
-                mv = 0.25 * (((v0 + v1) + v2) + v3)
-                sgx = ((gx[0, j, i] + gx[1, j, i]) + gx[2, j, i]) + gx[3, j, i]
-                sgy = ((gy[0, j, i] + gy[1, j, i]) + gy[2, j, i]) + gy[3, j, i]
-                ux = ux - mu * sgx
-                uy = uy - mu * sgy
-                vx = vx - mv * sgx
-                vy = vy - mv * sgy
-                wd[t, j, i] = (ux - vy) ** 2 + (vx + uy) ** 2 - z**2
-    # 2. Points: mean of the valid dual cells around each point; row sums of W per t.
-    rsum = np.zeros((ny, nt))
-    rcnt = np.zeros((ny, nt))
-    for j in prange(ny):
-        interior = 0 < j < ny - 1
-        for t in range(nt):
-            acc = 0.0
-            cnt = 0.0
-            for i in range(nx):
-                if interior and 0 < i < nx - 1:
-                    a = zd[t, j, i]
-                    b = zd[t, j, i - 1]
-                    c = zd[t, j - 1, i - 1]
-                    d = zd[t, j - 1, i]
+    wsum = np.zeros((ny, nt))
+    wsq = np.zeros((ny, nt))
+    wcnt = np.zeros((ny, nt))
+    for b in prange(n_bands):
+        r0 = b * ny // n_bands
+        r1 = (b + 1) * ny // n_bands
+        # Rolling rows of dual cells, padded with NaN: index i + 1 holds dual column i.
+        zprev = np.full((nt, nx + 1), np.nan)
+        wprev = np.full((nt, nx + 1), np.nan)
+        zcur = np.full((nt, nx + 1), np.nan)
+        wcur = np.full((nt, nx + 1), np.nan)
+        if r0 > 0:
+            _dual_row(u, v, gx, gy, r0 - 1, zprev, wprev)
+        for j in range(r0, r1):
+            if j < ny - 1:
+                _dual_row(u, v, gx, gy, j, zcur, wcur)
+            else:
+                zcur[:, :] = np.nan
+            for t in range(nt):
+                for i in range(nx):
+                    # Same order as grid.metrics._to_points: the cell having this point as
+                    # vertex 0, then 1, 2, 3; missing cells add exactly 0.
+                    a = zcur[t, i + 1]
+                    bb = zcur[t, i]
+                    c = zprev[t, i]
+                    d = zprev[t, i + 1]
                     fa = np.isfinite(a)
-                    fb = np.isfinite(b)
+                    fb = np.isfinite(bb)
                     fc = np.isfinite(c)
                     fd = np.isfinite(d)
                     zt = 0.0
                     zt += a if fa else 0.0
-                    zt += b if fb else 0.0
+                    zt += bb if fb else 0.0
                     zt += c if fc else 0.0
                     zt += d if fd else 0.0
                     wt = 0.0
-                    wt += wd[t, j, i] if fa else 0.0
-                    wt += wd[t, j, i - 1] if fb else 0.0
-                    wt += wd[t, j - 1, i - 1] if fc else 0.0
-                    wt += wd[t, j - 1, i] if fd else 0.0
+                    wt += wcur[t, i + 1] if fa else 0.0
+                    wt += wcur[t, i] if fb else 0.0
+                    wt += wprev[t, i] if fc else 0.0
+                    wt += wprev[t, i + 1] if fd else 0.0
                     n = (1.0 if fa else 0.0) + (1.0 if fb else 0.0)
                     n += 1.0 if fc else 0.0
                     n += 1.0 if fd else 0.0
-                    if n > 0:
-                        zp = zt / n
-                        w = wt / n
-                    else:
-                        zp = np.nan
-                        w = np.nan
-                else:
-                    zp, w = _cell_to_point(zd, wd, t, j, i, ny, nx)
-                zeta[t, j, i] = zp
-                wp[t, j, i] = w
-                if np.isfinite(w):
-                    acc += w
-                    cnt += 1.0
-            rsum[j, t] = acc
-            rcnt[j, t] = cnt
-    # 3. Spatial standard deviation of W per snapshot (two passes), then the core flags.
-    total = rsum.sum(axis=0)
-    count = rcnt.sum(axis=0)
-    wmean = np.where(count > 0, total / np.maximum(count, 1.0), 0.0)
-    rss = np.zeros((ny, nt))
-    for j in prange(ny):
-        for t in range(nt):
-            acc = 0.0
-            m = wmean[t]
-            for i in range(nx):
-                w = wp[t, j, i]
-                acc += (w - m) ** 2 if np.isfinite(w) else 0.0
-            rss[j, t] = acc
-    ss = rss.sum(axis=0)
-    limit = np.where(count > 0, -ow_threshold * np.sqrt(ss / np.maximum(count, 1.0)), -np.inf)
-    for j in prange(ny):
-        for t in range(nt):
-            lim = limit[t]
-            for i in range(nx):
-                core[t, j, i] = 1 if wp[t, j, i] < lim else 0
+                    valid = n > 0.0
+                    zeta[t, j, i] = zt / n if valid else np.nan
+                    w[t, j, i] = wt / n if valid else np.nan
+                # Row sums for the spatial statistics of W (a separate loop, so that the
+                # one above has no cross-iteration dependence and vectorises).
+                acc = 0.0
+                acc2 = 0.0
+                cnt = 0.0
+                for i in range(nx):
+                    wp = w[t, j, i]
+                    good = np.isfinite(wp)
+                    acc += wp if good else 0.0
+                    acc2 += wp * wp if good else 0.0
+                    cnt += 1.0 if good else 0.0
+                wsum[j, t] = acc
+                wsq[j, t] = acc2
+                wcnt[j, t] = cnt
+            zprev, zcur = zcur, zprev
+            wprev, wcur = wcur, wprev
+    # Spatial standard deviation of W per snapshot; W has near-zero mean against its
+    # spread, so the one-pass sums lose nothing that matters here.
+    for t in range(nt):
+        total = 0.0
+        total2 = 0.0
+        count = 0.0
+        for j in range(ny):
+            total += wsum[j, t]
+            total2 += wsq[j, t]
+            count += wcnt[j, t]
+        if count > 0:
+            mean = total / count
+            var = max(total2 / count - mean * mean, 0.0)
+            limit[t] = -ow_threshold * np.sqrt(var)
+        else:
+            limit[t] = -np.inf
     return 0
 
 
 class Workspace:
     """Scratch arrays of :func:`dual_fields`, kept between chunks of one thread.
 
-    Reusing them avoids allocating (and page-faulting) several chunk-sized arrays per
-    chunk. The ``zeta`` and ``core`` arrays returned by :func:`dual_fields` are views into
-    the workspace, valid until its next use.
+    Reusing them avoids allocating (and page-faulting) chunk-sized arrays for every chunk.
+    The arrays returned by :func:`dual_fields` are views into the workspace, valid until
+    its next use.
     """
 
     def __init__(self) -> None:
@@ -209,13 +210,10 @@ class Workspace:
         return buf[:size].reshape(shape)
 
     def arrays(self, shape: tuple[int, int, int]):
-        nt, ny, nx = shape
         return (
             self._get("zeta", shape, np.float64),
-            self._get("core", shape, np.uint8),
-            self._get("zd", (nt, ny - 1, nx - 1), np.float64),
-            self._get("wd", (nt, ny - 1, nx - 1), np.float64),
-            self._get("wp", shape, np.float64),
+            self._get("w", shape, np.float64),
+            self._get("limit", shape[:1], np.float64),
         )
 
 
@@ -226,18 +224,22 @@ def dual_fields(
     gy: np.ndarray,
     ow_threshold: float,
     workspace: Workspace | None = None,
-) -> tuple[np.ndarray, np.ndarray]:
-    r"""Vorticity and Okubo–Weiss eddy-core flags at the grid points of a ``(t, y, x)`` block.
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    r"""Vorticity, Okubo–Weiss W and the eddy-core limit on a ``(t, y, x)`` block.
 
     On each dual cell, vorticity is the circulation over the area (Stokes),
     :math:`\zeta = \sum_k g^x_k v_k - \sum_k g^y_k u_k`, and the strain uses the
     Green's-theorem derivatives with the cell mean removed,
     :math:`\partial q/\partial x = \sum_k g^x_k (q_k - \bar q)` (as
     :func:`coastmon.grid.operators.gradient_dual`), in
-    :math:`W = (u_x - v_y)^2 + (v_x + u_y)^2 - \zeta^2` (Okubo 1970; Weiss 1991). Point values are the mean of the valid dual cells around the point, exactly
-    as :func:`coastmon.grid.operators.vorticity`. A point is an eddy core when
-    :math:`W < -\theta\,\sigma_W`, with :math:`\sigma_W` the spatial (population)
-    standard deviation of W over the valid points of that snapshot.
+    :math:`W = (u_x - v_y)^2 + (v_x + u_y)^2 - \zeta^2` (Okubo 1970; Weiss 1991).
+    Point values are the mean of the valid dual cells around the point, exactly as
+    :func:`coastmon.grid.operators.vorticity` and ``okubo_weiss``. A point is an eddy
+    core when :math:`W < -\theta\,\sigma_W`, with :math:`\sigma_W` the spatial
+    (population) standard deviation of W over the valid points of that snapshot.
+
+    Dual cells are computed row by row, each row for all time steps while its weights
+    are in cache, into two rolling rows; no dual-cell array is ever stored.
 
     Parameters
     ----------
@@ -249,17 +251,21 @@ def dual_fields(
     Returns
     -------
     zeta : (t, y, x) float64, s-1, NaN where no valid dual cell touches the point.
-    core : (t, y, x) uint8, 1 at eddy cores.
+    w : (t, y, x) float64, s-2, Okubo–Weiss parameter.
+    limit : (t,) the eddy-core limit :math:`-\theta\sigma_W` of each snapshot
+        (``-inf`` when the snapshot has no valid point).
     """
     if workspace is None:
         workspace = Workspace()
-    zeta, core, zd, wd, wp = workspace.arrays(u.shape)
-    _dual_fields(u, v, gx, gy, float(ow_threshold), zeta, core, zd, wd, wp)
-    return zeta, core
+    zeta, w, limit = workspace.arrays(u.shape)
+    ny = u.shape[1]
+    n_bands = max(1, min(ny, 4 * numba.get_num_threads()))
+    _dual_fields(u, v, gx, gy, float(ow_threshold), zeta, w, limit, n_bands)
+    return zeta, w, limit
 
 
 @_compile(parallel=True)
-def _chunk_moments(u, v, z, h, has_h, core, tindex, n, mean, m2, m3, ow):  # pragma: no cover
+def _chunk_moments(u, v, z, h, has_h, w, limit, tindex, n, mean, m2, m3, ow):  # pragma: no cover
     # Written out variable by variable (pair packing as PAIR_INDEX, triples as TRIPLES) so
     # that the inner loops over x are branch-free and vectorise.
     ny = u.shape[1]
@@ -280,7 +286,7 @@ def _chunk_moments(u, v, z, h, has_h, core, tindex, n, mean, m2, m3, ow):  # pra
                 d = np.float64(h[t, j, i])
                 ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf) & ((abs(d) < inf) | (not has_h))
                 cnt[i] += 1.0 if ok else 0.0
-                cores[i] += np.float64(core[t, j, i]) if ok else 0.0
+                cores[i] += 1.0 if ok and w[t, j, i] < limit[t] else 0.0
                 s[0, i] += a if ok else 0.0
                 s[1, i] += b if ok else 0.0
                 s[2, i] += c if ok else 0.0
@@ -357,12 +363,14 @@ def chunk_moments(
     v: np.ndarray,
     zeta: np.ndarray,
     ssh: np.ndarray | None,
-    core: np.ndarray,
+    w: np.ndarray,
+    limit: np.ndarray,
     tindex: np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     r"""Count, means and central co-moments per point over the time steps ``tindex``.
 
-    A time step counts at a point only where u, v, ζ (and ssh) are all finite there.
+    A time step counts at a point only where u, v, ζ (and ssh) are all finite there; it
+    counts as an eddy core where also ``w[t] < limit[t]`` (see :func:`dual_fields`).
     Two passes over time: means :math:`\bar x = n^{-1}\sum x`, then
     :math:`M_{ab} = \sum (x_a-\bar x_a)(x_b-\bar x_b)` and
     :math:`M_{abc} = \sum (x_a-\bar x_a)(x_b-\bar x_b)(x_c-\bar x_c)` (the two-pass
@@ -383,59 +391,60 @@ def chunk_moments(
     m3 = np.empty((TRIPLES.shape[0], ny, nx))
     ow = np.empty((ny, nx))
     h = ssh if has_h else u  # never read when has_h is False
-    _chunk_moments(u, v, zeta, h, has_h, core, np.ascontiguousarray(tindex, dtype=np.int64),
+    _chunk_moments(u, v, zeta, h, has_h, w, limit, np.ascontiguousarray(tindex, dtype=np.int64),
                    n, mean, m2, m3, ow)
     return n, mean, m2, m3, ow
 
 
 @_compile(parallel=True)
-def _merge(na, ma, m2a, m3a, owa, nb, mb, m2b, m3b, owb,
-           pair_index, triples):  # pragma: no cover - compiled
+def _merge(na, ma, m2a, m3a, owa, nb, mb, m2b, m3b, owb):  # pragma: no cover - compiled
+    # Written out term by term (pairs as PAIR_INDEX, triples uuu, uvv, uuv, vvv) so the
+    # loop over x vectorises; s = n_b / n, r = n_a n_b / n.
     ny, nx = na.shape
-    nv = ma.shape[0]
-    ntrip = triples.shape[0]
+    has_h = ma.shape[0] == 4
     for j in prange(ny):
-        delta = np.empty(nv)
-        old = np.empty(m2a.shape[0])
         for i in range(nx):
-            n2 = nb[j, i]
             owa[j, i] += owb[j, i]
-            if n2 == 0:
-                continue
+        for i in range(nx):
             n1 = na[j, i]
-            if n1 == 0:
-                na[j, i] = n2
-                for k in range(nv):
-                    ma[k, j, i] = mb[k, j, i]
-                for k in range(m2a.shape[0]):
-                    m2a[k, j, i] = m2b[k, j, i]
-                for k in range(ntrip):
-                    m3a[k, j, i] = m3b[k, j, i]
-                continue
+            n2 = nb[j, i]
             n = n1 + n2
-            for k in range(nv):
-                delta[k] = mb[k, j, i] - ma[k, j, i]
-            for k in range(m2a.shape[0]):
-                old[k] = m2a[k, j, i]
-            for k in range(ntrip):
-                x = triples[k, 0]
-                y = triples[k, 1]
-                w = triples[k, 2]
-                m3a[k, j, i] = (
-                    m3a[k, j, i] + m3b[k, j, i]
-                    + n1 * n2 * (n1 - n2) / (n * n) * delta[x] * delta[y] * delta[w]
-                    + (delta[x] * (n1 * m2b[pair_index[y, w], j, i] - n2 * old[pair_index[y, w]])
-                       + delta[y] * (n1 * m2b[pair_index[x, w], j, i] - n2 * old[pair_index[x, w]])
-                       + delta[w] * (n1 * m2b[pair_index[x, y], j, i] - n2 * old[pair_index[x, y]]))
-                    / n
-                )
-            for a in range(nv):
-                for b in range(a, nv):
-                    p = pair_index[a, b]
-                    m2a[p, j, i] = old[p] + m2b[p, j, i] + delta[a] * delta[b] * n1 * n2 / n
-            for k in range(nv):
-                ma[k, j, i] = ma[k, j, i] + delta[k] * n2 / n
-            na[j, i] = n
+            empty = n2 == 0.0
+            inv = 1.0 / n if n > 0.0 else 0.0
+            du = 0.0 if empty else mb[0, j, i] - ma[0, j, i]
+            dv = 0.0 if empty else mb[1, j, i] - ma[1, j, i]
+            dz = 0.0 if empty else mb[2, j, i] - ma[2, j, i]
+            r = n1 * n2 * inv
+            c3 = n1 * n2 * (n1 - n2) * inv * inv
+            auu, auv, avv = m2a[0, j, i], m2a[1, j, i], m2a[2, j, i]
+            buu, buv, bvv = m2b[0, j, i], m2b[1, j, i], m2b[2, j, i]
+            if not empty:
+                m3a[0, j, i] += m3b[0, j, i] + c3 * du * du * du + inv * (
+                    3.0 * du * (n1 * buu - n2 * auu))
+                m3a[1, j, i] += m3b[1, j, i] + c3 * du * dv * dv + inv * (
+                    du * (n1 * bvv - n2 * avv) + 2.0 * dv * (n1 * buv - n2 * auv))
+                m3a[2, j, i] += m3b[2, j, i] + c3 * du * du * dv + inv * (
+                    2.0 * du * (n1 * buv - n2 * auv) + dv * (n1 * buu - n2 * auu))
+                m3a[3, j, i] += m3b[3, j, i] + c3 * dv * dv * dv + inv * (
+                    3.0 * dv * (n1 * bvv - n2 * avv))
+                m2a[0, j, i] = auu + buu + du * du * r
+                m2a[1, j, i] = auv + buv + du * dv * r
+                m2a[2, j, i] = avv + bvv + dv * dv * r
+                m2a[3, j, i] += m2b[3, j, i] + du * dz * r
+                m2a[4, j, i] += m2b[4, j, i] + dv * dz * r
+                m2a[5, j, i] += m2b[5, j, i] + dz * dz * r
+                s = n2 * inv
+                ma[0, j, i] += du * s
+                ma[1, j, i] += dv * s
+                ma[2, j, i] += dz * s
+                if has_h:
+                    dh = mb[3, j, i] - ma[3, j, i]
+                    m2a[6, j, i] += m2b[6, j, i] + du * dh * r
+                    m2a[7, j, i] += m2b[7, j, i] + dv * dh * r
+                    m2a[8, j, i] += m2b[8, j, i] + dz * dh * r
+                    m2a[9, j, i] += m2b[9, j, i] + dh * dh * r
+                    ma[3, j, i] += dh * s
+                na[j, i] = n
     return 0
 
 
@@ -459,42 +468,47 @@ def merge_moments(
 
     Eddy-core counts add.
     """
-    _merge(*a, *b, PAIR_INDEX, TRIPLES)
+    _merge(*a, *b)
 
 
-@_compile(parallel=False)
-def _sample_rows(indptr, indices, weights, valid, x, out):  # pragma: no cover - compiled
+@_compile(parallel=True)
+def _sample(cols, rows, weights, valid, x, out):  # pragma: no cover - compiled
     nt = x.shape[0]
-    npts = indptr.shape[0] - 1
-    for t in range(nt):
+    npts = out.shape[1]
+    for t in prange(nt):
+        num = np.zeros(npts)
+        den = np.zeros(npts)
+        for k in range(cols.shape[0]):
+            val = np.float64(x[t, cols[k]])
+            if np.isfinite(val):
+                num[rows[k]] += weights[k] * val
+                den[rows[k]] += weights[k]
         for p in range(npts):
-            if not valid[p]:
-                out[t, p] = np.nan
-                continue
-            num = 0.0
-            den = 0.0
-            for k in range(indptr[p], indptr[p + 1]):
-                val = np.float64(x[t, indices[k]])
-                if np.isfinite(val):
-                    num += weights[k] * val
-                    den += weights[k]
-            out[t, p] = num / den if den != 0.0 else np.nan
+            ok = valid[p] and den[p] != 0.0
+            out[t, p] = num[p] / den[p] if ok else np.nan
     return 0
 
 
-def sample_rows(
-    indptr: np.ndarray,
-    indices: np.ndarray,
-    weights: np.ndarray,
-    valid: np.ndarray,
-    x: np.ndarray,
-) -> np.ndarray:
-    r"""Apply a CSR sampling matrix W to each time step of ``x`` (t, n_grid), skipping NaN.
+class Sampler:
+    r"""A sparse sampling matrix W applied to each time step, skipping missing values.
 
     :math:`s_p = \sum_k W_{pk} x_k [x_k\ \mathrm{finite}] / \sum_k W_{pk} [x_k\ \mathrm{finite}]`,
     i.e. ``(W @ fill0(x)) / (W @ isfinite(x))``; NaN where no weight meets a finite value
-    or the row is not ``valid``. Returns float32 (t, n_points).
+    or the row is not ``valid``. The non-zeros are stored in column order, so that each
+    snapshot is read in memory order.
     """
-    out = np.empty((x.shape[0], indptr.shape[0] - 1), dtype=np.float32)
-    _sample_rows(indptr, indices, weights, valid, x, out)
-    return out
+
+    def __init__(self, matrix, valid: np.ndarray) -> None:
+        coo = matrix.tocoo()
+        order = np.lexsort((coo.row, coo.col))
+        self.cols = np.ascontiguousarray(coo.col[order], dtype=np.int64)
+        self.rows = np.ascontiguousarray(coo.row[order], dtype=np.int64)
+        self.weights = np.ascontiguousarray(coo.data[order], dtype=np.float64)
+        self.valid = np.ascontiguousarray(valid, dtype=np.bool_)
+        self.n_points = matrix.shape[0]
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        """Sample ``x`` (t, n_grid); returns float32 (t, n_points)."""
+        out = np.empty((x.shape[0], self.n_points), dtype=np.float32)
+        _sample(self.cols, self.rows, self.weights, self.valid, x, out)
+        return out

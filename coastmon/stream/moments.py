@@ -146,7 +146,7 @@ class MomentState:
     ) -> MomentState:
         """Accumulate a block of ``(t, y, x)`` arrays (two-pass within the block).
 
-        ``core`` (uint8, 1 = eddy core) defaults to no cores; ``months`` (1–12, one per
+        ``core`` (1 = eddy core, 0 = not) defaults to no cores; ``months`` (1–12, one per
         time step) is required when ``seasonal``; ``times`` only sets the time range.
         """
         u = np.asarray(u)
@@ -158,9 +158,9 @@ class MomentState:
             ssh = np.asarray(ssh)
             if ssh.shape != u.shape:
                 raise ValueError("ssh must have the shape of u")
-        if core is None:
-            core = np.zeros(u.shape, dtype=np.uint8)
-        core = np.ascontiguousarray(core, dtype=np.uint8)
+        # Eddy cores enter the kernel as W < limit: W = -1 at cores, 0 elsewhere, limit -1/2.
+        w = np.zeros(u.shape) if core is None else -np.asarray(core, dtype=np.float64)
+        limit = np.full(u.shape[0], -0.5)
         nt = u.shape[0]
         state = cls.empty(u.shape[1:], ssh is not None, seasonal, ow_threshold, grid_id)
         if seasonal:
@@ -171,7 +171,7 @@ class MomentState:
             groups = np.zeros(nt, dtype=np.int64)
         for g in np.unique(groups):
             tindex = np.flatnonzero(groups == g)
-            part = kernels.chunk_moments(u, v, zeta, ssh, core, tindex)
+            part = kernels.chunk_moments(u, v, zeta, ssh, w, limit, tindex)
             for name, arr in zip(_ARRAYS, part, strict=True):
                 getattr(state, name)[g] = arr
         state.n_time = nt

@@ -40,8 +40,8 @@ from coastmon.stream.moments import MomentState, grid_signature, time_text
 
 CHUNK_BUDGET_BYTES = 256 * 2**20
 """Memory budget of one time chunk (inputs and the kernel's per-chunk arrays)."""
-SCRATCH_BYTES_PER_POINT = 33
-"""Kernel scratch per grid point and time step: ζ, two dual-cell fields and W (float64), core flag."""
+SCRATCH_BYTES_PER_POINT = 16
+"""Kernel scratch per grid point and time step: ζ and Okubo–Weiss W (float64)."""
 
 SERIES_VARIABLES = ("u", "v", "zeta", "ssh")
 _SERIES_ATTRS = {
@@ -81,10 +81,7 @@ class _Constants:
 
     gx: np.ndarray
     gy: np.ndarray
-    indptr: np.ndarray
-    indices: np.ndarray
-    weights: np.ndarray
-    valid: np.ndarray
+    sampler: kernels.Sampler
     ow_threshold: float
     kernel_threads: int
     step_limit: int
@@ -110,11 +107,12 @@ def _process_block(u, v, h, groups, consts: _Constants, workspace=None) -> dict:
         t0 = time.perf_counter()
         ub, vb = u[s0:s1], v[s0:s1]
         hb = None if h is None else h[s0:s1]
-        zeta, core = kernels.dual_fields(ub, vb, consts.gx, consts.gy, consts.ow_threshold,
-                                         workspace)
+        zeta, w, limit = kernels.dual_fields(ub, vb, consts.gx, consts.gy,
+                                             consts.ow_threshold, workspace)
         sub_groups = groups[s0:s1]
         for g in np.unique(sub_groups):
-            part = kernels.chunk_moments(ub, vb, zeta, hb, core, np.flatnonzero(sub_groups == g))
+            part = kernels.chunk_moments(ub, vb, zeta, hb, w, limit,
+                                         np.flatnonzero(sub_groups == g))
             if int(g) in parts:
                 kernels.merge_moments(parts[int(g)], part)
             else:
@@ -122,10 +120,7 @@ def _process_block(u, v, h, groups, consts: _Constants, workspace=None) -> dict:
         t1 = time.perf_counter()
         for name, arr in (("u", ub), ("v", vb), ("zeta", zeta), ("ssh", hb)):
             if arr is not None:
-                samples.setdefault(name, []).append(kernels.sample_rows(
-                    consts.indptr, consts.indices, consts.weights, consts.valid,
-                    arr.reshape(s1 - s0, -1),
-                ))
+                samples.setdefault(name, []).append(consts.sampler(arr.reshape(s1 - s0, -1)))
         t2 = time.perf_counter()
         kernel_s += t1 - t0
         sample_s += t2 - t1
@@ -354,9 +349,7 @@ def run_pass(
             kernel_threads = max(1, ncpu // workers)
         consts = _Constants(
             gx=np.ascontiguousarray(metrics.gx), gy=np.ascontiguousarray(metrics.gy),
-            indptr=sampler.indptr.astype(np.int64), indices=sampler.indices.astype(np.int64),
-            weights=sampler.data.astype(np.float64),
-            valid=np.asarray(frame.valid, dtype=np.bool_),
+            sampler=kernels.Sampler(sampler, np.asarray(frame.valid, dtype=np.bool_)),
             ow_threshold=float(settings.ow_threshold), kernel_threads=kernel_threads,
             step_limit=max(1, CHUNK_BUDGET_BYTES // (SCRATCH_BYTES_PER_POINT * grid_size)),
         )
