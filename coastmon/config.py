@@ -179,7 +179,7 @@ class Settings:
     def replace(self, section: str, **values: Any) -> Settings:
         """A copy with some values of one section changed (values are validated)."""
         current = getattr(self, section)
-        checked = {k: _coerce(type(current), k, v, f"[{section}] {k}") for k, v in values.items()}
+        checked = {k: coerce_setting(type(current), k, v, f"[{section}] {k}") for k, v in values.items()}
         return dataclasses.replace(self, **{section: dataclasses.replace(current, **checked)})
 
 
@@ -190,7 +190,7 @@ def _suggest(name: str, options: list[str]) -> str:
     return "Valid names are: " + ", ".join(sorted(options)) + "."
 
 
-def _coerce(cls: type, key: str, value: Any, where: str) -> Any:
+def coerce_setting(cls: type, key: str, value: Any, where: str) -> Any:
     hints = typing.get_type_hints(cls)
     names = [f.name for f in dataclasses.fields(cls)]
     if key not in names:
@@ -275,28 +275,30 @@ def settings_from_dict(data: dict[str, Any], where: str = "settings") -> Setting
                 todo=f"Write it as [{name}] followed by key = value lines",
             )
         cls = typing.get_type_hints(Settings)[name]
-        values = {k: _coerce(cls, k, v, f"{where}, [{name}] {k}") for k, v in table.items()}
+        values = {k: coerce_setting(cls, k, v, f"{where}, [{name}] {k}") for k, v in table.items()}
         built[name] = cls(**values)
     settings = Settings(**built)
     validate(settings)
     return settings
 
 
-def load_settings(path: str | Path) -> Settings:
-    """Read and validate a TOML settings file."""
+def read_toml(path: str | Path, what: str, missing_todo: str, format_hint: str) -> dict:
+    """Parse a TOML file, turning a missing or malformed file into a SettingsError."""
     path = Path(path)
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
+        return tomllib.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
-        raise SettingsError(
-            "The settings file does not exist", where=str(path),
-            todo="Check the path given to --settings",
-        ) from None
+        raise SettingsError(f"The {what} does not exist", where=str(path),
+                            todo=missing_todo) from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise SettingsError(
-            f"The settings file is not valid TOML ({exc})", where=str(path),
-            todo="Fix the line named above; see docs/user-guide.md for the format",
-        ) from None
+        raise SettingsError(f"The {what} is not valid TOML ({exc})", where=str(path),
+                            todo=f"Fix the line named above; {format_hint}") from None
+
+
+def load_settings(path: str | Path) -> Settings:
+    """Read and validate a TOML settings file."""
+    data = read_toml(path, "settings file", "Check the path given to --settings",
+                     "see docs/user-guide.md for the format")
     return settings_from_dict(data, where=str(path))
 
 

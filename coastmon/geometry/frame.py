@@ -446,7 +446,8 @@ def build_frame(
 
     # Sections: land and domain-edge cut, then no crossing of other sections.
     reach_max = offsets[-1] + step
-    d_fine = np.arange(0.0, reach_max + step, step)
+    # Every half cell, and at the sample offsets themselves, so no sample point is on land.
+    d_fine = np.union1d(np.arange(0.0, reach_max + step, step), offsets)
     fx = px[:, None] + d_fine[None, :] * nx_[:, None]
     fy = py[:, None] + d_fine[None, :] * ny_[:, None]
     flon, flat = coastline.to_lonlat(fx.ravel(), fy.ravel())
@@ -472,7 +473,7 @@ def build_frame(
     a_km = geod.a / 1000.0
     phi = np.radians(st_lat)
     parallel_radius = a_km * np.cos(phi) / np.sqrt(1.0 - geod.es * np.sin(phi) ** 2)
-    r_fine = np.arange(0.0, ray_km[-1] + step, step)
+    r_fine = np.union1d(np.arange(0.0, ray_km[-1] + step, step), ray_km)
     rlon_f = st_lon[:, None] + ray_dir[:, None] * np.degrees(r_fine[None, :]
                                                               / parallel_radius[:, None])
     rlat_f = np.broadcast_to(st_lat[:, None], rlon_f.shape)

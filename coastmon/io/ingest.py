@@ -584,6 +584,41 @@ def _face_fill(ds: xr.Dataset, da: xr.DataArray, which: str, plan: _Plan) -> xr.
     return da.fillna(0.0)
 
 
+def _points(ds: xr.Dataset, lon: str, lat: str, ydim: str,
+            xdim: str) -> tuple[np.ndarray, np.ndarray]:
+    """Longitude and latitude (1-D or 2-D in the file) as (ydim, xdim) arrays, file order."""
+    lon_b, lat_b = xr.broadcast(ds[lon], ds[lat])
+    return (np.asarray(lon_b.transpose(ydim, xdim).values, dtype=np.float64),
+            np.asarray(lat_b.transpose(ydim, xdim).values, dtype=np.float64))
+
+
+def _face_walls(ds: xr.Dataset, which: str, plan: _Plan, sea: np.ndarray, cut: dict,
+                dims: tuple[str, str]) -> np.ndarray:
+    """Land faces (True) between consecutive centres: a land centre on either side, or the
+    face mask (when the file has one) says land."""
+    sea = np.asarray(sea, dtype=bool)
+    wall = ~(sea[:, :-1] & sea[:, 1:]) if which == "u" else ~(sea[:-1] & sea[1:])
+    name = plan.face_masks.get(which)
+    if name is not None:
+        mask = ds[name]
+        if plan.tdim in mask.dims:
+            mask = mask.isel({plan.tdim: 0})
+        values = np.asarray(mask.transpose(*dims).isel(cut).values)
+        wall = wall | ~(np.isfinite(values) & (values != 0))
+    return wall
+
+
+def _zeta_block(u: np.ndarray, v: np.ndarray, cells: sgrid.CornerCells, wall_u: np.ndarray,
+                wall_v: np.ndarray) -> np.ndarray:
+    """Dask kernel: (t, y, x) float32 vorticity of a time chunk of C-grid face velocities.
+
+    Land faces are NaN, so corners touching land are left out of the centre averages.
+    """
+    u = np.where(wall_u, np.nan, np.asarray(u, dtype=np.float64))
+    v = np.where(wall_v, np.nan, np.asarray(v, dtype=np.float64))
+    return sgrid.native_vorticity(u, v, cells).astype(np.float32)
+
+
 def _first_step(da: xr.DataArray, tdim: str | None) -> np.ndarray:
     return np.asarray((da.isel({tdim: 0}) if tdim and tdim in da.dims else da).values,
                       dtype=np.float64)
@@ -841,6 +876,63 @@ class _Builder:
             v = _to_centres(_face_fill(raw, v, "v", p), "v", p)
         return u, v
 
+    def _native_zeta(self, raw: xr.Dataset, sea_file: np.ndarray) -> xr.DataArray | None:
+        """Lazy relative vorticity on the centres, by circulation at the C-grid corners.
+
+        None when the grid is not staggered or its levels are terrain-following (the face
+        velocities would need level heights at the faces; the centre path is used then).
+        ``sea_file`` is the centre mask in the file's index order.
+        """
+        p = self.plan
+        if not p.staggered or p.u is None or p.v is None:
+            return None
+        if p.zdim is not None and _vertical_std(raw, p.zdim):
+            return None
+        lay = p.layouts
+        rename = {p.tdim: "time"} if p.tdim and p.tdim in raw.dims else {}
+        faces = {}
+        for which, name in (("u", p.u), ("v", p.v)):
+            dim, other = lay[f"{which}_dim"], lay[f"{which}_other"]
+            da = self._select_level(_in_units(raw, name, "m s-1", self.where)).rename(rename)
+            order = ("time", other, dim) if which == "u" else ("time", dim, other)
+            cut = {dim: sgrid.face_slice(lay[which], raw.sizes[dim])}
+            da = da.transpose(*order).isel(cut)
+            wall = _face_walls(raw, which, p, sea_file, cut, order[1:])
+            data = da.data if isinstance(da.data, dsa.Array) else dsa.from_array(np.asarray(da))
+            faces[which] = (data.rechunk({1: -1, 2: -1}), wall)
+        u, wall_u = faces["u"]
+        v, wall_v = faces["v"]
+        v = v.rechunk({0: u.chunks[0]})
+        cells = self._corner_cells(raw, sea_file.shape)
+        ny, nx = sea_file.shape
+        zeta = dsa.map_blocks(_zeta_block, u, v, cells=cells, wall_u=wall_u, wall_v=wall_v,
+                              chunks=(u.chunks[0], (ny,), (nx,)), dtype=np.float32,
+                              meta=np.empty((0, 0, 0), dtype=np.float32))
+        return xr.DataArray(zeta, dims=("time", "y", "x"))
+
+    def _corner_cells(self, raw: xr.Dataset, shape: tuple[int, int]) -> sgrid.CornerCells:
+        """Corner-cell geometry from the centre and (when the file has them) face coordinates."""
+        p, lay = self.plan, self.plan.layouts
+        lon_c, lat_c = _points(raw, p.lon, p.lat, p.ydim, p.xdim)
+        found = {}
+        for which in ("u", "v"):
+            dim, other = lay[f"{which}_dim"], lay[f"{which}_other"]
+            dims = (other, dim) if which == "u" else (dim, other)
+            try:
+                lat_name, lon_name = _find_latlon(raw, *dims, self.where)
+            except InputError:
+                continue
+            lon, lat = _points(raw, lon_name, lat_name, *dims)
+            cut = sgrid.face_slice(lay[which], raw.sizes[dim])
+            lon, lat = (lon[:, cut], lat[:, cut]) if which == "u" else (lon[cut], lat[cut])
+            want = (shape[0], shape[1] - 1) if which == "u" else (shape[0] - 1, shape[1])
+            if lon.shape == want and np.isfinite(lon).all() and np.isfinite(lat).all():
+                found[which] = (lon, lat)
+        lon_u, lat_u = found.get("u", (None, None))
+        lon_v, lat_v = found.get("v", (None, None))
+        return sgrid.CornerCells.from_coords(lon_c, lat_c, lon_u, lat_u, lon_v, lat_v,
+                                             grid_relative=p.grid_relative)
+
     def _rotate(self, u: xr.DataArray, v: xr.DataArray) -> tuple[xr.DataArray, xr.DataArray]:
         p = self.plan
         if not p.grid_relative or p.angle is None:
@@ -991,6 +1083,11 @@ class _Builder:
                                   self.where, "at the first time step")
             data["u"] = self._finish(u.where(sea), "eastward_sea_water_velocity", "m s-1")
             data["v"] = self._finish(v.where(sea), "northward_sea_water_velocity", "m s-1")
+            zeta = self._native_zeta(self.raw, self._file_order_np(mask, y_order, x_order))
+            if zeta is not None:
+                data["zeta"] = self._finish(reorder(zeta).where(sea), "ocean_relative_vorticity",
+                                            "s-1")
+                data["zeta"].attrs["vorticity_method"] = "C-grid circulation at cell corners"
             if ssh is not None:
                 data["ssh"] = self._finish(ssh.where(sea), "sea_surface_height", "m")
         data["mask"] = xr.DataArray(mask.astype(np.int8), dims=("y", "x"), attrs={
@@ -1004,6 +1101,13 @@ class _Builder:
                           "velocity_kind": (velocity_kind if have_time else "none"),
                           "Conventions": "CF-1.8"})
         return out
+
+    @staticmethod
+    def _file_order_np(values, y_order, x_order):
+        """Undo :meth:`_reorder_np`: a canonical-order (y, x) array back in file order."""
+        if y_order is None:
+            return values
+        return values[np.ix_(np.argsort(y_order), np.argsort(x_order))]
 
     @staticmethod
     def _reorder_np(values, y_order, x_order):

@@ -27,12 +27,11 @@ Unknown keys are rejected with a suggestion of the nearest valid name.
 from __future__ import annotations
 
 import dataclasses
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
 
-from coastmon.config import _coerce
+from coastmon.config import coerce_setting, read_toml
 from coastmon.errors import SettingsError
 
 
@@ -225,14 +224,14 @@ class ScenarioParams:
                     )
                 spec = nested[key]
                 values[key] = tuple(
-                    spec(**{k: _coerce(spec, k, v, f"{where}, [[{key}]] #{i + 1} {k}")
+                    spec(**{k: coerce_setting(spec, k, v, f"{where}, [[{key}]] #{i + 1} {k}")
                             for k, v in table.items()})
                     for i, table in enumerate(value)
                 )
             elif key in names:
-                values[key] = _coerce(cls, key, value, f"{where}, {key}")
+                values[key] = coerce_setting(cls, key, value, f"{where}, {key}")
             else:
-                _coerce(cls, key, value, f"{where}, {key}")
+                coerce_setting(cls, key, value, f"{where}, {key}")
         params = cls(**values)
         params.validate(where)
         return params
@@ -240,19 +239,8 @@ class ScenarioParams:
     @classmethod
     def from_toml(cls, path: str | Path) -> ScenarioParams:
         """Read and validate a scenario TOML file; unknown keys raise SettingsError."""
-        path = Path(path)
-        try:
-            data = tomllib.loads(path.read_text(encoding="utf-8"))
-        except FileNotFoundError:
-            raise SettingsError(
-                "The scenario file does not exist", where=str(path),
-                todo="Check the path, or start from demo/scenario.toml",
-            ) from None
-        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-            raise SettingsError(
-                f"The scenario file is not valid TOML ({exc})", where=str(path),
-                todo="Fix the line named above; demo/scenario.toml shows the format",
-            ) from None
+        data = read_toml(path, "scenario file", "Check the path, or start from demo/scenario.toml",
+                         "demo/scenario.toml shows the format")
         return cls.from_dict(data, where=str(path))
 
     def to_toml(self) -> str:

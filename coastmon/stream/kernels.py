@@ -5,6 +5,8 @@ The per-chunk work on a ``(time, y, x)`` block is done by four kernels:
 * :func:`dual_fields` — relative vorticity, the Okubo–Weiss parameter and its eddy-core
   limit at the grid points, with the same Green's-theorem arithmetic as :mod:`coastmon.grid.operators`
   (dual-cell circulation, then the mean of the valid dual cells around each point);
+  :func:`given_zeta_fields` does the same with a vorticity given from outside (the native
+  C-grid vorticity of :mod:`coastmon.io.sgrid`);
 * :func:`chunk_moments` — count, means, second and third central co-moments per point
   for a subset of the chunk's time steps (two passes over time, rows in parallel);
 * :func:`merge_moments` — the pairwise combination of two sets of moments
@@ -262,6 +264,149 @@ def dual_fields(
     n_bands = max(1, min(ny, 4 * numba.get_num_threads()))
     _dual_fields(u, v, gx, gy, float(ow_threshold), zeta, w, limit, n_bands)
     return zeta, w, limit
+
+
+@njit(nogil=True, inline="always")
+def _strain_row(u, v, gx, gy, j, srow):  # pragma: no cover - compiled
+    """Squared strain on dual row j for every time step, into srow[:, 1:nx].
+
+    The arithmetic of :func:`_dual_row` without the circulation.
+    """
+    nt = u.shape[0]
+    nx = u.shape[2]
+    for t in range(nt):
+        for i in range(nx - 1):
+            u0 = np.float64(u[t, j, i])
+            u1 = np.float64(u[t, j, i + 1])
+            u2 = np.float64(u[t, j + 1, i + 1])
+            u3 = np.float64(u[t, j + 1, i])
+            v0 = np.float64(v[t, j, i])
+            v1 = np.float64(v[t, j, i + 1])
+            v2 = np.float64(v[t, j + 1, i + 1])
+            v3 = np.float64(v[t, j + 1, i])
+            mu = 0.25 * (((u0 + u1) + u2) + u3)
+            mv = 0.25 * (((v0 + v1) + v2) + v3)
+            d0 = u0 - mu
+            d1 = u1 - mu
+            d2 = u2 - mu
+            d3 = u3 - mu
+            e0 = v0 - mv
+            e1 = v1 - mv
+            e2 = v2 - mv
+            e3 = v3 - mv
+            ux = ((gx[0, j, i] * d0 + gx[1, j, i] * d1) + gx[2, j, i] * d2) + gx[3, j, i] * d3
+            uy = ((gy[0, j, i] * d0 + gy[1, j, i] * d1) + gy[2, j, i] * d2) + gy[3, j, i] * d3
+            vx = ((gx[0, j, i] * e0 + gx[1, j, i] * e1) + gx[2, j, i] * e2) + gx[3, j, i] * e3
+            vy = ((gy[0, j, i] * e0 + gy[1, j, i] * e1) + gy[2, j, i] * e2) + gy[3, j, i] * e3
+            srow[t, i + 1] = (ux - vy) ** 2 + (vx + uy) ** 2
+
+
+@_compile(parallel=True)
+def _given_fields(u, v, zin, gx, gy, ow_threshold, zeta, w, limit, n_bands):  # pragma: no cover
+    nt, ny, nx = u.shape
+    wsum = np.zeros((ny, nt))
+    wsq = np.zeros((ny, nt))
+    wcnt = np.zeros((ny, nt))
+    for b in prange(n_bands):
+        r0 = b * ny // n_bands
+        r1 = (b + 1) * ny // n_bands
+        sprev = np.full((nt, nx + 1), np.nan)
+        scur = np.full((nt, nx + 1), np.nan)
+        if r0 > 0:
+            _strain_row(u, v, gx, gy, r0 - 1, sprev)
+        for j in range(r0, r1):
+            if j < ny - 1:
+                _strain_row(u, v, gx, gy, j, scur)
+            else:
+                scur[:, :] = np.nan
+            for t in range(nt):
+                for i in range(nx):
+                    a = scur[t, i + 1]
+                    bb = scur[t, i]
+                    c = sprev[t, i]
+                    d = sprev[t, i + 1]
+                    fa = np.isfinite(a)
+                    fb = np.isfinite(bb)
+                    fc = np.isfinite(c)
+                    fd = np.isfinite(d)
+                    st = 0.0
+                    st += a if fa else 0.0
+                    st += bb if fb else 0.0
+                    st += c if fc else 0.0
+                    st += d if fd else 0.0
+                    n = (1.0 if fa else 0.0) + (1.0 if fb else 0.0)
+                    n += 1.0 if fc else 0.0
+                    n += 1.0 if fd else 0.0
+                    z = np.float64(zin[t, j, i])
+                    zeta[t, j, i] = z
+                    w[t, j, i] = st / n - z * z if n > 0.0 else np.nan
+                acc = 0.0
+                acc2 = 0.0
+                cnt = 0.0
+                for i in range(nx):
+                    wp = w[t, j, i]
+                    good = np.isfinite(wp)
+                    acc += wp if good else 0.0
+                    acc2 += wp * wp if good else 0.0
+                    cnt += 1.0 if good else 0.0
+                wsum[j, t] = acc
+                wsq[j, t] = acc2
+                wcnt[j, t] = cnt
+            sprev, scur = scur, sprev
+    for t in range(nt):
+        total = 0.0
+        total2 = 0.0
+        count = 0.0
+        for j in range(ny):
+            total += wsum[j, t]
+            total2 += wsq[j, t]
+            count += wcnt[j, t]
+        if count > 0:
+            mean = total / count
+            var = max(total2 / count - mean * mean, 0.0)
+            limit[t] = -ow_threshold * np.sqrt(var)
+        else:
+            limit[t] = -np.inf
+    return 0
+
+
+def given_zeta_fields(
+    u: np.ndarray,
+    v: np.ndarray,
+    zeta: np.ndarray,
+    gx: np.ndarray,
+    gy: np.ndarray,
+    ow_threshold: float,
+    workspace: Workspace | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    r"""As :func:`dual_fields`, with the vorticity given (e.g. native C-grid vorticity).
+
+    The squared strain :math:`s_n^2 + s_s^2` comes from the point velocities on the dual
+    cells exactly as in :func:`dual_fields` and is averaged over the valid dual cells
+    around each point; the Okubo–Weiss parameter is then
+    :math:`W = \overline{s_n^2 + s_s^2} - \zeta^2` with the given :math:`\zeta` (Okubo
+    1970; Weiss 1991), NaN where ζ is missing or no dual cell is valid. The eddy-core limit
+    is :math:`-	heta\sigma_W` as in :func:`dual_fields`.
+
+    Parameters
+    ----------
+    u, v : (t, y, x) float32 or float64, NaN where missing.
+    zeta : (t, y, x) relative vorticity (s-1) at the points, NaN where missing.
+    gx, gy : (4, y-1, x-1) Green's-theorem weights.
+    ow_threshold : the factor :math:`	heta`.
+    workspace : scratch arrays to reuse (a new one when None).
+
+    Returns
+    -------
+    zeta : (t, y, x) float64 copy of the given vorticity; w; limit — as :func:`dual_fields`.
+    """
+    if workspace is None:
+        workspace = Workspace()
+    out, w, limit = workspace.arrays(u.shape)
+    ny = u.shape[1]
+    n_bands = max(1, min(ny, 4 * numba.get_num_threads()))
+    _given_fields(u, v, zeta, gx, gy, float(ow_threshold), out, w, limit, n_bands)
+    return out, w, limit
 
 
 @_compile(parallel=True)

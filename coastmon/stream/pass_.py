@@ -3,7 +3,10 @@
 :func:`run_pass` reads each time chunk of u, v (and ssh) exactly once and, in one compiled
 kernel per chunk, computes vorticity and Okubo–Weiss eddy cores, accumulates the chunk's
 moments, merges them into the running :class:`~coastmon.stream.moments.MomentState`, and
-samples u, v, ζ (and ssh) onto the along-shore frame. The sampled time series go to
+samples u, v, ζ (and ssh) onto the along-shore frame. When the canonical dataset carries
+its own ``zeta`` (the native vorticity of a C-grid input), that ζ is used instead of the
+kernel's, in the moments, the samples and the Okubo–Weiss parameter (whose strain still
+comes from u and v). The sampled time series go to
 disk-backed arrays in a work folder, so memory stays bounded by a few chunks whatever the
 record length.
 
@@ -44,6 +47,9 @@ SCRATCH_BYTES_PER_POINT = 16
 """Kernel scratch per grid point and time step: ζ and Okubo–Weiss W (float64)."""
 
 SERIES_VARIABLES = ("u", "v", "zeta", "ssh")
+INPUT_VARIABLES = ("u", "v", "ssh", "zeta")
+"""Variables read from the canonical dataset, in the order the chunk tasks take them; a
+given ``zeta`` (native C-grid vorticity) replaces the kernel's own vorticity."""
 _SERIES_ATTRS = {
     "u": ("eastward velocity", "m s-1"),
     "v": ("northward velocity", "m s-1"),
@@ -87,8 +93,11 @@ class _Constants:
     step_limit: int
 
 
-def _process_block(u, v, h, groups, consts: _Constants, workspace=None) -> dict:
+def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> dict:
     """All the work on one chunk: vorticity, eddy cores, moments per group, sampling.
+
+    ``z`` is the given vorticity (the canonical ``zeta``, e.g. native C-grid vorticity) or
+    None, when the kernel computes it from u and v.
 
     The kernels run on sub-blocks of at most ``consts.step_limit`` time steps so that
     their scratch arrays stay within :data:`CHUNK_BUDGET_BYTES` however large the
@@ -97,6 +106,7 @@ def _process_block(u, v, h, groups, consts: _Constants, workspace=None) -> dict:
     numba.set_num_threads(max(1, min(consts.kernel_threads, numba.config.NUMBA_NUM_THREADS)))
     u, v = _as_float(u), _as_float(v)
     h = None if h is None else _as_float(h)
+    z = None if z is None else _as_float(z)
     workspace = kernels.Workspace() if workspace is None else workspace
     nt = u.shape[0]
     parts: dict[int, tuple] = {}
@@ -107,8 +117,12 @@ def _process_block(u, v, h, groups, consts: _Constants, workspace=None) -> dict:
         t0 = time.perf_counter()
         ub, vb = u[s0:s1], v[s0:s1]
         hb = None if h is None else h[s0:s1]
-        zeta, w, limit = kernels.dual_fields(ub, vb, consts.gx, consts.gy,
-                                             consts.ow_threshold, workspace)
+        if z is None:
+            zeta, w, limit = kernels.dual_fields(ub, vb, consts.gx, consts.gy,
+                                                 consts.ow_threshold, workspace)
+        else:
+            zeta, w, limit = kernels.given_zeta_fields(ub, vb, z[s0:s1], consts.gx, consts.gy,
+                                                       consts.ow_threshold, workspace)
         sub_groups = groups[s0:s1]
         for g in np.unique(sub_groups):
             part = kernels.chunk_moments(ub, vb, zeta, hb, w, limit,
@@ -175,7 +189,7 @@ def _load_and_process(arrays, t0: int, t1: int, groups, consts: _Constants,
 
 
 def _check_dataset(ds: xr.Dataset, metrics: GridMetrics) -> list[str]:
-    names = [n for n in ("u", "v", "ssh") if n in ds.data_vars]
+    names = [n for n in ("u", "v", "ssh", "zeta") if n in ds.data_vars]
     for required in ("u", "v"):
         if required not in ds.data_vars:
             raise InputError(
@@ -308,7 +322,7 @@ def run_pass(
     has_h = "ssh" in names
     workdir = Path(workdir)
     workdir.mkdir(parents=True, exist_ok=True)
-    arrays = [_input_array(ds, n) if n in names else None for n in ("u", "v", "ssh")]
+    arrays = [_input_array(ds, n) if n in names else None for n in INPUT_VARIABLES]
     nt = ds.sizes["time"]
     bounds = _time_bounds(arrays, nt)
     groups = _groups(ds, settings.seasonal)
@@ -416,7 +430,7 @@ def _distributed_submitter(client, ds, names, bounds, consts, groups):
     """Submit chunk tasks to a dask.distributed cluster; constants are scattered once."""
     if ds["u"].chunks is None:
         ds = ds[names].chunk({"time": bounds[0][1] - bounds[0][0]})
-    lazy = [_input_array(ds, n) if n in names else None for n in ("u", "v", "ssh")]
+    lazy = [_input_array(ds, n) if n in names else None for n in INPUT_VARIABLES]
     consts_future = client.scatter(consts, broadcast=True)
 
     def submit(t0, t1):
