@@ -126,7 +126,7 @@ class SourceSettings:
     max_cape_distance_km: float = 50.0
     """A source farther than this from every cape is reported unanchored."""
     min_persistence: float = 0.5
-    """Fraction of time windows with significant eddy-band power needed to call a source persistent."""
+    """Fraction of time with significant eddy-band power needed to call a source persistent."""
     rho0: float = 1025.0
     """Reference density of sea water (kg m-3)."""
     n_bootstrap: int = 200

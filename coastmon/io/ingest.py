@@ -3,14 +3,16 @@
 The canonical dataset (documented in ``docs/canonical-dataset.md``) has dims
 ``(time, y, x)``, dask chunks along ``time`` only, 2-D ``lon``/``lat`` in degrees,
 eastward/northward ``u``, ``v`` in m s-1 with NaN on land, an int8 ``mask`` (1 = sea),
-optional ``ssh`` (m) and ``bathymetry`` (m, positive down), and the attributes
-``source_files``, ``depth_m`` and ``velocity_kind``.
+optional ``ssh`` (m) and ``bathymetry`` (m, positive down), on C-grid inputs the native
+relative vorticity ``zeta`` (s-1; circulation around the cell corners, see
+:mod:`coastmon.io.sgrid`), and the attributes ``source_files``, ``depth_m`` and
+``velocity_kind``.
 
 Nothing here reads the (time, y, x) data except the first time step (for the land/sea
 mask and a sanity check) and one value of the last time step of each file (to catch
-truncated files). Every per-time transformation (unit scaling, C-grid averaging,
-rotation to east/north, vertical selection, geostrophic velocity) is a lazy dask
-operation that runs inside the one streaming pass.
+truncated files). Every per-time transformation (unit scaling, C-grid averaging and
+native C-grid vorticity, rotation to east/north, vertical selection, geostrophic
+velocity) is a lazy dask operation that runs inside the one streaming pass.
 """
 
 from __future__ import annotations

@@ -21,6 +21,11 @@ Layouts (``n_c`` centres, ``n_s`` staggered points along one axis):
 
 The centre value is the mean of the two faces (second-order, the usual C-grid
 interpolation; e.g. Cushman-Roisin & Beckers 2011, ch. 5 on staggered grids).
+
+Relative vorticity is computed natively on the grid (:class:`CornerCells`,
+:func:`corner_vorticity`, :func:`native_vorticity`): the circulation of the face
+velocities around each cell corner over the corner cell's area, then averaged to the
+centres. :func:`face_slice` picks, for any layout, the faces between consecutive centres.
 """
 
 from __future__ import annotations

@@ -14,8 +14,9 @@ toward the coast. The feed per metre of depth is
 with :math:`E_w` the offshore-propagating share of the window-mean EKE
 :math:`\tfrac12\langle u'^2 + v'^2\rangle`, :math:`c_w` the measured offshore propagation
 speed at the gate (energy-weighted over its rays), :math:`\Delta l` the gate length each ray
-represents, and :math:`B` the background: the median of :math:`E_w c` over every gate along
-the coast, i.e. the flux that is not localized at the source. Long Rossby waves and
+represents, and :math:`B` the background: the median of :math:`E_w c` over the gates of
+the coast that belong to no source (the lower quartile of all gates when fewer than three
+such gates remain), i.e. the flux that is not localized at a source. Long Rossby waves and
 mesoscale eddies carry energy at about their propagation speed (group ≈ phase velocity in
 the long-wave limit; Gill 1982 §12.4), which is why :math:`E_w c_w` is an energy flux.
 
@@ -26,7 +27,8 @@ Where SSH is present the pressure-work flux across the gate is given as well:
 Uncertainty: moving-block bootstrap over time (Künsch 1989) with blocks at least twice the
 decorrelation time of the gate velocity; the 2.5 and 97.5 percentiles give ``feed_lo``
 and ``feed_hi``. The speed uncertainty enters by drawing the speed from a normal
-distribution with the spread of the speed estimate.
+distribution with the (robust) spread of the gate's speed estimates, truncated at zero
+(energy carried toward the coast is not an offshore feed).
 """
 
 from __future__ import annotations
@@ -224,9 +226,7 @@ def offshore_feed(
         })
         return FeedResult(table, [{} for _ in range(n_src)], np.zeros((0, n_src)), float("nan"))
 
-    # Background: median offshore flux density over all gates along the coast.
     mean_eke = gates.eke_series.mean(axis=0)
-    c_bg = float(np.median(np.clip(gates.speed, 0, None)))
     flux_density = mean_eke * gates.offshore_fraction  # m2 s-2, multiplied by c later
 
     members: list[np.ndarray] = []
@@ -234,6 +234,17 @@ def offshore_feed(
         same = st["segment_id"].values[gates.station] == row["segment_id"]
         near = np.abs(st["alongshore_km"].values[gates.station] - row["alongshore_km"])
         members.append(np.flatnonzero(same & (near <= src.gate_halfwidth_km)))
+
+    # Background: median offshore flux density over the gates of the coast that belong to
+    # no source (the flux not localized at a source); the lower quartile of all gates when
+    # sources leave fewer than three such gates.
+    in_any = np.zeros(gates.station.size, bool)
+    for m in members:
+        in_any[m] = True
+    quiet = np.flatnonzero(~in_any)
+    bg_q = 50.0 if quiet.size >= 3 else 25.0
+    bg_set = quiet if quiet.size >= 3 else np.arange(gates.station.size)
+    c_bg = float(np.median(np.clip(gates.speed[bg_set], 0, None)))
 
     steps = decorrelation_steps(gates.eke_series)
     block = int(min(max(2 * np.ceil(steps), 10), max(n_t // 4, 1)))
@@ -244,14 +255,24 @@ def offshore_feed(
     boot_mean = np.stack([gates.eke_series[i].mean(axis=0) for i in boot_idx])  # (b, g)
 
     def gate_speed(m: np.ndarray, energy: np.ndarray) -> tuple[float, float]:
-        w = np.clip(energy[m], 0, None)
-        w = w / w.sum() if w.sum() > 0 else np.full(m.size, 1.0 / m.size)
-        return float(np.sum(w * gates.speed[m])), float(np.sqrt(np.sum(w * gates.speed_sd[m] ** 2)))
+        """Energy-weighted speed over the gate's rays and a robust spread.
+
+        Rays whose speed lies more than 3 scaled median absolute deviations from the
+        gate's median are left out (a ray that caught little coherent propagation gives
+        a wild estimate); the spread is the median of the remaining rays' own spreads.
+        """
+        speeds = gates.speed[m]
+        med = np.median(speeds)
+        mad = 1.4826 * np.median(np.abs(speeds - med))
+        keep = np.abs(speeds - med) <= 3.0 * mad if mad > 0 else np.ones(m.size, bool)
+        w = np.clip(energy[m], 0, None) * keep
+        w = w / w.sum() if w.sum() > 0 else keep / keep.sum()
+        return float(np.sum(w * speeds)), float(np.median(gates.speed_sd[m][keep]))
 
     rows, gate_geoms = [], []
     boot_feeds = np.zeros((n_boot, n_src))
-    bg_boot = np.median(boot_mean * gates.offshore_fraction, axis=1) * c_bg  # (b,)
-    bg = float(np.median(flux_density) * c_bg)
+    bg_boot = np.percentile((boot_mean * gates.offshore_fraction)[:, bg_set], bg_q, axis=1) * c_bg
+    bg = float(np.percentile(flux_density[bg_set], bg_q) * c_bg)
     for j, m in enumerate(members):
         if m.size == 0:
             rows.append({"feed_w_per_m": np.nan, "feed_lo": np.nan, "feed_hi": np.nan,
@@ -265,7 +286,7 @@ def offshore_feed(
             dl = np.full(m.size, settings.coast.station_spacing_km * 1000.0)
         c_w, c_sd = gate_speed(m, flux_density)
         feed = rho0 * float(np.sum((flux_density[m] * c_w - bg) * dl))
-        c_draw = c_w + c_sd * rng.standard_normal(n_boot)
+        c_draw = np.clip(c_w + c_sd * rng.standard_normal(n_boot), 0.0, None)
         fb = rho0 * np.sum((boot_mean[:, m] * gates.offshore_fraction[m] * c_draw[:, None]
                             - bg_boot[:, None]) * dl[None, :], axis=1)
         boot_feeds[:, j] = fb
