@@ -212,6 +212,17 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     )
     profiles["segment_id"] = ("station", st["segment_id"].values.astype(np.int32),
                               {"long_name": "coast segment id", "units": "1"})
+    speed = np.full(len(st), np.nan)
+    fraction = np.full(len(st), np.nan)
+    speed[gates.station] = 100.0 * gates.speed
+    fraction[gates.station] = gates.offshore_fraction
+    profiles["offshore_speed_cm_s"] = ("station", speed, {
+        "long_name": "propagation speed of relative vorticity along the zonal ray at the gate, "
+                     "positive offshore (Radon transform at source gates, spectral centroid "
+                     "elsewhere)", "units": "cm s-1"})
+    profiles["offshore_energy_fraction"] = ("station", fraction, {
+        "long_name": "share of eddy kinetic energy at the gate propagating offshore "
+                     "(wavenumber-frequency spectrum)", "units": "1"})
     spectra = source_spectra(series, frame, ranked, settings, dt)
     return Products(stats, profiles, ranked, gates_df, axes, spacing, spectra, spin,
                     100.0 * c_rossby, series, boot, warnings)
@@ -263,9 +274,9 @@ def build_layers(coastline, capes: pd.DataFrame, products: Products, settings: S
     crs = "EPSG:4326"
     src = products.sources
     keep = ["rank", "feed_w_per_m", "feed_lo", "feed_hi", "persistence", "cape_id",
-            "dist_to_cape_km", "alongshore_km", "west_speed_cm_s", "pwork_w_per_m",
-            "rank_stability", "zonal_extent_km", "segment_id", "localization",
-            "shedding_period_days", "lon", "lat"]
+            "dist_to_cape_km", "alongshore_km", "west_speed_cm_s", "west_speed_sd_cm_s",
+            "pwork_w_per_m", "rank_stability", "zonal_extent_km", "segment_id", "localization",
+            "localization_scale_km", "shedding_period_days", "lon", "lat"]
     sources = gpd.GeoDataFrame(
         src[keep].copy() if len(src) else pd.DataFrame({k: [] for k in keep}),
         geometry=[Point(x, y) for x, y in zip(src["lon"], src["lat"], strict=True)]

@@ -105,6 +105,12 @@ SHAPEFILE_FIELDS = {
     "source_rank": "src_rank",
     "offset_km": "offset_km",
     "halfwidth_km": "halfw_km",
+    "west_speed_sd_cm_s": "wspdsd_cms",
+    "pwork_w_per_m": "pwork_wpm",
+    "rank_stability": "rank_stab",
+    "localization": "localiz",
+    "localization_scale_km": "locsc_km",
+    "shedding_period_days": "shed_pd",
 }
 """Shapefile field names (at most 10 characters) for the project's longer column names.
 

@@ -84,7 +84,8 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
 
     Returns an ``xr.Dataset`` on dim ``station`` with ``zeta_var_ns`` (s-2), ``eke_ns``
     (m2 s-2), ``persistence`` (0–1), ``localization`` (ratio of the along-shore scale-averaged
-    wavelet power to its 95 % red-noise level; > 1 is localized), ``shedding_period_days``
+    wavelet power to its 95 % red-noise level; > 1 is localized), ``localization_scale_km``
+    (the along-shore scale of the largest power in that band), ``shedding_period_days``
     (period of the largest time-averaged eddy-band wavelet power).
     """
     s = settings.signals
@@ -119,6 +120,7 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
         period[valid] = wt.periods[in_band][np.argmax(mean_power, axis=-1)]
 
     localization = np.full(n_station, np.nan)
+    scale_km = np.full(n_station, np.nan)
     stations = frame.stations
     spacing = float(np.median(np.diff(stations["alongshore_km"].values))) if n_station > 1 else 1.0
     spacing = spacing if spacing > 0 else 1.0
@@ -140,6 +142,9 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
         if wt.variance > 0 and mad > 0:
             sig = sig * min(mad**2 / float(wt.variance), 1.0)
         localization[ok] = power / sig
+        sel = (wt.periods >= band[0]) & (wt.periods <= band[1])
+        if sel.any():
+            scale_km[ok] = wt.periods[sel][np.argmax(wt.power[sel], axis=0)]
 
     return xr.Dataset(
         {
@@ -153,6 +158,10 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
             "localization": ("station", localization, {
                 "long_name": "along-shore scale-averaged wavelet power of near-shore vorticity "
                              "variance over its 95 % red-noise level", "units": "1"}),
+            "localization_scale_km": ("station", scale_km, {
+                "long_name": "along-shore scale (Fourier wavelength) of the largest wavelet "
+                             "power of the near-shore vorticity-variance profile",
+                "units": "km"}),
             "shedding_period_days": ("station", period, {
                 "long_name": "period of largest time-averaged eddy-band wavelet power",
                 "units": "days"}),
@@ -200,7 +209,8 @@ def find_sources(
         for p in chosen:
             rows.append({"station": int(p), "segment_id": int(seg)})
     columns = ["station", "segment_id", "alongshore_km", "lon", "lat", "persistence",
-               "localization", "zeta_var_ns", "shedding_period_days", "cape_id",
+               "localization", "localization_scale_km", "zeta_var_ns",
+               "shedding_period_days", "cape_id",
                "dist_to_cape_km"]
     if not rows:
         return pd.DataFrame({c: pd.Series(dtype=object if c == "cape_id" else float)
@@ -212,6 +222,7 @@ def find_sources(
     df["lat"] = st["lat"].values[p]
     df["persistence"] = pers[p]
     df["localization"] = loc[p]
+    df["localization_scale_km"] = profiles["localization_scale_km"].values[p]
     df["zeta_var_ns"] = zvar[p]
     df["shedding_period_days"] = profiles["shedding_period_days"].values[p]
     cape_ids, dists = [], []

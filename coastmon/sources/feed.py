@@ -222,6 +222,7 @@ def offshore_feed(
         table = pd.DataFrame({
             "feed_w_per_m": np.full(n_src, np.nan), "feed_lo": np.full(n_src, np.nan),
             "feed_hi": np.full(n_src, np.nan), "west_speed_cm_s": np.full(n_src, np.nan),
+            "west_speed_sd_cm_s": np.full(n_src, np.nan),
             "pwork_w_per_m": np.full(n_src, np.nan), "gate_n_rays": np.zeros(n_src, int),
         })
         return FeedResult(table, [{} for _ in range(n_src)], np.zeros((0, n_src)), float("nan"))
@@ -276,7 +277,8 @@ def offshore_feed(
     for j, m in enumerate(members):
         if m.size == 0:
             rows.append({"feed_w_per_m": np.nan, "feed_lo": np.nan, "feed_hi": np.nan,
-                         "west_speed_cm_s": np.nan, "pwork_w_per_m": np.nan, "gate_n_rays": 0})
+                         "west_speed_cm_s": np.nan, "west_speed_sd_cm_s": np.nan,
+                         "pwork_w_per_m": np.nan, "gate_n_rays": 0})
             gate_geoms.append({})
             continue
         order = np.argsort(gates.lat[m])
@@ -296,8 +298,8 @@ def offshore_feed(
         pw = gates.pressure_work[m]
         pwork = float(np.sum(pw * dl)) if np.isfinite(pw).all() else np.nan
         rows.append({"feed_w_per_m": feed, "feed_lo": float(lo), "feed_hi": float(hi),
-                     "west_speed_cm_s": 100.0 * west, "pwork_w_per_m": pwork,
-                     "gate_n_rays": int(m.size)})
+                     "west_speed_cm_s": 100.0 * west, "west_speed_sd_cm_s": 100.0 * c_sd,
+                     "pwork_w_per_m": pwork, "gate_n_rays": int(m.size)})
         gate_geoms.append({"lon": gates.lon[m], "lat": gates.lat[m]})
     return FeedResult(pd.DataFrame(rows), gate_geoms, boot_feeds, rho0 * bg)
 
