@@ -52,6 +52,46 @@ def _compile(parallel: bool):
 
 
 @njit(nogil=True, inline="always")
+def _w_row_sums(w, t, j, wsum, wsq, wcnt):  # pragma: no cover - compiled
+    """Sum, sum of squares and count of the finite W of one row of one snapshot."""
+    acc = 0.0
+    acc2 = 0.0
+    cnt = 0.0
+    for i in range(w.shape[2]):
+        wp = w[t, j, i]
+        good = np.isfinite(wp)
+        acc += wp if good else 0.0
+        acc2 += wp * wp if good else 0.0
+        cnt += 1.0 if good else 0.0
+    wsum[j, t] = acc
+    wsq[j, t] = acc2
+    wcnt[j, t] = cnt
+
+
+@njit(nogil=True, inline="always")
+def _ow_limits(wsum, wsq, wcnt, ow_threshold, limit):  # pragma: no cover - compiled
+    """Eddy-core threshold per snapshot, -theta * sigma_W, from the row sums.
+
+    W has near-zero mean against its spread, so the one-pass sums lose nothing that
+    matters here.
+    """
+    for t in range(limit.shape[0]):
+        total = 0.0
+        total2 = 0.0
+        count = 0.0
+        for j in range(wsum.shape[0]):
+            total += wsum[j, t]
+            total2 += wsq[j, t]
+            count += wcnt[j, t]
+        if count > 0:
+            mean = total / count
+            var = max(total2 / count - mean * mean, 0.0)
+            limit[t] = -ow_threshold * np.sqrt(var)
+        else:
+            limit[t] = -np.inf
+
+
+@njit(nogil=True, inline="always")
 def _dual_row(u, v, gx, gy, j, zrow, wrow):  # pragma: no cover - compiled
     """Vorticity and W on dual row j for every time step, into zrow/wrow[:, 1:nx].
 
@@ -159,36 +199,10 @@ def _dual_fields(u, v, gx, gy, ow_threshold, zeta, w, limit, n_bands):  # pragma
                     w[t, j, i] = wt / n if valid else np.nan
                 # Row sums for the spatial statistics of W (a separate loop, so that the
                 # one above has no cross-iteration dependence and vectorises).
-                acc = 0.0
-                acc2 = 0.0
-                cnt = 0.0
-                for i in range(nx):
-                    wp = w[t, j, i]
-                    good = np.isfinite(wp)
-                    acc += wp if good else 0.0
-                    acc2 += wp * wp if good else 0.0
-                    cnt += 1.0 if good else 0.0
-                wsum[j, t] = acc
-                wsq[j, t] = acc2
-                wcnt[j, t] = cnt
+                _w_row_sums(w, t, j, wsum, wsq, wcnt)
             zprev, zcur = zcur, zprev
             wprev, wcur = wcur, wprev
-    # Spatial standard deviation of W per snapshot; W has near-zero mean against its
-    # spread, so the one-pass sums lose nothing that matters here.
-    for t in range(nt):
-        total = 0.0
-        total2 = 0.0
-        count = 0.0
-        for j in range(ny):
-            total += wsum[j, t]
-            total2 += wsq[j, t]
-            count += wcnt[j, t]
-        if count > 0:
-            mean = total / count
-            var = max(total2 / count - mean * mean, 0.0)
-            limit[t] = -ow_threshold * np.sqrt(var)
-        else:
-            limit[t] = -np.inf
+    _ow_limits(wsum, wsq, wcnt, ow_threshold, limit)
     return 0
 
 
@@ -340,33 +354,9 @@ def _given_fields(u, v, zin, gx, gy, ow_threshold, zeta, w, limit, n_bands):  # 
                     z = np.float64(zin[t, j, i])
                     zeta[t, j, i] = z
                     w[t, j, i] = st / n - z * z if n > 0.0 else np.nan
-                acc = 0.0
-                acc2 = 0.0
-                cnt = 0.0
-                for i in range(nx):
-                    wp = w[t, j, i]
-                    good = np.isfinite(wp)
-                    acc += wp if good else 0.0
-                    acc2 += wp * wp if good else 0.0
-                    cnt += 1.0 if good else 0.0
-                wsum[j, t] = acc
-                wsq[j, t] = acc2
-                wcnt[j, t] = cnt
+                _w_row_sums(w, t, j, wsum, wsq, wcnt)
             sprev, scur = scur, sprev
-    for t in range(nt):
-        total = 0.0
-        total2 = 0.0
-        count = 0.0
-        for j in range(ny):
-            total += wsum[j, t]
-            total2 += wsq[j, t]
-            count += wcnt[j, t]
-        if count > 0:
-            mean = total / count
-            var = max(total2 / count - mean * mean, 0.0)
-            limit[t] = -ow_threshold * np.sqrt(var)
-        else:
-            limit[t] = -np.inf
+    _ow_limits(wsum, wsq, wcnt, ow_threshold, limit)
     return 0
 
 
