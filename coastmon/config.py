@@ -127,6 +127,8 @@ class SourceSettings:
     """A source farther than this from every cape is reported unanchored."""
     min_persistence: float = 0.5
     """Fraction of time with significant eddy-band power needed to call a source persistent."""
+    max_speed_cm_s: float = 100.0
+    """Propagation speeds beyond this are taken as "not measurable" on that ray."""
     rho0: float = 1025.0
     """Reference density of sea water (kg m-3)."""
     n_bootstrap: int = 200

@@ -27,6 +27,7 @@ from coastmon.scenario import (
     default_params,
     make_scenario,
     straight_coast_params,
+    western_boundary_params,
 )
 from coastmon.stream import run_pass
 
@@ -133,6 +134,27 @@ def test_straight_coast_control_has_no_anchored_persistent_source(tmp_path):
                    (src["persistence"] >= QUIET.sources.min_persistence)]
     # check: planted truth (control: births uniform along a straight coast, no capes)
     assert len(anchored) == 0
+
+
+@pytest.mark.slow
+def test_western_boundary_coast_gives_the_same_answer(tmp_path):
+    params = dataclasses.replace(western_boundary_params(), compress=False)
+    prep, products, truth = _run(params, tmp_path)
+    st = prep.frame.stations
+    main = st["segment_id"] == st["segment_id"].value_counts().idxmax()
+    # check: planted truth (land to the west: the mainland rays must point east, into the sea)
+    assert (st.loc[main, "ray_dir"] >= 0).all() and (st.loc[main, "ray_dir"] > 0).mean() > 0.9
+    src = products.sources
+    ranks = []
+    for name in truth["expected_rank"]:
+        p = next(q for q in truth["sources"] if q["name"] == name)
+        k, dist = _match(src, p["cape_lon"], p["cape_lat"])
+        # check: planted truth (scenario generator, mirrored coast)
+        assert dist < 30.0 and src["cape_id"].values[k] != ""
+        ranks.append(int(src["rank"].values[k]))
+    assert ranks == [1, 2, 3]
+    # check: planted truth (no source was planted on the island or the straight stretch)
+    assert len(src) == 3
 
 
 def _small(seed: int) -> ScenarioParams:

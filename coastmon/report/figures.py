@@ -82,6 +82,20 @@ def _figure(width: float, height: float) -> Figure:
     return Figure(figsize=(width, height), dpi=DPI, layout="constrained")
 
 
+def _legend_corner(mask2d: np.ndarray | None) -> str:
+    """The lower corner of the map on its open-sea side, so the legend hides no coast.
+
+    The x axis is taken west to east (as the maps draw it); the side whose outer third holds
+    more sea gets the legend.
+    """
+    if mask2d is None:
+        return "lower left"
+    m = np.asarray(mask2d, dtype=float)
+    third = max(m.shape[1] // 3, 1)
+    west, east = np.nanmean(m[:, :third]), np.nanmean(m[:, -third:])
+    return "lower left" if west >= east else "lower right"
+
+
 def _save(fig: Figure, path: str | os.PathLike[str]) -> Path:
     final = Path(path)
     with atomic_path(final) as tmp:
@@ -279,7 +293,7 @@ def map_figure(
     if plume_axes is not None and not plume_axes.empty:
         handles.append(Line2D([], [], color="black", linestyle=(0, (4, 2)), label="plume axis"))
     if handles:
-        ax.legend(handles=handles, loc="lower left", framealpha=0.9)
+        ax.legend(handles=handles, loc=_legend_corner(mask2d), framealpha=0.9)
     return _save(fig, path)
 
 
@@ -321,7 +335,7 @@ def coast_map_figure(
     if capes is not None and not capes.empty:
         handles.append(Line2D([], [], marker="^", linestyle="none", markerfacecolor="white",
                               markeredgecolor="black", label="cape (id)"))
-    ax.legend(handles=handles, loc="lower left", framealpha=0.9)
+    ax.legend(handles=handles, loc=_legend_corner(mask2d), framealpha=0.9)
     return _save(fig, path)
 
 

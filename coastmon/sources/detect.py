@@ -124,15 +124,18 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
     stations = frame.stations
     spacing = float(np.median(np.diff(stations["alongshore_km"].values))) if n_station > 1 else 1.0
     spacing = spacing if spacing > 0 else 1.0
+    band = (2.0 * spacing, max(4.0 * ld_km, 4.0 * spacing))
     for _, idx in stations.groupby("segment_id").indices.items():
         idx = np.asarray(idx)
         ok = idx[valid[idx]]
-        if ok.size < 8:
+        # A segment shorter than twice the longest along-shore scale tested (a small
+        # island, a short stretch between two domain edges) cannot show a feature that is
+        # localized along it: it is left unassessed (no source there).
+        if ok.size < 8 or ok.size * spacing < 2.0 * band[1]:
             continue
         prof = zeta_var[ok]
         prof = prof / np.median(prof) - 1.0
         wt = cwt_morlet(prof, spacing, dj=s.dj, omega0=s.omega0)
-        band = (2.0 * spacing, max(4.0 * ld_km, 4.0 * spacing))
         alpha = float(np.clip(lag1_autocorrelation(prof), 0.0, 0.95))
         power = scale_average(wt, band)
         sig = scale_average_significance(wt, alpha, band, level=s.significance)

@@ -136,10 +136,14 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
             if ok.sum() > 2:
                 p = settings.sources.rho0 * G * (h[ok] - h[ok].mean())
                 pw = float(np.mean((un[ok] - un[ok].mean()) * p))
+        if not abs(speed) <= settings.sources.max_speed_cm_s / 100.0:
+            # No coherent propagation on this ray (the Radon scan ran to near-vertical
+            # lines): the speed is not measurable here.
+            speed, sd = np.nan, np.nan
         stations.append(s)
         fractions.append(fraction)
         speeds.append(speed)
-        sds.append(sd if np.isfinite(sd) else 0.0)
+        sds.append(sd if np.isfinite(sd) or not np.isfinite(speed) else 0.0)
         eke_ts.append(0.5 * np.mean(u**2 + v**2, axis=1))
         pws.append(pw)
         glon.append(ray_lon[s, gate_i])
@@ -245,7 +249,9 @@ def offshore_feed(
     quiet = np.flatnonzero(~in_any)
     bg_q = 50.0 if quiet.size >= 3 else 25.0
     bg_set = quiet if quiet.size >= 3 else np.arange(gates.station.size)
-    c_bg = float(np.median(np.clip(gates.speed[bg_set], 0, None)))
+    bg_speeds = gates.speed[bg_set]
+    bg_speeds = bg_speeds[np.isfinite(bg_speeds)]
+    c_bg = float(np.median(np.clip(bg_speeds, 0, None))) if bg_speeds.size else 0.0
 
     steps = decorrelation_steps(gates.eke_series)
     block = int(min(max(2 * np.ceil(steps), 10), max(n_t // 4, 1)))
@@ -260,15 +266,22 @@ def offshore_feed(
 
         Rays whose speed lies more than 3 scaled median absolute deviations from the
         gate's median are left out (a ray that caught little coherent propagation gives
-        a wild estimate); the spread is the median of the remaining rays' own spreads.
+        a wild estimate), as are rays with no measurable speed; the spread is the median of
+        the remaining rays' own spreads. A gate with no measured speed takes the coast's
+        background speed.
         """
         speeds = gates.speed[m]
-        med = np.median(speeds)
-        mad = 1.4826 * np.median(np.abs(speeds - med))
-        keep = np.abs(speeds - med) <= 3.0 * mad if mad > 0 else np.ones(m.size, bool)
+        measured = np.isfinite(speeds)
+        if not measured.any():
+            return c_bg, 0.0
+        med = np.median(speeds[measured])
+        mad = 1.4826 * np.median(np.abs(speeds[measured] - med))
+        keep = measured & (np.abs(np.where(measured, speeds, med) - med) <= 3.0 * mad
+                           if mad > 0 else measured)
         w = np.clip(energy[m], 0, None) * keep
         w = w / w.sum() if w.sum() > 0 else keep / keep.sum()
-        return float(np.sum(w * speeds)), float(np.median(gates.speed_sd[m][keep]))
+        return (float(np.sum(w[keep] * speeds[keep])),
+                float(np.median(gates.speed_sd[m][keep])))
 
     rows, gate_geoms = [], []
     boot_feeds = np.zeros((n_boot, n_src))
