@@ -28,6 +28,8 @@ def _add_settings_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--u-var", metavar="NAME", help="eastward (or grid-x) velocity variable")
     g.add_argument("--v-var", metavar="NAME", help="northward (or grid-y) velocity variable")
     g.add_argument("--ssh-var", metavar="NAME", help="sea surface height variable")
+    g.add_argument("--ssh-smooth", metavar="KM", type=float,
+                   help="Gaussian smoothing (sigma, km) of SSH before geostrophic velocity")
     g.add_argument("--mask-var", metavar="NAME", help="land/sea mask variable")
     g.add_argument("--depth", metavar="M", type=float,
                    help="depth to analyse in metres, positive down (default: the top level)")
@@ -114,6 +116,7 @@ def settings_from_args(args: argparse.Namespace) -> Settings:
     ingest = {k: getattr(args, a) for k, a in (
         ("u_var", "u_var"), ("v_var", "v_var"), ("ssh_var", "ssh_var"),
         ("mask_var", "mask_var"), ("depth_m", "depth"), ("bathymetry_var", "bathymetry_var"),
+        ("ssh_smooth_km", "ssh_smooth"),
     ) if getattr(args, a, None) is not None}
     if ingest:
         settings = settings.replace("ingest", **ingest)

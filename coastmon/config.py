@@ -51,6 +51,9 @@ class IngestSettings:
     """Time steps per dask chunk; None = sized from available memory."""
     equator_band_deg: float = 3.0
     """Geostrophic velocity from SSH is masked within this many degrees of the equator."""
+    ssh_smooth_km: float = 0.0
+    """Gaussian smoothing (sigma, km) of SSH before geostrophic velocity; 0 = none. Noisy
+    gridded SSH is differentiated twice (velocity, vorticity), so grid-scale noise grows."""
 
 
 @dataclass(frozen=True)
@@ -334,6 +337,7 @@ def validate(settings: Settings) -> None:
          "output.gis may contain only gpkg, geojson, shp, csv"),
         (settings.ingest.time_chunk is None or settings.ingest.time_chunk >= 1,
          "ingest.time_chunk must be at least 1"),
+        (settings.ingest.ssh_smooth_km >= 0, "ingest.ssh_smooth_km must be 0 or more"),
     ]
     for ok, message in checks:
         if not ok:

@@ -450,6 +450,7 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings) -> An
         }
         write_outputs(stage, prep, products, settings, provenance, series=products.series)
         timings["outputs_s"] = time.perf_counter() - t
+        # Written again so that run.json also carries the time the outputs took.
         atomic_write_text(stage / "run.json", json.dumps(provenance, indent=2, default=str))
     return AnalyzeResult(out, products, timings)
 

@@ -686,11 +686,33 @@ def _guarded(da: xr.DataArray, limit: float, what: str, files: list[str],
     return da.copy(data=data)
 
 
-def _geostrophic_block(ssh: np.ndarray, metrics: GridMetrics, band: float) -> np.ndarray:
+def smooth_ssh(ssh: np.ndarray, sigma_cells: tuple[float, float]) -> np.ndarray:
+    """Gaussian smoothing of (..., y, x) SSH over the sea only (normalised convolution).
+
+    Land (NaN) neither contributes nor receives values: the smoothed field is
+    ``G * (h m) / G * m`` with ``m`` the sea indicator, so the coast does not pull the
+    height toward zero. Used before differentiating gridded SSH whose grid-scale noise
+    would otherwise be amplified twice (velocity, then vorticity).
+    """
+    from scipy.ndimage import gaussian_filter
+
+    h = np.asarray(ssh, dtype=np.float64)
+    sea = np.isfinite(h)
+    sig = (0.0,) * (h.ndim - 2) + tuple(sigma_cells)
+    num = gaussian_filter(np.where(sea, h, 0.0), sig, mode="nearest")
+    den = gaussian_filter(sea.astype(np.float64), sig, mode="nearest")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(sea, num / den, np.nan)
+
+
+def _geostrophic_block(ssh: np.ndarray, metrics: GridMetrics, band: float,
+                       sigma_cells: tuple[float, float] | None = None) -> np.ndarray:
     """Dask kernel: (2, t, y, x) float32 geostrophic velocity of an SSH time chunk."""
+    h = np.asarray(ssh, dtype=np.float64)
+    if sigma_cells is not None:
+        h = smooth_ssh(h, sigma_cells)
     with np.errstate(invalid="ignore", divide="ignore"):  # f = 0 inside the equator band
-        ug, vg = geostrophic_velocity(np.asarray(ssh, dtype=np.float64), metrics,
-                                      equator_band_deg=band)
+        ug, vg = geostrophic_velocity(h, metrics, equator_band_deg=band)
     return np.stack([ug, vg]).astype(np.float32)
 
 
@@ -1144,9 +1166,13 @@ class _Builder:
         if not isinstance(data, dsa.Array):
             data = dsa.from_array(np.asarray(data), chunks=(self._time_chunk(ssh), -1, -1))
         data = data.rechunk({1: -1, 2: -1})
+        sigma_cells = None
+        if self.s.ssh_smooth_km > 0:
+            sigma_cells = (self.s.ssh_smooth_km * 1000.0 / float(np.nanmedian(metrics.dy_m)),
+                           self.s.ssh_smooth_km * 1000.0 / float(np.nanmedian(metrics.dx_m)))
         both = data.map_blocks(_geostrophic_block, metrics=metrics,
-                               band=self.s.equator_band_deg, new_axis=0,
-                               chunks=((2,), *data.chunks), dtype=np.float32)
+                               band=self.s.equator_band_deg, sigma_cells=sigma_cells,
+                               new_axis=0, chunks=((2,), *data.chunks), dtype=np.float32)
         ug = xr.DataArray(both[0], dims=ssh.dims)
         vg = xr.DataArray(both[1], dims=ssh.dims)
         return ug, vg
