@@ -181,7 +181,26 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("coastmon: interrupted; nothing was written to the output folder.", file=sys.stderr)
         return 130
+    except Exception as exc:  # a bug in coastmon, not a user error: keep the details
+        report = _save_traceback(exc)
+        print(f"coastmon: internal error ({type(exc).__name__}: {exc}). This is a bug in "
+              f"coastmon, not in your input; nothing was written to the output folder. The "
+              f"full traceback is in {report}; please include it when you report the problem.",
+              file=sys.stderr)
+        return 1
     return 0
+
+
+def _save_traceback(exc: BaseException) -> str:
+    """Write the traceback of an unexpected error to a file in the temp folder."""
+    import tempfile
+    import traceback
+
+    text = "".join(traceback.format_exception(exc))
+    with tempfile.NamedTemporaryFile("w", prefix="coastmon-error-", suffix=".txt",
+                                     delete=False) as fh:
+        fh.write(text)
+        return fh.name
 
 
 if __name__ == "__main__":

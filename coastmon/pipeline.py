@@ -347,9 +347,15 @@ def versions() -> dict[str, str]:
 # --------------------------------------------------------------------------- outputs
 def write_outputs(stage: Path, prep: Prepared, products: Products, settings: Settings,
                   provenance: dict[str, Any], series: xr.Dataset | None = None) -> None:
-    """Write every output of the contract into the staging folder."""
+    """Write every output of the contract into the staging folder.
+
+    ``series`` defaults to the series the products were computed from.
+    """
     from coastmon.report.build import write_figures_and_report
 
+    series = products.series if series is None else series
+    if "time_days" not in series.coords:
+        series = series.assign_coords(time_days=("time", time_in_days(series["time"])))
     layers = build_layers(prep.coastline, prep.capes, products, settings)
     write_layers(layers, stage, settings.output.gis)
     ds = prep.ds
@@ -448,7 +454,7 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings) -> An
             "grid_shape": list(prep.metrics.shape),
             "deformation_radius_km": prep.ld_km,
         }
-        write_outputs(stage, prep, products, settings, provenance, series=products.series)
+        write_outputs(stage, prep, products, settings, provenance)
         timings["outputs_s"] = time.perf_counter() - t
         # Written again so that run.json also carries the time the outputs took.
         atomic_write_text(stage / "run.json", json.dumps(provenance, indent=2, default=str))

@@ -77,3 +77,18 @@ def test_missing_input_exits_2_without_traceback(tmp_path):
 
 def test_bad_gis_option_is_refused(tmp_path):
     assert main(["analyze", "x.nc", "--out", str(tmp_path / "o"), "--gis", "kml"]) == 2
+
+
+def test_an_internal_error_is_reported_without_a_traceback(tmp_path, monkeypatch, capsys):
+    import coastmon.pipeline
+
+    def broken(*_args, **_kwargs):
+        raise KeyError("planted bug")
+
+    monkeypatch.setattr(coastmon.pipeline, "coast", broken)
+    assert main(["coast", "x.nc", "--out", str(tmp_path / "o")]) == 1
+    err = capsys.readouterr().err
+    # check: common practice, no source (one paragraph, details saved for the bug report)
+    assert "internal error" in err and "Traceback" not in err
+    saved = err.split("traceback is in ")[1].split(";")[0]
+    assert "planted bug" in open(saved).read()

@@ -267,3 +267,23 @@ def test_exceedance_runs_by_hand():
     # by hand: |x| > 2 on [1, 3) (2 steps), [4, 7) and [8, 12)
     assert exceedance_runs(x, 2.0, 3) == [(4, 7), (8, 12)]  # check: counted by hand
     assert exceedance_runs(x, 2.0, 1) == [(1, 3), (4, 7), (8, 12)]  # check: counted by hand
+
+
+def test_update_from_the_command_line_writes_the_full_report(record, tmp_path, capsys):
+    from coastmon.cli import main
+
+    toml = tmp_path / "run.toml"
+    toml.write_text("[signals]\neddy_period_days = [10.0, 60.0]\n"
+                    "[sources]\nn_bootstrap = 20\n"
+                    "[coast]\nray_length_km = 300.0\nstation_spacing_km = 15.0\n")
+    state = tmp_path / "state"
+    for piece in record.pieces[:2]:
+        assert main(["update", str(state), str(piece), "--settings", str(toml),
+                     "--no-progress"]) == 0
+    out = state / "outputs"
+    # check: design.md output contract (update refreshes every output of analyze)
+    for name in ("report.html", "map.gpkg", "sources.csv", "results.nc", "run.json",
+                 "events.csv"):
+        assert (out / name).is_file(), name
+    assert list((out / "figures").glob("*.png"))
+    assert "monitoring state updated" in capsys.readouterr().out
