@@ -14,13 +14,12 @@ from pathlib import Path
 
 import geopandas as gpd
 import numpy as np
-import pandas as pd
 import pyogrio
 import pytest
 import xarray as xr
+from planted import nearest_source
 
 from coastmon.config import Settings
-from coastmon.grid.metrics import haversine_m
 from coastmon.pipeline import analyse_series, analyze, prepare
 from coastmon.scenario import (
     ScenarioParams,
@@ -42,12 +41,6 @@ def _run(params: ScenarioParams, tmp: Path, settings: Settings = QUIET):
     return prep, products, json.loads(truth.read_text())
 
 
-def _match(sources: pd.DataFrame, lon: float, lat: float) -> tuple[int, float]:
-    d = haversine_m(sources["lon"].values, sources["lat"].values, lon, lat) / 1000.0
-    k = int(np.argmin(d))
-    return k, float(d[k])
-
-
 @pytest.fixture(scope="module")
 def default_run(tmp_path_factory):
     out = tmp_path_factory.mktemp("e2e") / "out"
@@ -64,7 +57,7 @@ def test_planted_order_and_positions_recovered(default_run):
     found_ranks = []
     for name in truth["expected_rank"]:
         p = planted[name]
-        k, dist = _match(src, p["cape_lon"], p["cape_lat"])
+        k, dist = nearest_source(src, p["cape_lon"], p["cape_lat"])
         # check: planted truth (scenario generator); one grid cell is ~8 km, cape width >= 40 km
         assert dist < 30.0, f"{name}: nearest source {dist:.0f} km from its cape"
         assert src["cape_id"].values[k] != ""
@@ -79,7 +72,7 @@ def test_feed_ratio_within_factor_1_5_of_planted(default_run):
     src = result.products.sources
     feeds = []
     for p in truth["sources"][:2]:
-        k, _ = _match(src, p["cape_lon"], p["cape_lat"])
+        k, _ = nearest_source(src, p["cape_lon"], p["cape_lat"])
         feeds.append((src["feed_w_per_m"].values[k], p["realized_feed_w_per_m"]))
     measured = feeds[0][0] / feeds[1][0]
     planted = feeds[0][1] / feeds[1][1]
@@ -92,7 +85,7 @@ def test_absolute_feed_and_speed_match_the_planted_eddies(default_run):
     _, result, truth = default_run
     src = result.products.sources
     for p in truth["sources"]:
-        k, _ = _match(src, p["cape_lon"], p["cape_lat"])
+        k, _ = nearest_source(src, p["cape_lon"], p["cape_lat"])
         # check: planted truth (analytic energy flux of the planted eddies across the gate)
         assert p["realized_feed_w_per_m"] / 2 < src["feed_w_per_m"].values[k] < \
             2 * p["realized_feed_w_per_m"]
@@ -148,7 +141,7 @@ def test_western_boundary_coast_gives_the_same_answer(tmp_path):
     ranks = []
     for name in truth["expected_rank"]:
         p = next(q for q in truth["sources"] if q["name"] == name)
-        k, dist = _match(src, p["cape_lon"], p["cape_lat"])
+        k, dist = nearest_source(src, p["cape_lon"], p["cape_lat"])
         # check: planted truth (scenario generator, mirrored coast)
         assert dist < 30.0 and src["cape_id"].values[k] != ""
         ranks.append(int(src["rank"].values[k]))
@@ -177,7 +170,7 @@ def test_bootstrap_intervals_cover_the_planted_ratio(tmp_path):
         src = products.sources
         ks = []
         for p in truth["sources"]:
-            k, d = _match(src, p["cape_lon"], p["cape_lat"]) if len(src) else (-1, np.inf)
+            k, d = nearest_source(src, p["cape_lon"], p["cape_lat"]) if len(src) else (-1, np.inf)
             ks.append(k if d < 30 else -1)
         if min(ks) < 0:
             continue

@@ -108,17 +108,25 @@ def _check_frame_invariants(lon, lat, mask, frame) -> None:
     assert kept.mean() >= 0.5, f"only {kept.mean():.0%} of sections start at sea"
 
 
+def _geometry(lon, lat, mask):
+    """Capes and frame of a mask, or None when the geometry refuses it with GeometryError
+    (the only error allowed); the refusal must carry a message."""
+    try:
+        coastline = extract_coastline(lon, lat, mask, COAST)
+        return find_capes(coastline, COAST), build_frame(coastline, lon, lat, mask, COAST)
+    except GeometryError as exc:
+        assert str(exc)
+        return None
+
+
 @FEW
 @given(coast_masks())
 def test_random_coasts_give_consistent_geometry(case):
     lon, lat, mask = case
-    try:
-        coastline = extract_coastline(lon, lat, mask, COAST)
-        capes = find_capes(coastline, COAST)
-        frame = build_frame(coastline, lon, lat, mask, COAST)
-    except GeometryError as exc:
-        assert str(exc)
+    built = _geometry(lon, lat, mask)
+    if built is None:
         return
+    capes, frame = built
     # check: Mokhtarian & Mackworth 1992 with the sea on the right, a convex-seaward
     # headland has positive curvature
     assert np.all(capes["curvature_per_km"].to_numpy() > 0)
@@ -130,13 +138,10 @@ def test_random_coasts_give_consistent_geometry(case):
 @given(noise_masks())
 def test_random_blobs_raise_only_geometry_errors(case):
     lon, lat, mask = case
-    try:
-        coastline = extract_coastline(lon, lat, mask, COAST)
-        capes = find_capes(coastline, COAST)
-        frame = build_frame(coastline, lon, lat, mask, COAST)
-    except GeometryError as exc:
-        assert str(exc)
+    built = _geometry(lon, lat, mask)
+    if built is None:
         return
+    capes, frame = built
     # check: Mokhtarian & Mackworth 1992 (capes are convex-seaward curvature maxima)
     assert np.all(capes["curvature_per_km"].to_numpy() > 0)
     sampler = frame.sampler.tocsr()

@@ -1,0 +1,30 @@
+"""Comparing found sources with the planted truth of a scenario (shared by the tests)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from coastmon.grid.metrics import haversine_m
+
+
+def nearest_source(sources: pd.DataFrame, lon: float, lat: float) -> tuple[int, float]:
+    """Row index of the source nearest to (lon, lat) and its distance in km."""
+    d = haversine_m(sources["lon"].to_numpy(), sources["lat"].to_numpy(), lon, lat) / 1000.0
+    k = int(np.argmin(d))
+    return k, float(d[k])
+
+
+def ranks_of_planted(sources: pd.DataFrame, truth: dict, tol_km: float = 30.0) -> list[int]:
+    """Rank found for each planted source, in the planted order.
+
+    Fails when a planted source has no found source within ``tol_km`` of its cape.
+    """
+    ranks = []
+    for name in truth["expected_rank"]:
+        planted = next(p for p in truth["sources"] if p["name"] == name)
+        k, dist = nearest_source(sources, planted["cape_lon"], planted["cape_lat"])
+        # check: planted truth (the cape of each planted source, from the generator)
+        assert dist < tol_km, f"{name}: nearest source {dist:.0f} km away"
+        ranks.append(int(sources["rank"].iloc[k]))
+    return ranks
