@@ -87,22 +87,27 @@ def make_record(path: Path, ny: int, nx: int, nt: int, zlib: bool) -> None:
 
 
 def _frame(ds, n_stations: int = 150, n_offsets: int = 7, n_rays: int = 60):
-    """A stand-in frame: random bilinear-like rows of 4 sea points (the pass only samples)."""
+    """A stand-in frame with the layout of a real one: stations along the coast, each
+    with an offshore section and a zonal ray westward, sampled bilinearly
+    (:func:`coastmon.geometry.frame.bilinear_sampler`)."""
     from types import SimpleNamespace
 
     import pandas as pd
-    from scipy import sparse
 
-    rng = np.random.default_rng(1)
-    sea = np.flatnonzero(ds["mask"].values.ravel() == 1)
-    n_points = n_stations * (n_offsets + n_rays)
-    cols = rng.choice(sea, size=(n_points, 4))
-    w = rng.uniform(0.1, 1.0, size=(n_points, 4))
-    w /= w.sum(axis=1, keepdims=True)
-    sampler = sparse.csr_matrix(
-        (w.ravel(), cols.ravel(), np.arange(0, 4 * n_points + 1, 4)),
-        shape=(n_points, ds.sizes["y"] * ds.sizes["x"]),
-    )
+    from coastmon.geometry.frame import bilinear_sampler
+
+    lon, lat = ds["lon"].values, ds["lat"].values
+    mask = ds["mask"].values
+    station_lat = np.linspace(lat.min() + 0.5, lat.max() - 0.5, n_stations)
+    coast_lon = -12.0 - 1.5 * np.sin(np.deg2rad(station_lat) * 25.0)
+    offsets = 0.1 * np.arange(n_offsets)  # degrees offshore
+    rays = 0.25 * np.arange(1, n_rays + 1)
+    sec_lon = coast_lon[:, None] - 0.05 - offsets[None, :]
+    ray_lon = coast_lon[:, None] - 0.05 - rays[None, :]
+    point_lon = np.concatenate([sec_lon.ravel(), ray_lon.ravel()])
+    point_lat = np.concatenate([np.repeat(station_lat, n_offsets),
+                                np.repeat(station_lat, n_rays)])
+    sampler, valid = bilinear_sampler(lon, lat, mask, point_lon, point_lat)
 
     def split(samples):
         s, o = n_stations, n_offsets
@@ -110,9 +115,9 @@ def _frame(ds, n_stations: int = 150, n_offsets: int = 7, n_rays: int = 60):
                 samples[..., s * o:].reshape(*samples.shape[:-1], s, n_rays))
 
     return SimpleNamespace(
-        sampler=sampler, valid=np.ones(n_points, dtype=bool), split=split,
+        sampler=sampler, valid=valid, split=split,
         stations=pd.DataFrame({"alongshore_km": 10.0 * np.arange(n_stations)}),
-        offsets_km=10.0 * np.arange(n_offsets), ray_km=10.0 * np.arange(1, n_rays + 1),
+        offsets_km=10.0 * np.arange(n_offsets), ray_km=25.0 * np.arange(1, n_rays + 1),
     )
 
 

@@ -33,6 +33,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 from shapely.geometry import LineString, Point
+from xarray.backends import NetCDF4BackendEntrypoint, ZarrBackendEntrypoint
 
 from coastmon import __version__
 from coastmon.assess.spinup import SpinupCurve, spinup_curve
@@ -318,8 +319,9 @@ def describe_input(path: Path) -> dict[str, Any]:
     size = sum(f.stat().st_size for f in path.rglob("*") if f.is_file()) if path.is_dir() \
         else path.stat().st_size
     try:
-        with xr.open_dataset(path, engine="zarr" if path.is_dir() else None,
-                             decode_times=False) as ds:
+        # Backend classes, not names or guessing: either would import every xarray plugin.
+        engine = ZarrBackendEntrypoint if path.is_dir() else NetCDF4BackendEntrypoint
+        with xr.open_dataset(path, engine=engine, decode_times=False) as ds:
             meta = {"attrs": {k: str(v) for k, v in ds.attrs.items()},
                     "vars": {k: [list(v.dims), list(v.shape), {a: str(b) for a, b in v.attrs.items()}]
                              for k, v in ds.variables.items()}}

@@ -290,3 +290,26 @@ def test_report_renders_in_headless_chromium(tmp_path, figure_files):
                    f"--screenshot={shot}", path.as_uri())
     assert run.returncode == 0, run.stderr[-2000:]
     _decode(shot)
+
+
+def test_long_records_are_drawn_as_block_means(tmp_path):
+    from coastmon.report.figures import MAX_COLUMNS, _thin_columns
+
+    t = np.arange(5000, dtype=float)
+    field = np.vstack([t, np.sin(2 * np.pi * t / 400.0)])
+    shown_t, (shown,) = _thin_columns(t, [field])
+    k = int(np.ceil(t.size / MAX_COLUMNS))
+    assert shown_t.size <= MAX_COLUMNS and k == 9
+    # check: common practice, no source — the mean of k consecutive integers starting at
+    # n is n + (k - 1)/2, and a block mean of a slow sine is the sine at the block centre
+    # times the moving-average response sin(k w/2) / (k sin(w/2)), about 1 - 8e-4 here
+    np.testing.assert_allclose(shown_t, np.arange(shown_t.size) * k + (k - 1) / 2)
+    np.testing.assert_allclose(shown[0], shown_t)
+    gain = np.sinc(k / 400.0) / np.sinc(1 / 400.0)
+    np.testing.assert_allclose(shown[1], gain * np.sin(2 * np.pi * shown_t / 400.0), atol=1e-12)
+    # a 5000-day wavelet figure still writes a normal-sized PNG
+    periods = 2.0 ** np.linspace(2, 9, 40)
+    power = np.outer(np.ones(40), 1 + field[1] ** 2)
+    path = wavelet_figure(tmp_path / "long.png", t, periods, power, power / 1.5,
+                          np.minimum(t, t[::-1]) + 4.0, field[1])
+    assert _decode(path).shape[1] <= 1400

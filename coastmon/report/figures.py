@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import functools
 import os
+import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import ParamSpec, TypeVar
@@ -402,6 +403,31 @@ def alongshore_figure(
     return _save(fig, path)
 
 
+MAX_COLUMNS = 600
+"""Most time columns a shaded time–period or time–distance panel draws; longer records
+are shown as block means of consecutive steps (a panel is under 900 pixels wide)."""
+
+
+def _thin_columns(t: np.ndarray, arrays: Sequence[np.ndarray]
+                  ) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Block means over the last axis so that at most :data:`MAX_COLUMNS` columns remain.
+
+    Drawing cost then stays the same however long the record; the blocks are shorter
+    than one pixel of the panel, so the picture does not change.
+    """
+    k = int(np.ceil(t.size / MAX_COLUMNS))
+    if k <= 1:
+        return t, list(arrays)
+    n = t.size // k * k
+
+    def blocks(a: np.ndarray) -> np.ndarray:
+        with np.errstate(invalid="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            return np.nanmean(a[..., :n].reshape(*a.shape[:-1], n // k, k), axis=-1)
+
+    return blocks(t), [blocks(a) for a in arrays]
+
+
 @_styled
 def hovmoller_figure(
     path: str | os.PathLike[str],
@@ -432,9 +458,10 @@ def hovmoller_figure(
         Measured propagation speed and long Rossby wave speed (m s⁻¹, positive
         westward), drawn as slope lines of distance = speed × time.
     """
-    t = np.asarray(time_days, dtype=float)
     d = np.asarray(distance_km, dtype=float)
-    values = np.ma.masked_invalid(np.asarray(field, dtype=float))
+    t, (rows,) = _thin_columns(np.asarray(time_days, dtype=float),
+                               [np.asarray(field, dtype=float).T])
+    values = np.ma.masked_invalid(rows.T)
     fig = _figure(6.0, 6.4)
     ax = fig.add_subplot()
     finite = values.compressed()
@@ -503,14 +530,18 @@ def wavelet_figure(
     series_label, power_label
         Axis and colour-bar labels with units.
     """
-    t = np.asarray(time_days, dtype=float)
+    t_full = np.asarray(time_days, dtype=float)
     p = np.asarray(periods_days, dtype=float)
-    pw = np.ma.masked_invalid(np.asarray(power, dtype=float))
+    t, (power, sig_ratio, coi_days) = _thin_columns(
+        t_full, [np.asarray(power, dtype=float), np.asarray(sig_ratio, dtype=float),
+                 np.asarray(coi_days, dtype=float)[None, :]])
+    coi_days = coi_days[0]
+    pw = np.ma.masked_invalid(power)
     fig = _figure(7.0, 5.6)
     grid = fig.add_gridspec(2, 1, height_ratios=(1.0, 2.6))
     ax_s = fig.add_subplot(grid[0])
     ax_w = fig.add_subplot(grid[1], sharex=ax_s)
-    ax_s.plot(t, np.asarray(series, dtype=float), color=BLUE, linewidth=0.9)
+    ax_s.plot(t_full, np.asarray(series, dtype=float), color=BLUE, linewidth=0.9)
     ax_s.axhline(0.0, color="0.6", linewidth=0.6)
     ax_s.set_ylabel(series_label)
     ax_s.tick_params(labelbottom=False)

@@ -41,6 +41,9 @@ from coastmon.signals import (
     significant_fraction,
 )
 
+WAVELET_BUDGET_BYTES = 128 * 2**20
+"""Memory for the wavelet coefficients of one group of stations (complex, all scales)."""
+
 
 def time_step_days(series: xr.Dataset) -> float:
     """Sampling interval of the series in days (from the ``time_days`` coordinate)."""
@@ -105,19 +108,31 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
     period = np.full(n_station, np.nan)
     if valid.sum() >= 1:
         x = _fill_gaps(zeta[:, valid].T)
-        wt = cwt_morlet(x, dt, dj=s.dj, omega0=s.omega0)
         band = s.eddy_period_days
         alpha = lag1_autocorrelation(x, axis=-1)
         alpha_bg = float(np.clip(np.nanmedian(alpha), 0.0, 0.99))
-        var_bg = float(np.nanmedian(wt.variance))
-        sig_own = scale_average_significance(wt, np.full(x.shape[0], alpha_bg), band,
-                                             level=s.significance)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            sig_bg = sig_own * var_bg / wt.variance
-        persistence[valid] = significant_fraction(wt, sig_bg, band)
-        in_band = (wt.periods >= band[0]) & (wt.periods <= band[1])
-        mean_power = wt.power.mean(axis=-1)[:, in_band]
-        period[valid] = wt.periods[in_band][np.argmax(mean_power, axis=-1)]
+        # The series' variance as cwt_morlet computes it, for the coast's background level.
+        variance = np.mean((x - x.mean(axis=-1, keepdims=True)) ** 2, axis=-1)
+        var_bg = float(np.nanmedian(variance))
+        found_persistence = np.empty(x.shape[0])
+        found_period = np.empty(x.shape[0])
+        # Stations in groups, so the wavelet coefficients stay within a fixed budget
+        # however long the record.
+        per_station = 16 * x.shape[1] * (int(np.log2(max(x.shape[1], 2)) / s.dj) + 1)
+        group = max(1, WAVELET_BUDGET_BYTES // per_station)
+        for g0 in range(0, x.shape[0], group):
+            g1 = min(x.shape[0], g0 + group)
+            wt = cwt_morlet(x[g0:g1], dt, dj=s.dj, omega0=s.omega0)
+            sig_own = scale_average_significance(wt, np.full(g1 - g0, alpha_bg), band,
+                                                 level=s.significance)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                sig_bg = sig_own * var_bg / wt.variance
+            found_persistence[g0:g1] = significant_fraction(wt, sig_bg, band)
+            in_band = (wt.periods >= band[0]) & (wt.periods <= band[1])
+            mean_power = wt.power[:, in_band].mean(axis=-1)
+            found_period[g0:g1] = wt.periods[in_band][np.argmax(mean_power, axis=-1)]
+        persistence[valid] = found_persistence
+        period[valid] = found_period
 
     localization = np.full(n_station, np.nan)
     scale_km = np.full(n_station, np.nan)

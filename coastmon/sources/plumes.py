@@ -20,8 +20,6 @@ Method
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
 import pandas as pd
 import xarray as xr
@@ -30,11 +28,23 @@ from scipy.ndimage import gaussian_filter1d
 from coastmon.grid.metrics import haversine_m
 
 
+def time_nanmean(values: np.ndarray, block: int = 256) -> np.ndarray:
+    """Mean over the first (time) axis ignoring NaN, in float64, a block of steps at a time
+    (memory does not grow with the record); NaN where no step is finite."""
+    total = np.zeros(values.shape[1:])
+    count = np.zeros(values.shape[1:])
+    for start in range(0, values.shape[0], block):
+        part = np.asarray(values[start:start + block], dtype=np.float64)
+        ok = np.isfinite(part)
+        total += np.where(ok, part, 0.0).sum(axis=0)
+        count += ok.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, total / count, np.nan)
+
+
 def mean_zonal_anomaly(series: xr.Dataset, frame, smooth_stations: float = 4.0) -> np.ndarray:
     """Time-mean zonal velocity on the rays minus its along-shore running mean (m s-1)."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # rays over land stay NaN
-        ubar = np.nanmean(np.asarray(series["ray_u"].values, dtype=np.float64), axis=0)
+    ubar = time_nanmean(series["ray_u"].values)
     out = np.full_like(ubar, np.nan)
     for _, idx in frame.stations.groupby("segment_id").indices.items():
         idx = np.asarray(idx)

@@ -1,14 +1,16 @@
 """Compiled kernels of the streaming pass (numba).
 
-The per-chunk work on a ``(time, y, x)`` block is done by four kernels:
+The per-chunk work on a ``(time, y, x)`` block is done by:
 
-* :func:`dual_fields` — relative vorticity, the Okubo–Weiss parameter and its eddy-core
-  limit at the grid points, with the same Green's-theorem arithmetic as :mod:`coastmon.grid.operators`
-  (dual-cell circulation, then the mean of the valid dual cells around each point);
-  :func:`given_zeta_fields` does the same with a vorticity given from outside (the native
-  C-grid vorticity of :mod:`coastmon.io.sgrid`);
-* :func:`chunk_moments` — count, means, second and third central co-moments per point
-  for a subset of the chunk's time steps (two passes over time, rows in parallel);
+* :func:`chunk_fields` — one fused kernel: relative vorticity, the Okubo–Weiss parameter
+  and its eddy-core limit at the grid points, with the same Green's-theorem arithmetic
+  as :mod:`coastmon.grid.operators` (dual-cell circulation, then the mean of the valid
+  dual cells around each point), and, while each grid row is in cache, the count, means,
+  second and third central co-moments of that row (two passes over the row's time
+  steps); a vorticity given from outside (the native C-grid vorticity of
+  :mod:`coastmon.io.sgrid`) takes the place of the computed one;
+* :func:`chunk_moments` — the same moments for arrays given whole (used to build states
+  from arrays);
 * :func:`merge_moments` — the pairwise combination of two sets of moments
   (Chan, Golub & LeVeque 1983; Pébay 2008 for third order), in place;
 * :class:`Sampler` — a sparse-matrix product that ignores missing inputs and
@@ -51,9 +53,13 @@ def _compile(parallel: bool):
     return wrap
 
 
-@njit(nogil=True, inline="always")
+@njit(nogil=True, fastmath={"reassoc"})
 def _w_row_sums(w, t, j, wsum, wsq, wcnt):  # pragma: no cover - compiled
-    """Sum, sum of squares and count of the finite W of one row of one snapshot."""
+    """Sum, sum of squares and count of the finite W of one row of one snapshot.
+
+    The sums may be reassociated (so the loop vectorises); they only set the eddy-core
+    threshold, where a change in the last bits does not matter.
+    """
     acc = 0.0
     acc2 = 0.0
     cnt = 0.0
@@ -68,7 +74,7 @@ def _w_row_sums(w, t, j, wsum, wsq, wcnt):  # pragma: no cover - compiled
     wcnt[j, t] = cnt
 
 
-@njit(nogil=True, inline="always")
+@njit(nogil=True)
 def _ow_limits(wsum, wsq, wcnt, ow_threshold, limit):  # pragma: no cover - compiled
     """Eddy-core threshold per snapshot, -theta * sigma_W, from the row sums.
 
@@ -91,7 +97,7 @@ def _ow_limits(wsum, wsq, wcnt, ow_threshold, limit):  # pragma: no cover - comp
             limit[t] = -np.inf
 
 
-@njit(nogil=True, inline="always")
+@njit(nogil=True)
 def _dual_row(u, v, gx, gy, j, zrow, wrow):  # pragma: no cover - compiled
     """Vorticity and W on dual row j for every time step, into zrow/wrow[:, 1:nx].
 
@@ -148,139 +154,7 @@ def _dual_row(u, v, gx, gy, j, zrow, wrow):  # pragma: no cover - compiled
             wrow[t, i + 1] = (ux - vy) ** 2 + (vx + uy) ** 2 - z**2
 
 
-@_compile(parallel=True)
-def _dual_fields(u, v, gx, gy, ow_threshold, zeta, w, limit, n_bands):  # pragma: no cover
-    nt, ny, nx = u.shape
-    wsum = np.zeros((ny, nt))
-    wsq = np.zeros((ny, nt))
-    wcnt = np.zeros((ny, nt))
-    for b in prange(n_bands):
-        r0 = b * ny // n_bands
-        r1 = (b + 1) * ny // n_bands
-        # Rolling rows of dual cells, padded with NaN: index i + 1 holds dual column i.
-        zprev = np.full((nt, nx + 1), np.nan)
-        wprev = np.full((nt, nx + 1), np.nan)
-        zcur = np.full((nt, nx + 1), np.nan)
-        wcur = np.full((nt, nx + 1), np.nan)
-        if r0 > 0:
-            _dual_row(u, v, gx, gy, r0 - 1, zprev, wprev)
-        for j in range(r0, r1):
-            if j < ny - 1:
-                _dual_row(u, v, gx, gy, j, zcur, wcur)
-            else:
-                zcur[:, :] = np.nan
-            for t in range(nt):
-                for i in range(nx):
-                    # Same order as grid.metrics._to_points: the cell having this point as
-                    # vertex 0, then 1, 2, 3; missing cells add exactly 0.
-                    a = zcur[t, i + 1]
-                    bb = zcur[t, i]
-                    c = zprev[t, i]
-                    d = zprev[t, i + 1]
-                    fa = np.isfinite(a)
-                    fb = np.isfinite(bb)
-                    fc = np.isfinite(c)
-                    fd = np.isfinite(d)
-                    zt = 0.0
-                    zt += a if fa else 0.0
-                    zt += bb if fb else 0.0
-                    zt += c if fc else 0.0
-                    zt += d if fd else 0.0
-                    wt = 0.0
-                    wt += wcur[t, i + 1] if fa else 0.0
-                    wt += wcur[t, i] if fb else 0.0
-                    wt += wprev[t, i] if fc else 0.0
-                    wt += wprev[t, i + 1] if fd else 0.0
-                    n = (1.0 if fa else 0.0) + (1.0 if fb else 0.0)
-                    n += 1.0 if fc else 0.0
-                    n += 1.0 if fd else 0.0
-                    valid = n > 0.0
-                    zeta[t, j, i] = zt / n if valid else np.nan
-                    w[t, j, i] = wt / n if valid else np.nan
-                # Row sums for the spatial statistics of W (a separate loop, so that the
-                # one above has no cross-iteration dependence and vectorises).
-                _w_row_sums(w, t, j, wsum, wsq, wcnt)
-            zprev, zcur = zcur, zprev
-            wprev, wcur = wcur, wprev
-    _ow_limits(wsum, wsq, wcnt, ow_threshold, limit)
-    return 0
-
-
-class Workspace:
-    """Scratch arrays of :func:`dual_fields`, kept between chunks of one thread.
-
-    Reusing them avoids allocating (and page-faulting) chunk-sized arrays for every chunk.
-    The arrays returned by :func:`dual_fields` are views into the workspace, valid until
-    its next use.
-    """
-
-    def __init__(self) -> None:
-        self._store: dict[str, np.ndarray] = {}
-
-    def _get(self, name: str, shape: tuple[int, ...], dtype) -> np.ndarray:
-        size = int(np.prod(shape))
-        buf = self._store.get(name)
-        if buf is None or buf.size < size:
-            buf = np.empty(size, dtype=dtype)
-            self._store[name] = buf
-        return buf[:size].reshape(shape)
-
-    def arrays(self, shape: tuple[int, int, int]):
-        return (
-            self._get("zeta", shape, np.float64),
-            self._get("w", shape, np.float64),
-            self._get("limit", shape[:1], np.float64),
-        )
-
-
-def dual_fields(
-    u: np.ndarray,
-    v: np.ndarray,
-    gx: np.ndarray,
-    gy: np.ndarray,
-    ow_threshold: float,
-    workspace: Workspace | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    r"""Vorticity, Okubo–Weiss W and the eddy-core limit on a ``(t, y, x)`` block.
-
-    On each dual cell, vorticity is the circulation over the area (Stokes),
-    :math:`\zeta = \sum_k g^x_k v_k - \sum_k g^y_k u_k`, and the strain uses the
-    Green's-theorem derivatives with the cell mean removed,
-    :math:`\partial q/\partial x = \sum_k g^x_k (q_k - \bar q)` (as
-    :func:`coastmon.grid.operators.gradient_dual`), in
-    :math:`W = (u_x - v_y)^2 + (v_x + u_y)^2 - \zeta^2` (Okubo 1970; Weiss 1991).
-    Point values are the mean of the valid dual cells around the point, exactly as
-    :func:`coastmon.grid.operators.vorticity` and ``okubo_weiss``. A point is an eddy
-    core when :math:`W < -\theta\,\sigma_W`, with :math:`\sigma_W` the spatial
-    (population) standard deviation of W over the valid points of that snapshot.
-
-    Dual cells are computed row by row, each row for all time steps while its weights
-    are in cache, into two rolling rows; no dual-cell array is ever stored.
-
-    Parameters
-    ----------
-    u, v : (t, y, x) float32 or float64, NaN where missing.
-    gx, gy : (4, y-1, x-1) Green's-theorem weights (:class:`~coastmon.grid.metrics.GridMetrics`).
-    ow_threshold : the factor :math:`\theta`.
-    workspace : scratch arrays to reuse (a new one when None).
-
-    Returns
-    -------
-    zeta : (t, y, x) float64, s-1, NaN where no valid dual cell touches the point.
-    w : (t, y, x) float64, s-2, Okubo–Weiss parameter.
-    limit : (t,) the eddy-core limit :math:`-\theta\sigma_W` of each snapshot
-        (``-inf`` when the snapshot has no valid point).
-    """
-    if workspace is None:
-        workspace = Workspace()
-    zeta, w, limit = workspace.arrays(u.shape)
-    ny = u.shape[1]
-    n_bands = max(1, min(ny, 4 * numba.get_num_threads()))
-    _dual_fields(u, v, gx, gy, float(ow_threshold), zeta, w, limit, n_bands)
-    return zeta, w, limit
-
-
-@njit(nogil=True, inline="always")
+@njit(nogil=True)
 def _strain_row(u, v, gx, gy, j, srow):  # pragma: no cover - compiled
     """Squared strain on dual row j for every time step, into srow[:, 1:nx].
 
@@ -315,182 +189,379 @@ def _strain_row(u, v, gx, gy, j, srow):  # pragma: no cover - compiled
             srow[t, i + 1] = (ux - vy) ** 2 + (vx + uy) ** 2
 
 
+@njit(nogil=True)
+def _dual_points(zcur, wcur, zprev, wprev, t, j, zrow, zout, w):  # pragma: no cover
+    """Point values of ζ and W on row j, snapshot t: the mean of the valid dual cells.
+
+    Same order as grid.metrics._to_points: the cell having the point as vertex 0, then
+    1, 2, 3; missing cells add exactly 0. ζ goes to the row buffer (float64) and to
+    ``zout`` (its dtype), W to ``w``.
+    """
+    nx = zrow.shape[1]
+    for i in range(nx):
+        a = zcur[t, i + 1]
+        bb = zcur[t, i]
+        c = zprev[t, i]
+        d = zprev[t, i + 1]
+        fa = np.isfinite(a)
+        fb = np.isfinite(bb)
+        fc = np.isfinite(c)
+        fd = np.isfinite(d)
+        zt = 0.0
+        zt += a if fa else 0.0
+        zt += bb if fb else 0.0
+        zt += c if fc else 0.0
+        zt += d if fd else 0.0
+        wt = 0.0
+        wt += wcur[t, i + 1] if fa else 0.0
+        wt += wcur[t, i] if fb else 0.0
+        wt += wprev[t, i] if fc else 0.0
+        wt += wprev[t, i + 1] if fd else 0.0
+        n = (1.0 if fa else 0.0) + (1.0 if fb else 0.0)
+        n += 1.0 if fc else 0.0
+        n += 1.0 if fd else 0.0
+        valid = n > 0.0
+        z = zt / n if valid else np.nan
+        zrow[t, i] = z
+        zout[t, j, i] = z
+        w[t, j, i] = wt / n if valid else np.nan
+
+
+@njit(nogil=True)
+def _given_points(scur, sprev, zin, t, j, zrow, w):  # pragma: no cover
+    """Point values on row j, snapshot t, with ζ given: W = mean squared strain - ζ²."""
+    nx = zrow.shape[1]
+    for i in range(nx):
+        a = scur[t, i + 1]
+        bb = scur[t, i]
+        c = sprev[t, i]
+        d = sprev[t, i + 1]
+        fa = np.isfinite(a)
+        fb = np.isfinite(bb)
+        fc = np.isfinite(c)
+        fd = np.isfinite(d)
+        st = 0.0
+        st += a if fa else 0.0
+        st += bb if fb else 0.0
+        st += c if fc else 0.0
+        st += d if fd else 0.0
+        n = (1.0 if fa else 0.0) + (1.0 if fb else 0.0)
+        n += 1.0 if fc else 0.0
+        n += 1.0 if fd else 0.0
+        z = np.float64(zin[t, j, i])
+        zrow[t, i] = z
+        w[t, j, i] = st / n - z * z if n > 0.0 else np.nan
+
+
+@njit(nogil=True)
+def _row_moments(u, v, zr, h, has_h, j, tsel, cnt, s, acc):  # pragma: no cover - compiled
+    """Count, means and central co-moments of row j over the time steps ``tsel``.
+
+    ``zr[t, i]`` is the vorticity of row j. Two passes over time (means, then co-moments
+    about them), written out variable by variable with branch-free selects so that the
+    loops over x vectorise. ``acc`` holds the 10 pair sums (packed as :data:`PAIR_INDEX`)
+    then the 4 triple sums (:data:`TRIPLES`), all in one array so that the compiler needs
+    no run-time overlap checks between them.
+    """
+    nx = u.shape[2]
+    inf = np.inf
+    cnt[:] = 0.0
+    s[:, :] = 0.0
+    acc[:, :] = 0.0
+    for tt in range(tsel.shape[0]):
+        t = tsel[tt]
+        for i in range(nx):
+            a = np.float64(u[t, j, i])
+            b = np.float64(v[t, j, i])
+            c = zr[t, i]
+            d = np.float64(h[t, j, i])
+            ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf) & ((abs(d) < inf) | (not has_h))
+            cnt[i] += 1.0 if ok else 0.0
+            s[0, i] += a if ok else 0.0
+            s[1, i] += b if ok else 0.0
+            s[2, i] += c if ok else 0.0
+            s[3, i] += d if ok and has_h else 0.0
+    for i in range(nx):
+        scale = 1.0 / cnt[i] if cnt[i] > 0 else 0.0
+        for k in range(4):
+            s[k, i] *= scale
+    for tt in range(tsel.shape[0]):
+        t = tsel[tt]
+        if has_h:
+            for i in range(nx):
+                a = np.float64(u[t, j, i])
+                b = np.float64(v[t, j, i])
+                c = zr[t, i]
+                d = np.float64(h[t, j, i])
+                ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf) & (abs(d) < inf)
+                du = a - s[0, i] if ok else 0.0
+                dv = b - s[1, i] if ok else 0.0
+                dz = c - s[2, i] if ok else 0.0
+                dh = d - s[3, i] if ok else 0.0
+                uu = du * du
+                vv = dv * dv
+                acc[0, i] += uu
+                acc[1, i] += du * dv
+                acc[2, i] += vv
+                acc[3, i] += du * dz
+                acc[4, i] += dv * dz
+                acc[5, i] += dz * dz
+                acc[6, i] += du * dh
+                acc[7, i] += dv * dh
+                acc[8, i] += dz * dh
+                acc[9, i] += dh * dh
+                acc[10, i] += uu * du
+                acc[11, i] += du * vv
+                acc[12, i] += uu * dv
+                acc[13, i] += vv * dv
+        else:
+            for i in range(nx):
+                a = np.float64(u[t, j, i])
+                b = np.float64(v[t, j, i])
+                c = zr[t, i]
+                ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf)
+                du = a - s[0, i] if ok else 0.0
+                dv = b - s[1, i] if ok else 0.0
+                dz = c - s[2, i] if ok else 0.0
+                uu = du * du
+                vv = dv * dv
+                acc[0, i] += uu
+                acc[1, i] += du * dv
+                acc[2, i] += vv
+                acc[3, i] += du * dz
+                acc[4, i] += dv * dz
+                acc[5, i] += dz * dz
+                acc[10, i] += uu * du
+                acc[11, i] += du * vv
+                acc[12, i] += uu * dv
+                acc[13, i] += vv * dv
+
+
+@njit(nogil=True)
+def _store_row(g, j, cnt, s, acc, n, mean, m2, m3):  # pragma: no cover - compiled
+    nx = cnt.shape[0]
+    for i in range(nx):
+        n[g, j, i] = cnt[i]
+    for k in range(mean.shape[1]):
+        for i in range(nx):
+            mean[g, k, j, i] = s[k, i]
+    for k in range(m2.shape[1]):
+        for i in range(nx):
+            m2[g, k, j, i] = acc[k, i]
+    for k in range(m3.shape[1]):
+        for i in range(nx):
+            m3[g, k, j, i] = acc[10 + k, i]
+
+
+@njit(nogil=True)
+def _row_cores(w, limit, j, tsel, g, ow):  # pragma: no cover - compiled
+    """Eddy-core count of row j over ``tsel``: snapshots with W < limit (NaN W never counts)."""
+    nx = w.shape[2]
+    for i in range(nx):
+        ow[g, j, i] = 0.0
+    for tt in range(tsel.shape[0]):
+        t = tsel[tt]
+        lim = limit[t]
+        for i in range(nx):
+            ow[g, j, i] += 1.0 if w[t, j, i] < lim else 0.0
+
+
 @_compile(parallel=True)
-def _given_fields(u, v, zin, gx, gy, ow_threshold, zeta, w, limit, n_bands):  # pragma: no cover
+def _chunk_kernel(u, v, zin, h, has_z, has_h, gx, gy, ow_threshold, order, starts,
+                  zout, w, limit, n, mean, m2, m3, ow, n_bands):  # pragma: no cover
     nt, ny, nx = u.shape
+    n_groups = starts.shape[0] - 1
     wsum = np.zeros((ny, nt))
     wsq = np.zeros((ny, nt))
     wcnt = np.zeros((ny, nt))
     for b in prange(n_bands):
         r0 = b * ny // n_bands
         r1 = (b + 1) * ny // n_bands
-        sprev = np.full((nt, nx + 1), np.nan)
-        scur = np.full((nt, nx + 1), np.nan)
+        # Rolling rows of dual cells, padded with NaN: index i + 1 holds dual column i.
+        zprev = np.full((nt, nx + 1), np.nan)
+        wprev = np.full((nt, nx + 1), np.nan)
+        zcur = np.full((nt, nx + 1), np.nan)
+        wcur = np.full((nt, nx + 1), np.nan)
+        zrow = np.empty((nt, nx))
+        cnt = np.empty(nx)
+        s = np.empty((4, nx))
+        acc = np.empty((14, nx))
         if r0 > 0:
-            _strain_row(u, v, gx, gy, r0 - 1, sprev)
+            if has_z:
+                _strain_row(u, v, gx, gy, r0 - 1, wprev)
+            else:
+                _dual_row(u, v, gx, gy, r0 - 1, zprev, wprev)
         for j in range(r0, r1):
             if j < ny - 1:
-                _strain_row(u, v, gx, gy, j, scur)
+                if has_z:
+                    _strain_row(u, v, gx, gy, j, wcur)
+                else:
+                    _dual_row(u, v, gx, gy, j, zcur, wcur)
             else:
-                scur[:, :] = np.nan
+                zcur[:, :] = np.nan
+                wcur[:, :] = np.nan
             for t in range(nt):
-                for i in range(nx):
-                    a = scur[t, i + 1]
-                    bb = scur[t, i]
-                    c = sprev[t, i]
-                    d = sprev[t, i + 1]
-                    fa = np.isfinite(a)
-                    fb = np.isfinite(bb)
-                    fc = np.isfinite(c)
-                    fd = np.isfinite(d)
-                    st = 0.0
-                    st += a if fa else 0.0
-                    st += bb if fb else 0.0
-                    st += c if fc else 0.0
-                    st += d if fd else 0.0
-                    n = (1.0 if fa else 0.0) + (1.0 if fb else 0.0)
-                    n += 1.0 if fc else 0.0
-                    n += 1.0 if fd else 0.0
-                    z = np.float64(zin[t, j, i])
-                    zeta[t, j, i] = z
-                    w[t, j, i] = st / n - z * z if n > 0.0 else np.nan
+                if has_z:
+                    _given_points(wcur, wprev, zin, t, j, zrow, w)
+                else:
+                    _dual_points(zcur, wcur, zprev, wprev, t, j, zrow, zout, w)
+                # Row sums for the spatial statistics of W (a separate loop, so that the
+                # one above has no cross-iteration dependence and vectorises).
                 _w_row_sums(w, t, j, wsum, wsq, wcnt)
-            sprev, scur = scur, sprev
+                if has_h:
+                    # A step counts only where ssh is finite too (after σ_W, which uses
+                    # every finite W).
+                    for i in range(nx):
+                        w[t, j, i] = w[t, j, i] if np.isfinite(h[t, j, i]) else np.nan
+            for g in range(n_groups):
+                tsel = order[starts[g]:starts[g + 1]]
+                _row_moments(u, v, zrow, h, has_h, j, tsel, cnt, s, acc)
+                _store_row(g, j, cnt, s, acc, n, mean, m2, m3)
+            zprev, zcur = zcur, zprev
+            wprev, wcur = wcur, wprev
     _ow_limits(wsum, wsq, wcnt, ow_threshold, limit)
+    for j in prange(ny):
+        for g in range(n_groups):
+            _row_cores(w, limit, j, order[starts[g]:starts[g + 1]], g, ow)
     return 0
 
 
-def given_zeta_fields(
+@_compile(parallel=True)
+def _block_moments(u, v, z, h, has_h, w, limit, order, starts, n, mean, m2, m3, ow):  # pragma: no cover
+    ny = u.shape[1]
+    nx = u.shape[2]
+    n_groups = starts.shape[0] - 1
+    for j in prange(ny):
+        zr = np.ascontiguousarray(z[:, j, :])
+        cnt = np.empty(nx)
+        s = np.empty((4, nx))
+        acc = np.empty((14, nx))
+        for g in range(n_groups):
+            tsel = order[starts[g]:starts[g + 1]]
+            _row_moments(u, v, zr, h, has_h, j, tsel, cnt, s, acc)
+            _store_row(g, j, cnt, s, acc, n, mean, m2, m3)
+            _row_cores(w, limit, j, tsel, g, ow)
+    return 0
+
+
+class Workspace:
+    """Scratch arrays of :func:`chunk_fields`, kept between chunks of one thread.
+
+    Reusing them avoids allocating (and page-faulting) chunk-sized arrays for every chunk.
+    The ζ and W returned by :func:`chunk_fields` are views into the workspace, valid until
+    its next use.
+    """
+
+    def __init__(self) -> None:
+        self._store: dict[str, np.ndarray] = {}
+
+    def get(self, name: str, shape: tuple[int, ...], dtype) -> np.ndarray:
+        size = int(np.prod(shape))
+        key = f"{name}:{np.dtype(dtype).str}"
+        buf = self._store.get(key)
+        if buf is None or buf.size < size:
+            buf = np.empty(size, dtype=dtype)
+            self._store[key] = buf
+        return buf[:size].reshape(shape)
+
+
+def _group_order(groups: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Time steps sorted by group, the start of each group in that order, and the groups."""
+    groups = np.asarray(groups, dtype=np.int64)
+    labels, local = np.unique(groups, return_inverse=True)
+    order = np.argsort(local, kind="stable").astype(np.int64)
+    starts = np.searchsorted(local[order], np.arange(labels.size + 1)).astype(np.int64)
+    return order, starts, labels
+
+
+def _moment_arrays(n_groups: int, nv: int, shape: tuple[int, int]):
+    ny, nx = shape
+    return (np.empty((n_groups, ny, nx)), np.empty((n_groups, nv, ny, nx)),
+            np.empty((n_groups, nv * (nv + 1) // 2, ny, nx)),
+            np.empty((n_groups, TRIPLES.shape[0], ny, nx)), np.empty((n_groups, ny, nx)))
+
+
+def chunk_fields(
     u: np.ndarray,
     v: np.ndarray,
-    zeta: np.ndarray,
     gx: np.ndarray,
     gy: np.ndarray,
     ow_threshold: float,
+    groups: np.ndarray | None = None,
+    ssh: np.ndarray | None = None,
+    zeta: np.ndarray | None = None,
     workspace: Workspace | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    r"""As :func:`dual_fields`, with the vorticity given (e.g. native C-grid vorticity).
+    zeta_dtype=np.float64,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[int, tuple]]:
+    r"""All the per-chunk work on a ``(t, y, x)`` block, in one compiled kernel.
 
-    The squared strain :math:`s_n^2 + s_s^2` comes from the point velocities on the dual
-    cells exactly as in :func:`dual_fields` and is averaged over the valid dual cells
-    around each point; the Okubo–Weiss parameter is then
-    :math:`W = \overline{s_n^2 + s_s^2} - \zeta^2` with the given :math:`\zeta` (Okubo
-    1970; Weiss 1991), NaN where ζ is missing or no dual cell is valid. The eddy-core limit
-    is :math:`-	heta\sigma_W` as in :func:`dual_fields`.
+    Vorticity and the Okubo–Weiss parameter at the points, the eddy-core limit of each
+    snapshot, and per group of time steps the count, means, second and third central
+    co-moments and eddy-core counts (:func:`chunk_moments` defines them).
+
+    On each dual cell, vorticity is the circulation over the area (Stokes),
+    :math:`\zeta = \sum_k g^x_k v_k - \sum_k g^y_k u_k`, and the strain uses the
+    Green's-theorem derivatives with the cell mean removed,
+    :math:`\partial q/\partial x = \sum_k g^x_k (q_k - \bar q)` (as
+    :func:`coastmon.grid.operators.gradient_dual`), in
+    :math:`W = (u_x - v_y)^2 + (v_x + u_y)^2 - \zeta^2` (Okubo 1970; Weiss 1991).
+    Point values are the mean of the valid dual cells around the point, exactly as
+    :func:`coastmon.grid.operators.vorticity` and ``okubo_weiss``. With ``zeta`` given
+    (e.g. the native C-grid vorticity of :mod:`coastmon.io.sgrid`), W is the mean
+    squared strain of the dual cells around the point minus the given ζ², NaN where ζ is
+    missing. A point is an eddy core when :math:`W < -\theta\,\sigma_W`, with
+    :math:`\sigma_W` the spatial (population) standard deviation of W over the valid
+    points of that snapshot.
+
+    The kernel walks the grid in bands of rows; each dual-cell row is computed for all
+    time steps while its weights are in cache, into two rolling rows, and the moments of
+    a grid row are accumulated from its vorticity row while that row is in cache. Only ζ
+    (for sampling) and W (for the eddy-core count, which needs σ_W of whole snapshots) are
+    written out.
 
     Parameters
     ----------
     u, v : (t, y, x) float32 or float64, NaN where missing.
-    zeta : (t, y, x) relative vorticity (s-1) at the points, NaN where missing.
-    gx, gy : (4, y-1, x-1) Green's-theorem weights.
-    ow_threshold : the factor :math:`	heta`.
+    gx, gy : (4, y-1, x-1) Green's-theorem weights (:class:`~coastmon.grid.metrics.GridMetrics`).
+    ow_threshold : the factor :math:`\theta`.
+    groups : (t,) group label of each step (e.g. calendar month - 1); all 0 when None.
+    ssh : (t, y, x) sea surface height or None.
+    zeta : (t, y, x) given vorticity, or None to compute it from u and v.
     workspace : scratch arrays to reuse (a new one when None).
+    zeta_dtype : dtype of the returned ζ when computed (moments always use float64).
 
     Returns
     -------
-    zeta : (t, y, x) float64 copy of the given vorticity; w; limit — as :func:`dual_fields`.
+    zeta : (t, y, x) vorticity (s-1): the given array, or the computed one in
+        ``zeta_dtype``; NaN where no valid dual cell touches the point.
+    w : (t, y, x) float64 Okubo–Weiss parameter (s-2), NaN where a step does not count
+        (also where ssh is missing).
+    limit : (t,) the eddy-core limit :math:`-\theta\sigma_W` of each snapshot
+        (``-inf`` when the snapshot has no valid point).
+    parts : ``{group: (n, mean, m2, m3, ow)}`` as returned by :func:`chunk_moments`.
     """
-    if workspace is None:
-        workspace = Workspace()
-    out, w, limit = workspace.arrays(u.shape)
-    ny = u.shape[1]
-    n_bands = max(1, min(ny, 4 * numba.get_num_threads()))
-    _given_fields(u, v, zeta, gx, gy, float(ow_threshold), out, w, limit, n_bands)
-    return out, w, limit
+    workspace = Workspace() if workspace is None else workspace
+    shape = u.shape
+    has_z, has_h = zeta is not None, ssh is not None
+    groups = np.zeros(shape[0], dtype=np.int64) if groups is None else groups
+    order, starts, labels = _group_order(groups)
+    nv = 4 if has_h else 3
+    arrays = _moment_arrays(labels.size, nv, shape[1:])
+    zout = workspace.get("zeta", (1, 1, 1) if has_z else shape, zeta_dtype)
+    w = workspace.get("w", shape, np.float64)
+    limit = workspace.get("limit", shape[:1], np.float64)
+    n_bands = max(1, min(shape[1], 4 * numba.get_num_threads()))
+    _chunk_kernel(u, v, zeta if has_z else u, ssh if has_h else u, has_z, has_h, gx, gy,
+                  float(ow_threshold), order, starts, zout, w, limit, *arrays, n_bands)
+    parts = {int(g): tuple(a[k] for a in arrays) for k, g in enumerate(labels)}
+    return (zeta if has_z else zout), w, limit, parts
 
 
-@_compile(parallel=True)
-def _chunk_moments(u, v, z, h, has_h, w, limit, tindex, n, mean, m2, m3, ow):  # pragma: no cover
-    # Written out variable by variable (pair packing as PAIR_INDEX, triples as TRIPLES) so
-    # that the inner loops over x are branch-free and vectorise.
-    ny = u.shape[1]
-    nx = u.shape[2]
-    inf = np.inf
-    for j in prange(ny):
-        cnt = np.zeros(nx)
-        cores = np.zeros(nx)
-        s = np.zeros((4, nx))
-        c2 = np.zeros((10, nx))
-        c3 = np.zeros((4, nx))
-        for tt in range(tindex.shape[0]):
-            t = tindex[tt]
-            for i in range(nx):
-                a = np.float64(u[t, j, i])
-                b = np.float64(v[t, j, i])
-                c = z[t, j, i]
-                d = np.float64(h[t, j, i])
-                ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf) & ((abs(d) < inf) | (not has_h))
-                cnt[i] += 1.0 if ok else 0.0
-                cores[i] += 1.0 if ok and w[t, j, i] < limit[t] else 0.0
-                s[0, i] += a if ok else 0.0
-                s[1, i] += b if ok else 0.0
-                s[2, i] += c if ok else 0.0
-                s[3, i] += d if ok and has_h else 0.0
-        for i in range(nx):
-            scale = 1.0 / cnt[i] if cnt[i] > 0 else 0.0
-            for k in range(4):
-                s[k, i] *= scale
-        for tt in range(tindex.shape[0]):
-            t = tindex[tt]
-            if has_h:
-                for i in range(nx):
-                    a = np.float64(u[t, j, i])
-                    b = np.float64(v[t, j, i])
-                    c = z[t, j, i]
-                    d = np.float64(h[t, j, i])
-                    ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf) & (abs(d) < inf)
-                    du = a - s[0, i] if ok else 0.0
-                    dv = b - s[1, i] if ok else 0.0
-                    dz = c - s[2, i] if ok else 0.0
-                    dh = d - s[3, i] if ok else 0.0
-                    c2[6, i] += du * dh
-                    c2[7, i] += dv * dh
-                    c2[8, i] += dz * dh
-                    c2[9, i] += dh * dh
-                    uu = du * du
-                    vv = dv * dv
-                    c2[0, i] += uu
-                    c2[1, i] += du * dv
-                    c2[2, i] += vv
-                    c2[3, i] += du * dz
-                    c2[4, i] += dv * dz
-                    c2[5, i] += dz * dz
-                    c3[0, i] += uu * du
-                    c3[1, i] += du * vv
-                    c3[2, i] += uu * dv
-                    c3[3, i] += vv * dv
-            else:
-                for i in range(nx):
-                    a = np.float64(u[t, j, i])
-                    b = np.float64(v[t, j, i])
-                    c = z[t, j, i]
-                    ok = (abs(a) < inf) & (abs(b) < inf) & (abs(c) < inf)
-                    du = a - s[0, i] if ok else 0.0
-                    dv = b - s[1, i] if ok else 0.0
-                    dz = c - s[2, i] if ok else 0.0
-                    uu = du * du
-                    vv = dv * dv
-                    c2[0, i] += uu
-                    c2[1, i] += du * dv
-                    c2[2, i] += vv
-                    c2[3, i] += du * dz
-                    c2[4, i] += dv * dz
-                    c2[5, i] += dz * dz
-                    c3[0, i] += uu * du
-                    c3[1, i] += du * vv
-                    c3[2, i] += uu * dv
-                    c3[3, i] += vv * dv
-        nv = mean.shape[0]
-        for i in range(nx):
-            n[j, i] = cnt[i]
-            ow[j, i] = cores[i]
-            for k in range(nv):
-                mean[k, j, i] = s[k, i]
-            for k in range(m2.shape[0]):
-                m2[k, j, i] = c2[k, i]
-            for k in range(4):
-                m3[k, j, i] = c3[k, i]
-    return 0
+def dual_fields(u, v, gx, gy, ow_threshold, workspace=None):
+    """ζ (float64), W and the eddy-core limit of a block, as :func:`chunk_fields` computes them."""
+    zeta, w, limit, _ = chunk_fields(u, v, gx, gy, ow_threshold, workspace=workspace,
+                                     zeta_dtype=np.float64)
+    return zeta, w, limit
 
 
 def chunk_moments(
@@ -505,11 +576,11 @@ def chunk_moments(
     r"""Count, means and central co-moments per point over the time steps ``tindex``.
 
     A time step counts at a point only where u, v, ζ (and ssh) are all finite there; it
-    counts as an eddy core where also ``w[t] < limit[t]`` (see :func:`dual_fields`).
-    Two passes over time: means :math:`\bar x = n^{-1}\sum x`, then
-    :math:`M_{ab} = \sum (x_a-\bar x_a)(x_b-\bar x_b)` and
-    :math:`M_{abc} = \sum (x_a-\bar x_a)(x_b-\bar x_b)(x_c-\bar x_c)` (the two-pass
-    algorithm; Chan, Golub & LeVeque 1983).
+    counts as an eddy core where also ``w[t] < limit[t]``. Two passes over time: means
+    :math:`\bar x = n^{-1}\sum x`, then :math:`M_{ab} = \sum (x_a-\bar x_a)(x_b-\bar x_b)`
+    and :math:`M_{abc} = \sum (x_a-\bar x_a)(x_b-\bar x_b)(x_c-\bar x_c)` (the two-pass
+    algorithm; Chan, Golub & LeVeque 1983). :func:`chunk_fields` computes the same
+    quantities inside its fused kernel.
 
     Returns
     -------
@@ -518,17 +589,17 @@ def chunk_moments(
     Means are 0 where the count is 0.
     """
     has_h = ssh is not None
-    nv = 4 if has_h else 3
-    ny, nx = u.shape[1:]
-    n = np.empty((ny, nx))
-    mean = np.empty((nv, ny, nx))
-    m2 = np.empty((nv * (nv + 1) // 2, ny, nx))
-    m3 = np.empty((TRIPLES.shape[0], ny, nx))
-    ow = np.empty((ny, nx))
     h = ssh if has_h else u  # never read when has_h is False
-    _chunk_moments(u, v, zeta, h, has_h, w, limit, np.ascontiguousarray(tindex, dtype=np.int64),
-                   n, mean, m2, m3, ow)
-    return n, mean, m2, m3, ow
+    zeta = np.asarray(zeta, dtype=np.float64)
+    valid = np.isfinite(u) & np.isfinite(v) & np.isfinite(zeta)
+    if has_h:
+        valid &= np.isfinite(ssh)
+    w = np.where(valid, w, np.nan)
+    tindex = np.ascontiguousarray(tindex, dtype=np.int64)
+    arrays = _moment_arrays(1, 4 if has_h else 3, u.shape[1:])
+    _block_moments(u, v, zeta, h, has_h, w, np.asarray(limit, dtype=np.float64), tindex,
+                   np.array([0, tindex.size], dtype=np.int64), *arrays)
+    return tuple(a[0] for a in arrays)
 
 
 @_compile(parallel=True)

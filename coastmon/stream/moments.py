@@ -217,13 +217,28 @@ class MomentState:
                 tuple(getattr(self, name)[g] for name in _ARRAYS),
                 tuple(np.ascontiguousarray(getattr(other, name)[g]) for name in _ARRAYS),
             )
-        self.n_time += other.n_time
-        starts = [t for t in (self.time_start, other.time_start) if t]
-        ends = [t for t in (self.time_end, other.time_end) if t]
-        self.time_start = min(starts) if starts else ""
-        self.time_end = max(ends) if ends else ""
+        self._extend(other.n_time, other.time_start, other.time_end)
         if not self.grid_id:
             self.grid_id = other.grid_id
+
+    def merge_parts(self, parts: dict[int, tuple], n_time: int, time_start: str = "",
+                    time_end: str = "") -> None:
+        """Merge one chunk's moments, ``{group: (n, mean, m2, m3, ow)}`` as returned by
+        :func:`coastmon.stream.kernels.chunk_fields`, into this state in place.
+
+        The same pairwise formulas as :meth:`update`, without building a state for the chunk.
+        """
+        for g, part in parts.items():
+            kernels.merge_moments(tuple(getattr(self, name)[g] for name in _ARRAYS),
+                                  tuple(np.ascontiguousarray(a) for a in part))
+        self._extend(n_time, time_start, time_end)
+
+    def _extend(self, n_time: int, time_start: str, time_end: str) -> None:
+        self.n_time += n_time
+        starts = [t for t in (self.time_start, time_start) if t]
+        ends = [t for t in (self.time_end, time_end) if t]
+        self.time_start = min(starts) if starts else ""
+        self.time_end = max(ends) if ends else ""
 
     def pooled(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Totals over the groups: ``(n, mean, m2, m3, ow_core)`` on (y, x).

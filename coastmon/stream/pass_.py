@@ -6,13 +6,15 @@ moments, merges them into the running :class:`~coastmon.stream.moments.MomentSta
 samples u, v, ζ (and ssh) onto the along-shore frame. When the canonical dataset carries
 its own ``zeta`` (the native vorticity of a C-grid input), that ζ is used instead of the
 kernel's, in the moments, the samples and the Okubo–Weiss parameter (whose strain still
-comes from u and v). The sampled time series go to
-disk-backed arrays in a work folder, so memory stays bounded by a few chunks whatever the
+comes from u and v). The sampled time series are written to files in a work folder
+(positioned writes, no memory map), so memory stays bounded by a few chunks whatever the
 record length.
 
-Chunks run concurrently on a sliding window of at most ``2 x workers`` chunks, either on
-local threads (the compiled kernels release the GIL) or on a dask.distributed cluster
-when ``settings.scheduler`` is an address. Results are merged in chunk order, so a run is
+On local threads, one reader thread reads the chunks in order as one uninterrupted stream
+while one worker thread per core runs the compiled kernels (they release the GIL); at
+most ``workers + 1`` chunks are read and not yet merged. With ``settings.scheduler`` set
+to an address, the chunk tasks run on a dask.distributed cluster instead, on a sliding
+window of ``2 x`` its threads. Results are merged in chunk order, so a run is
 reproducible to the last bit whatever the scheduler.
 """
 
@@ -41,10 +43,11 @@ from coastmon.grid.operators import gradient
 from coastmon.stream import kernels
 from coastmon.stream.moments import MomentState, grid_signature, time_text
 
-CHUNK_BUDGET_BYTES = 256 * 2**20
+CHUNK_BUDGET_BYTES = 128 * 2**20
 """Memory budget of one time chunk (inputs and the kernel's per-chunk arrays)."""
-SCRATCH_BYTES_PER_POINT = 16
-"""Kernel scratch per grid point and time step: ζ and Okubo–Weiss W (float64)."""
+SCRATCH_BYTES_PER_POINT = 12
+"""Kernel scratch per grid point and time step: ζ (float32, for sampling) and Okubo–Weiss
+W (float64)."""
 
 SERIES_VARIABLES = ("u", "v", "zeta", "ssh")
 INPUT_VARIABLES = ("u", "v", "ssh", "zeta")
@@ -117,20 +120,14 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
         t0 = time.perf_counter()
         ub, vb = u[s0:s1], v[s0:s1]
         hb = None if h is None else h[s0:s1]
-        if z is None:
-            zeta, w, limit = kernels.dual_fields(ub, vb, consts.gx, consts.gy,
-                                                 consts.ow_threshold, workspace)
-        else:
-            zeta, w, limit = kernels.given_zeta_fields(ub, vb, z[s0:s1], consts.gx, consts.gy,
-                                                       consts.ow_threshold, workspace)
-        sub_groups = groups[s0:s1]
-        for g in np.unique(sub_groups):
-            part = kernels.chunk_moments(ub, vb, zeta, hb, w, limit,
-                                         np.flatnonzero(sub_groups == g))
-            if int(g) in parts:
-                kernels.merge_moments(parts[int(g)], part)
+        zeta, _, _, sub_parts = kernels.chunk_fields(
+            ub, vb, consts.gx, consts.gy, consts.ow_threshold, groups=groups[s0:s1], ssh=hb,
+            zeta=None if z is None else z[s0:s1], workspace=workspace)
+        for g, part in sub_parts.items():
+            if g in parts:
+                kernels.merge_moments(parts[g], part)
             else:
-                parts[int(g)] = part
+                parts[g] = part
         t1 = time.perf_counter()
         for name, arr in (("u", ub), ("v", vb), ("zeta", zeta), ("ssh", hb)):
             if arr is not None:
@@ -164,12 +161,8 @@ def _input_array(ds: xr.Dataset, name: str):
     return data
 
 
-def _load_and_process(arrays, t0: int, t1: int, groups, consts: _Constants,
-                      workspaces: queue.SimpleQueue) -> dict:
-    """Local-thread task: read one chunk (dask arrays computed synchronously here) and process it.
-
-    ``workspaces`` holds one kernel workspace per worker thread, reused between chunks.
-    """
+def _read_chunk(arrays, t0: int, t1: int) -> tuple[list, float]:
+    """Read one time chunk of every input (dask arrays computed synchronously here)."""
     start = time.perf_counter()
     blocks = [None if a is None else a[t0:t1] for a in arrays]
     lazy = [b for b in blocks if isinstance(b, da.Array)]
@@ -178,7 +171,15 @@ def _load_and_process(arrays, t0: int, t1: int, groups, consts: _Constants,
         blocks = [next(computed) if isinstance(b, da.Array) else b for b in blocks]
     blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray) else b)
               for b in blocks]
-    read_s = time.perf_counter() - start
+    return blocks, time.perf_counter() - start
+
+
+def _process_read(read, groups, consts: _Constants, workspaces: queue.SimpleQueue) -> dict:
+    """Local-thread task: wait for a chunk's read (done by the reader thread), then process it.
+
+    ``workspaces`` holds one kernel workspace per worker thread, reused between chunks.
+    """
+    blocks, read_s = read.result()
     workspace = workspaces.get()
     try:
         out = _process_block(*blocks, groups, consts, workspace)
@@ -342,10 +343,8 @@ def run_pass(
     files = {}
     for name in series_names:
         for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
-            files[f"{kind}_{name}"] = np.lib.format.open_memmap(
-                workdir / f"{kind}_{name}.npy", mode="w+", dtype=np.float32,
-                shape=(nt, *shape),
-            )
+            files[f"{kind}_{name}"] = _SeriesFile(workdir / f"{kind}_{name}.npy",
+                                                  (nt, *shape))
 
     state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
                               grid_signature(metrics.lon, metrics.lat))
@@ -367,20 +366,26 @@ def run_pass(
             ow_threshold=float(settings.ow_threshold), kernel_threads=kernel_threads,
             step_limit=max(1, CHUNK_BUDGET_BYTES // (SCRATCH_BYTES_PER_POINT * grid_size)),
         )
-        window = 2 * nthreads
         bar = _progress_bar(len(bounds), settings.progress)
+        reader = None
         if client is not None:
+            window = 2 * nthreads
             submit, collect, pool = _distributed_submitter(client, ds, names, bounds, consts,
                                                            groups)
         else:
+            # One reader thread reads the chunks in order, so the input is read as one
+            # uninterrupted stream (decompression is serial anyway), while the workers
+            # compute; at most `window` chunks are read and not yet merged.
+            window = nthreads + 1
+            reader = ThreadPoolExecutor(max_workers=1, thread_name_prefix="coastmon-read")
             pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="coastmon-pass")
             workspaces = queue.SimpleQueue()
             for _ in range(workers):
                 workspaces.put(kernels.Workspace())
 
             def submit(t0, t1):
-                return pool.submit(_load_and_process, arrays, t0, t1, groups[t0:t1], consts,
-                                   workspaces)
+                read = reader.submit(_read_chunk, arrays, t0, t1)
+                return pool.submit(_process_read, read, groups[t0:t1], consts, workspaces)
 
             def collect(future):
                 return future.result()
@@ -406,16 +411,18 @@ def run_pass(
                     progress(done, len(bounds))
         finally:
             bar.close()
+            if reader is not None:
+                reader.shutdown(wait=True, cancel_futures=True)
             if pool is not None:
                 pool.shutdown(wait=True, cancel_futures=True)
     finally:
         if client is not None:
             client.close()
+        for writer in files.values():
+            writer.close()
 
     t = time.perf_counter()
-    for arr in files.values():
-        arr.flush()
-    series = _series_dataset(files, frame, ds, series_names)
+    series = _series_dataset({k: w.open() for k, w in files.items()}, frame, ds, series_names)
     timings["write_s"] += time.perf_counter() - t
     t = time.perf_counter()
     stats = stats_from_state(state, metrics)
@@ -445,26 +452,49 @@ def _distributed_submitter(client, ds, names, bounds, consts, groups):
     return submit, collect, None
 
 
+class _SeriesFile:
+    """A float32 ``.npy`` file written a block of time steps at a time (positioned writes,
+    no memory map), so that the series already written do not stay in the process's memory."""
+
+    def __init__(self, path: Path, shape: tuple[int, ...]) -> None:
+        self.path = path
+        header = np.lib.format.open_memmap(path, mode="w+", dtype=np.float32, shape=shape)
+        self.offset = header.offset
+        del header
+        self.row_bytes = 4 * int(np.prod(shape[1:]))
+        self.fd = os.open(path, os.O_WRONLY)
+
+    def write(self, t0: int, values: np.ndarray) -> None:
+        data = np.ascontiguousarray(values, dtype=np.float32).tobytes()
+        done = 0
+        while done < len(data):
+            done += os.pwrite(self.fd, data[done:], self.offset + t0 * self.row_bytes + done)
+
+    def close(self) -> None:
+        if self.fd >= 0:
+            os.close(self.fd)
+            self.fd = -1
+
+    def open(self) -> np.ndarray:
+        """The written series, read-only and disk-backed."""
+        return np.load(self.path, mmap_mode="r")
+
+
 def _consume(out, t0, t1, state, files, frame, times, timings) -> None:
     """Merge one chunk's moments into the running state and write its samples."""
     for key in ("read_s", "kernel_s", "sample_s"):
         timings[key] += out.get(key, 0.0)
     t = time.perf_counter()
-    chunk = MomentState.empty(state.shape, "ssh" in state.variables, state.seasonal,
-                              state.ow_threshold, state.grid_id)
-    for g, part in out["parts"].items():
-        chunk.n[g], chunk.mean[g], chunk.m2[g], chunk.m3[g], chunk.ow_core[g] = part
-    chunk.n_time = t1 - t0
+    start = end = ""
     if times is not None:
-        chunk.time_start = time_text(times[t0])
-        chunk.time_end = time_text(times[t1 - 1])
-    state.update(chunk)
+        start, end = time_text(times[t0]), time_text(times[t1 - 1])
+    state.merge_parts(out["parts"], t1 - t0, start, end)
     t2 = time.perf_counter()
     timings["merge_s"] += t2 - t
     for name, samples in out["samples"].items():
         section, rays = frame.split(samples)
-        files[f"section_{name}"][t0:t1] = section
-        files[f"ray_{name}"][t0:t1] = rays
+        files[f"section_{name}"].write(t0, section)
+        files[f"ray_{name}"].write(t0, rays)
     timings["write_s"] += time.perf_counter() - t2
 
 
