@@ -185,6 +185,26 @@ def test_bootstrap_intervals_cover_the_planted_ratio(tmp_path):
     assert covered >= 0.7 * n, f"covered {covered} of {n}"
 
 
+def test_wavelets_in_station_groups_change_no_station(tmp_path, monkeypatch):
+    from coastmon.sources import detect
+
+    nc, _ = make_scenario(_small(7), tmp_path / "data")
+    prep = prepare([nc], QUIET)
+    res = run_pass(prep.ds, prep.metrics, prep.frame, QUIET.stream, tmp_path / "work")
+    args = (res.series.assign_coords(time_days=("time", np.arange(res.series.sizes["time"],
+                                                                  dtype=float))),
+            prep.frame, QUIET, prep.ld_km)
+    whole = detect.alongshore_profiles(*args)
+    monkeypatch.setattr(detect, "WAVELET_BUDGET_BYTES", 1)  # one station per group
+    grouped = detect.alongshore_profiles(*args)
+    # check: common practice, no source — each station's wavelet transform and tests are
+    # its own, so transforming the stations in groups must give the same numbers
+    for name in ("persistence", "shedding_period_days", "localization"):
+        np.testing.assert_allclose(grouped[name].values, whole[name].values, rtol=1e-12,
+                                   equal_nan=True, err_msg=name)
+    assert np.isfinite(whole["persistence"].values).sum() > 10
+
+
 def test_demo_command_refuses_an_output_that_is_a_file(tmp_path):
     f = tmp_path / "taken"
     f.write_text("x")

@@ -135,9 +135,10 @@ def geostrophic_velocity(
     f vanishes and the balance fails, the result is NaN.
     """
     ex, ey = gradient(ssh, metrics)
+    near_eq = np.abs(metrics.lat) < equator_band_deg
+    # f = 0 on the equator: g/f is infinite there (masked by the band anyway).
     with np.errstate(divide="ignore", invalid="ignore"):
         gf = g / metrics.f
-    near_eq = np.abs(metrics.lat) < equator_band_deg
-    ug = np.where(near_eq, np.nan, -gf * ey)
-    vg = np.where(near_eq, np.nan, gf * ex)
+        ug = np.where(near_eq, np.nan, -gf * ey)
+        vg = np.where(near_eq, np.nan, gf * ex)
     return ug, vg

@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import dask.array as dsa
+import numba
 import numpy as np
 import xarray as xr
 from xarray.backends import NetCDF4BackendEntrypoint, ZarrBackendEntrypoint
@@ -651,8 +652,28 @@ def _mask_from_variable(ds: xr.Dataset, name: str, plan: _Plan) -> np.ndarray:
     return (np.isfinite(values) & sea).astype(np.int8)
 
 
+def _jit(func):
+    """``numba.njit`` with on-disk caching where the package folder is writable."""
+    try:
+        return numba.njit(cache=True, nogil=True)(func)
+    except RuntimeError:
+        return numba.njit(cache=False, nogil=True)(func)
+
+
+@_jit
+def _any_beyond(values, limit):  # pragma: no cover - compiled
+    """True if some value is infinite or beyond ``limit`` in magnitude (NaN never is)."""
+    for k in range(values.size):
+        if abs(values[k]) > limit:
+            return True
+    return False
+
+
 def _check_values(values: np.ndarray, limit: float, what: str, where: str,
                   when: str) -> None:
+    values = np.asarray(values)
+    if values.dtype.kind == "f" and not _any_beyond(values.reshape(-1), float(limit)):
+        return  # one compiled sweep, no temporaries: this runs on every chunk of the pass
     bad = np.isinf(values) | (np.abs(np.nan_to_num(values)) > limit)
     if bad.any():
         j, i = np.unravel_index(int(np.argmax(bad.reshape(-1, *bad.shape[-2:]).any(axis=0))),
@@ -665,9 +686,29 @@ def _check_values(values: np.ndarray, limit: float, what: str, where: str,
                  "or mask the bad points")
 
 
-def _guard_block(block: np.ndarray, limit: float, what: str, files: list[str],
-                 lengths: list[int], block_info=None) -> np.ndarray:
-    """Dask kernel: raise InputError on corrupt values met during the streaming pass."""
+@_jit
+def _mask_beyond(block, sea, limit, out):  # pragma: no cover - compiled
+    """``out = block`` on the sea, NaN on land; True if a sea value is infinite or beyond
+    ``limit`` in magnitude. One sweep, no temporaries."""
+    bad = False
+    for t in range(block.shape[0]):
+        for j in range(block.shape[1]):
+            for i in range(block.shape[2]):
+                x = block[t, j, i]
+                keep = sea[j, i]
+                out[t, j, i] = x if keep else np.nan
+                bad |= keep and abs(x) > limit
+    return bad
+
+
+def _guard_block(block: np.ndarray, sea: np.ndarray, limit: float, what: str,
+                 files: list[str], lengths: list[int], block_info=None) -> np.ndarray:
+    """Dask kernel: NaN on land (``sea`` False), and InputError on corrupt sea values met
+    during the streaming pass."""
+    block = np.asarray(block)
+    out = np.empty(block.shape, dtype=block.dtype)
+    if not _mask_beyond(block, sea, float(limit), out):
+        return out
     if block_info is not None and block_info.get(0):
         start = block_info[0]["array-location"][0][0]
         edges = np.cumsum(lengths)
@@ -675,14 +716,16 @@ def _guard_block(block: np.ndarray, limit: float, what: str, files: list[str],
         where = f"{files[min(k, len(files) - 1)]}, time steps from {start}"
     else:
         where = ", ".join(files)
-    _check_values(block, limit, what, where, "in this time chunk")
-    return block
+    _check_values(out, limit, what, where, "in this time chunk")
+    return out
 
 
-def _guarded(da: xr.DataArray, limit: float, what: str, files: list[str],
+def _guarded(da: xr.DataArray, sea: np.ndarray, limit: float, what: str, files: list[str],
              lengths: list[int]) -> xr.DataArray:
-    data = da.data.map_blocks(_guard_block, limit=limit, what=what, files=files,
-                              lengths=lengths, dtype=da.dtype)
+    """Land set to NaN and corrupt values refused, chunk by chunk as the pass reads them."""
+    data = da.data.map_blocks(_guard_block, sea=np.ascontiguousarray(sea, dtype=np.bool_),
+                              limit=limit, what=what, files=files, lengths=lengths,
+                              dtype=da.dtype)
     return da.copy(data=data)
 
 
@@ -798,8 +841,9 @@ def open_dataset(paths: list[str | Path], settings: IngestSettings,
     out = builder.build()
     out.attrs["source_files"] = json.dumps(file_list)
     if "u" in out:
-        out["u"] = _guarded(out["u"], MAX_SPEED_M_S, "u (m s-1)", file_list, lengths)
-        out["v"] = _guarded(out["v"], MAX_SPEED_M_S, "v (m s-1)", file_list, lengths)
+        sea = out["mask"].values == 1
+        out["u"] = _guarded(out["u"], sea, MAX_SPEED_M_S, "u (m s-1)", file_list, lengths)
+        out["v"] = _guarded(out["v"], sea, MAX_SPEED_M_S, "v (m s-1)", file_list, lengths)
     return out
 
 
@@ -1105,8 +1149,9 @@ class _Builder:
                 for arr, what in ((first[0], "u (m s-1)"), (first[1], "v (m s-1)")):
                     _check_values(np.where(mask == 1, arr, np.nan), MAX_SPEED_M_S, what,
                                   self.where, "at the first time step")
-            data["u"] = self._finish(u.where(sea), "eastward_sea_water_velocity", "m s-1")
-            data["v"] = self._finish(v.where(sea), "northward_sea_water_velocity", "m s-1")
+            # Land is set to NaN by the guard that open_dataset puts on u and v.
+            data["u"] = self._finish(u, "eastward_sea_water_velocity", "m s-1")
+            data["v"] = self._finish(v, "northward_sea_water_velocity", "m s-1")
             zeta = self._native_zeta(self.raw, self._file_order_np(mask, y_order, x_order))
             if zeta is not None:
                 data["zeta"] = self._finish(reorder(zeta).where(sea), "ocean_relative_vorticity",

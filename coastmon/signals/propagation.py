@@ -399,8 +399,7 @@ def radon_speed(field: np.ndarray, dt: float, dd: float,
     low_deg, high_deg = {"dominant": (-89.5, 89.5), "positive": (0.25, 89.5),
                          "negative": (-89.5, -0.25)}[direction]
     coarse = np.deg2rad(np.arange(low_deg, high_deg + 1e-9, 1.0))
-    coarse_energy = np.concatenate([energies(part) for part in np.array_split(
-        coarse, max(1, coarse.size // 30))])
+    coarse_energy = energies(coarse)
     best = coarse[int(np.argmax(coarse_energy))]
     fine = np.clip(best + np.deg2rad(np.arange(-1.0, 1.01, 0.1)), coarse[0], coarse[-1])
     fine_energy = energies(fine)

@@ -69,7 +69,9 @@ class WaveletTransform:
     @property
     def power(self) -> np.ndarray:
         """Wavelet power |W_n(s)|^2, shape (..., n_scales, n)."""
-        return self.coefs.real ** 2 + self.coefs.imag ** 2
+        out = np.square(self.coefs.real)
+        out += np.square(self.coefs.imag)
+        return out
 
     @property
     def n_times(self) -> int:
@@ -203,13 +205,13 @@ def cwt_morlet(
     anomaly = data - data.mean(axis=-1, keepdims=True)
     variance = np.mean(anomaly ** 2, axis=-1)
     n_fft = int(2 ** np.ceil(np.log2(n))) if pad else n
-    x_hat = scipy.fft.fft(anomaly, n=n_fft, axis=-1)
+    x_hat = scipy.fft.fft(anomaly, n=n_fft, axis=-1, workers=-1)
     omega = 2.0 * np.pi * scipy.fft.fftfreq(n_fft, dt)
 
     coefs = np.empty(data.shape[:-1] + (scales.size, n), dtype=complex)
     for j, scale in enumerate(scales):
         psi_hat = np.sqrt(2.0 * np.pi * scale / dt) * _morlet_hat(scale * omega, omega0)
-        coefs[..., j, :] = scipy.fft.ifft(x_hat * psi_hat, axis=-1)[..., :n]
+        coefs[..., j, :] = scipy.fft.ifft(x_hat * psi_hat, axis=-1, workers=-1)[..., :n]
 
     edge = np.minimum(np.arange(n) + 0.5, n - 0.5 - np.arange(n))
     coi = factor * edge * dt / np.sqrt(2.0)

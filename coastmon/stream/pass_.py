@@ -23,6 +23,7 @@ from __future__ import annotations
 import os
 import queue
 import sys
+import threading
 import time
 from collections import deque
 from collections.abc import Callable
@@ -172,6 +173,19 @@ def _read_chunk(arrays, t0: int, t1: int) -> tuple[list, float]:
     blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray) else b)
               for b in blocks]
     return blocks, time.perf_counter() - start
+
+
+WORKER_NICENESS = 5
+"""Scheduling priority given up by the compute threads (Linux niceness), so that the
+reader thread, which bounds the pass on compressed input, gets a core when it needs one."""
+
+
+def _yield_to_reader() -> None:
+    """Pool initializer: lower this worker thread's priority (Linux; no-op elsewhere)."""
+    try:
+        os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), WORKER_NICENESS)
+    except (AttributeError, OSError):  # not Linux, or not permitted
+        pass
 
 
 def _process_read(read, groups, consts: _Constants, workspaces: queue.SimpleQueue) -> dict:
@@ -378,7 +392,8 @@ def run_pass(
             # compute; at most `window` chunks are read and not yet merged.
             window = nthreads + 1
             reader = ThreadPoolExecutor(max_workers=1, thread_name_prefix="coastmon-read")
-            pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="coastmon-pass")
+            pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="coastmon-pass",
+                                      initializer=_yield_to_reader)
             workspaces = queue.SimpleQueue()
             for _ in range(workers):
                 workspaces.put(kernels.Workspace())
