@@ -315,3 +315,34 @@ def test_memory_does_not_grow_with_record_length(tmp_path):
     # check: common practice, no source (a streaming pass holds a few chunks, not the record;
     # a pass that kept the record would grow by at least the records' size difference, 58 MB)
     assert growth < 0.5 * (sizes[4] - sizes[1]), (peaks, sizes)
+
+
+LAYER_SCRIPT = textwrap.dedent(
+    """
+    import sys
+    import numpy as np
+    sys.path.insert(0, {tests!r})
+    from test_stream_pass import SETTINGS, make_dataset, make_frame
+    from coastmon.stream import run_pass
+
+    ds, metrics, sea, rng = make_dataset()
+    result = run_pass(ds, metrics, make_frame(metrics.shape, sea, rng), SETTINGS, {work!r})
+    np.save({out!r}, result.stats["eke"].values)
+    """
+)
+
+
+def test_same_statistics_without_a_threadsafe_threading_layer(tmp_path):
+    import os
+
+    ds, metrics, sea, rng = make_dataset()
+    expected = run_pass(ds, metrics, make_frame(metrics.shape, sea, rng), SETTINGS,
+                        tmp_path / "here").stats["eke"].values
+    script = LAYER_SCRIPT.format(tests=str(Path(__file__).parent), work=str(tmp_path / "wq"),
+                                 out=str(tmp_path / "eke.npy"))
+    env = {**os.environ, "NUMBA_THREADING_LAYER": "workqueue"}
+    subprocess.run([sys.executable, "-c", script], check=True, env=env, capture_output=True)
+    # check: common practice, no source — numba's workqueue layer refuses concurrent kernel
+    # launches from several threads; the pass must then run one chunk at a time, with the
+    # same merge order and so the same numbers
+    np.testing.assert_array_equal(np.load(tmp_path / "eke.npy"), expected)

@@ -69,6 +69,21 @@ def test_transform_matches_pycwt_for_stacked_series() -> None:
                                    rtol=1e-6, atol=1e-9 * wt.power[row].max())  # check: pycwt reference library
 
 
+def test_band_limited_transform_matches_pycwt_on_its_scales() -> None:
+    rng = np.random.default_rng(5)
+    x = rng.standard_normal(600).cumsum()
+    full = cwt_morlet(x, dt=1.0, dj=0.125)
+    band = cwt_morlet(x, dt=1.0, dj=0.125, period_band=(20.0, 90.0))
+    keep = (full.periods >= 20.0) & (full.periods <= 90.0)
+    assert band.scales.size == keep.sum() > 10
+    w_ref, scales_ref, _, _, _, _ = pycwt.cwt(
+        x - x.mean(), 1.0, 0.125, full.scales[0], full.scales.size - 1, pycwt.Morlet(6.0))
+    np.testing.assert_allclose(band.scales, scales_ref[keep], rtol=1e-12)  # check: pycwt reference library
+    np.testing.assert_allclose(band.power, np.abs(w_ref[keep]) ** 2, rtol=1e-6,
+                               atol=1e-9 * band.power.max())  # check: pycwt reference library
+    np.testing.assert_array_equal(band.coefs, full.coefs[keep])
+
+
 def test_significance_levels_match_pycwt() -> None:
     x = _ar1(0.72, (1024,), seed=8)
     wt = cwt_morlet(x, dt=1.0)

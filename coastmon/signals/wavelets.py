@@ -112,6 +112,7 @@ def cwt_morlet(
     J: int | None = None,
     omega0: float = 6.0,
     pad: bool = True,
+    period_band: tuple[float, float] | None = None,
 ) -> WaveletTransform:
     r"""Continuous Morlet wavelet transform of many series at once, by FFT.
 
@@ -149,6 +150,10 @@ def cwt_morlet(
     pad : bool
         Zero-pad the series (after removing its mean) to the next power of two at or
         above ``n`` before the FFT, limiting wrap-around at the ends (T&C §3f).
+    period_band : (float, float), optional
+        Keep only the scales whose Fourier periods lie in this band (inclusive), on the
+        same scale grid: each scale's coefficients are computed independently, so they
+        equal those of the full transform, at a fraction of the time and memory.
 
     Returns
     -------
@@ -201,6 +206,10 @@ def cwt_morlet(
             todo="Use a longer record or a smaller smallest scale",
         )
     scales = s0 * 2.0 ** (np.arange(J + 1) * dj)
+    if period_band is not None:
+        low, high = sorted(float(p) for p in period_band)
+        periods = factor * scales
+        scales = scales[(periods >= low) & (periods <= high)]
 
     anomaly = data - data.mean(axis=-1, keepdims=True)
     variance = np.mean(anomaly ** 2, axis=-1)
@@ -518,7 +527,9 @@ def scale_average(wt: WaveletTransform, period_band: tuple[float, float]) -> np.
     """
     selected = _band(wt, period_band)
     c_delta = _c_delta(wt.omega0, wt.dj)
-    power = wt.power[..., selected, :]
+    coefs = wt.coefs[..., selected, :]
+    power = np.square(coefs.real)
+    power += np.square(coefs.imag)
     return wt.dj * wt.dt / c_delta * np.einsum("...jn,j->...n", power,
                                                  1.0 / wt.scales[selected])
 

@@ -122,7 +122,7 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
         group = max(1, WAVELET_BUDGET_BYTES // per_station)
         for g0 in range(0, x.shape[0], group):
             g1 = min(x.shape[0], g0 + group)
-            wt = cwt_morlet(x[g0:g1], dt, dj=s.dj, omega0=s.omega0)
+            wt = cwt_morlet(x[g0:g1], dt, dj=s.dj, omega0=s.omega0, period_band=band)
             sig_own = scale_average_significance(wt, np.full(g1 - g0, alpha_bg), band,
                                                  level=s.significance)
             with np.errstate(invalid="ignore", divide="ignore"):

@@ -695,6 +695,20 @@ def _sample(cols, rows, weights, valid, x, out):  # pragma: no cover - compiled
     return 0
 
 
+def concurrent_calls_safe() -> bool:
+    """Whether several threads may run the parallel kernels at once.
+
+    numba's OpenMP and TBB threading layers allow it; its fallback ``workqueue`` layer
+    (used when neither library is installed) does not, and the pass then processes one
+    chunk at a time.
+    """
+    one = np.ones((1, 1))
+    _merge(one.copy(), np.zeros((3, 1, 1)), np.zeros((6, 1, 1)), np.zeros((4, 1, 1)),
+           one.copy(), one.copy(), np.zeros((3, 1, 1)), np.zeros((6, 1, 1)),
+           np.zeros((4, 1, 1)), one.copy())
+    return numba.threading_layer() != "workqueue"
+
+
 class Sampler:
     r"""A sparse sampling matrix W applied to each time step, skipping missing values.
 

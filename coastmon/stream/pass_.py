@@ -27,7 +27,7 @@ import threading
 import time
 from collections import deque
 from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -173,6 +173,21 @@ def _read_chunk(arrays, t0: int, t1: int) -> tuple[list, float]:
     blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray) else b)
               for b in blocks]
     return blocks, time.perf_counter() - start
+
+
+class _Inline:
+    """An executor that runs each task at once in the calling thread."""
+
+    def submit(self, fn, *args) -> Future:
+        future: Future = Future()
+        try:
+            future.set_result(fn(*args))
+        except BaseException as exc:  # delivered by future.result(), as a pool would
+            future.set_exception(exc)
+        return future
+
+    def shutdown(self, wait: bool = True, cancel_futures: bool = False) -> None:
+        pass
 
 
 WORKER_NICENESS = 5
@@ -373,6 +388,9 @@ def run_pass(
             kernel_threads = max(1, ncpu // nthreads)
         else:
             nthreads = workers = max(1, min(ncpu, len(bounds)))
+            inline = not kernels.concurrent_calls_safe()
+            if inline:
+                nthreads = workers = 1
             kernel_threads = max(1, ncpu // workers)
         consts = _Constants(
             gx=np.ascontiguousarray(metrics.gx), gy=np.ascontiguousarray(metrics.gy),
@@ -391,9 +409,14 @@ def run_pass(
             # uninterrupted stream (decompression is serial anyway), while the workers
             # compute; at most `window` chunks are read and not yet merged.
             window = nthreads + 1
-            reader = ThreadPoolExecutor(max_workers=1, thread_name_prefix="coastmon-read")
-            pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="coastmon-pass",
-                                      initializer=_yield_to_reader)
+            if inline:
+                # Kernels may not run in two threads at once: everything in this thread
+                # (each kernel still uses every core).
+                reader, pool = _Inline(), _Inline()
+            else:
+                reader = ThreadPoolExecutor(max_workers=1, thread_name_prefix="coastmon-read")
+                pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="coastmon-pass",
+                                          initializer=_yield_to_reader)
             workspaces = queue.SimpleQueue()
             for _ in range(workers):
                 workspaces.put(kernels.Workspace())
