@@ -46,7 +46,8 @@ def repeated_record(path: Path, n: int) -> list[Path]:
     parts = []
     with netCDF4.Dataset(path) as nc:
         nt = nc.dimensions["time"].size
-        step = float(np.median(np.diff(nc["time"][:]))) if nt > 1 else 1.0
+        times = np.asarray(nc["time"][:], dtype=float)
+        step = float(np.median(np.diff(times))) if nt > 1 else 1.0
     for k in range(n):
         part = folder / f"part{k}.nc"
         if not part.exists():

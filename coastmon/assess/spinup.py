@@ -13,6 +13,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from coastmon.io.pages import release
+
 
 @dataclass
 class SpinupCurve:
@@ -69,6 +71,7 @@ def spinup_curve(fields: list[np.ndarray], time_days: np.ndarray, threshold: flo
             mark_i += 1
         total += csum[-1]
         count += ccnt[-1]
+        release(*fields)
     with np.errstate(invalid="ignore", divide="ignore"):
         final = total / count
     corr = np.array([pattern_correlation(s, final) for s in snapshots])

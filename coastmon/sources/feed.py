@@ -41,6 +41,7 @@ import xarray as xr
 
 from coastmon.config import Settings
 from coastmon.grid.metrics import haversine_m
+from coastmon.io.pages import release
 from coastmon.signals import centroid_speed, propagation_speed, wavenumber_frequency
 
 G = 9.80665
@@ -103,6 +104,8 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
     direction = frame.stations["ray_dir"].values
     stations, fractions, speeds, sds, eke_ts, pws, glon, glat = [], [], [], [], [], [], [], []
     for s in range(ru.shape[1]):
+        if s % 32 == 31:
+            release(ru, rv, rz, rh)  # keep the series' pages from piling up in memory
         if direction[s] == 0 or not np.isfinite(ray_lon[s, win]).all():
             continue
         u = np.asarray(ru[:, s, win], dtype=np.float64)

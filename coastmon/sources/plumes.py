@@ -26,6 +26,7 @@ import xarray as xr
 from scipy.ndimage import gaussian_filter1d
 
 from coastmon.grid.metrics import haversine_m
+from coastmon.io.pages import release
 
 
 def time_nanmean(values: np.ndarray, block: int = 256) -> np.ndarray:
@@ -38,6 +39,7 @@ def time_nanmean(values: np.ndarray, block: int = 256) -> np.ndarray:
         ok = np.isfinite(part)
         total += np.where(ok, part, 0.0).sum(axis=0)
         count += ok.sum(axis=0)
+        release(values)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(count > 0, total / count, np.nan)
 
