@@ -81,13 +81,8 @@ def _analyze(files: list[Path], out: Path) -> dict:
 
 def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--dir", type=Path, default=Path("/tmp/coastmon-bench"))
-    parser.add_argument("--ny", type=int, default=500)
-    parser.add_argument("--nx", type=int, default=500)
-    parser.add_argument("--nt", type=int, default=1100)
+    bench_stream.record_arguments(parser, ["zlib"])
     parser.add_argument("--repeat", type=int, default=1, help="copies of the record in time")
-    parser.add_argument("--variants", nargs="+", default=["zlib"], choices=["plain", "zlib"])
-    parser.add_argument("--cold", action="store_true", help="drop the page cache before each run")
     parser.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.child:

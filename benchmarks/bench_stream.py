@@ -210,17 +210,21 @@ def _drop_caches() -> bool:
         return False
 
 
-def main(argv: list[str] | None = None) -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def record_arguments(parser: argparse.ArgumentParser, variants: list[str]) -> None:
+    """The options naming the benchmark record (shared with ``bench_analyze.py``)."""
     parser.add_argument("--dir", type=Path, default=Path("/tmp/coastmon-bench"))
     parser.add_argument("--ny", type=int, default=500)
     parser.add_argument("--nx", type=int, default=500)
     parser.add_argument("--nt", type=int, default=1100)
-    parser.add_argument("--variants", nargs="+", default=["plain", "zlib"],
-                        choices=["plain", "zlib"])
+    parser.add_argument("--variants", nargs="+", default=variants, choices=["plain", "zlib"])
+    parser.add_argument("--cold", action="store_true", help="drop the page cache before each run")
+
+
+def main(argv: list[str] | None = None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    record_arguments(parser, ["plain", "zlib"])
     parser.add_argument("--runs", nargs="+", default=["read", "pass", "recipe"],
                         choices=["read", "pass", "recipe"])
-    parser.add_argument("--cold", action="store_true", help="drop the page cache before each run")
     parser.add_argument("--child", nargs=2, metavar=("KIND", "FILE"), help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.child:
