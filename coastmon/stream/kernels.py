@@ -491,7 +491,6 @@ def chunk_fields(
     ssh: np.ndarray | None = None,
     zeta: np.ndarray | None = None,
     workspace: Workspace | None = None,
-    zeta_dtype=np.float64,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[int, tuple]]:
     r"""All the per-chunk work on a ``(t, y, x)`` block, in one compiled kernel.
 
@@ -528,12 +527,11 @@ def chunk_fields(
     ssh : (t, y, x) sea surface height or None.
     zeta : (t, y, x) given vorticity, or None to compute it from u and v.
     workspace : scratch arrays to reuse (a new one when None).
-    zeta_dtype : dtype of the returned ζ when computed (moments always use float64).
 
     Returns
     -------
-    zeta : (t, y, x) vorticity (s-1): the given array, or the computed one in
-        ``zeta_dtype``; NaN where no valid dual cell touches the point.
+    zeta : (t, y, x) vorticity (s-1): the given array, or the computed one (float64);
+        NaN where no valid dual cell touches the point.
     w : (t, y, x) float64 Okubo–Weiss parameter (s-2), NaN where a step does not count
         (also where ssh is missing).
     limit : (t,) the eddy-core limit :math:`-\theta\sigma_W` of each snapshot
@@ -547,7 +545,7 @@ def chunk_fields(
     order, starts, labels = _group_order(groups)
     nv = 4 if has_h else 3
     arrays = _moment_arrays(labels.size, nv, shape[1:])
-    zout = workspace.get("zeta", (1, 1, 1) if has_z else shape, zeta_dtype)
+    zout = workspace.get("zeta", (1, 1, 1) if has_z else shape, np.float64)
     w = workspace.get("w", shape, np.float64)
     limit = workspace.get("limit", shape[:1], np.float64)
     n_bands = max(1, min(shape[1], 4 * numba.get_num_threads()))
@@ -559,8 +557,7 @@ def chunk_fields(
 
 def dual_fields(u, v, gx, gy, ow_threshold, workspace=None):
     """ζ (float64), W and the eddy-core limit of a block, as :func:`chunk_fields` computes them."""
-    zeta, w, limit, _ = chunk_fields(u, v, gx, gy, ow_threshold, workspace=workspace,
-                                     zeta_dtype=np.float64)
+    zeta, w, limit, _ = chunk_fields(u, v, gx, gy, ow_threshold, workspace=workspace)
     return zeta, w, limit
 
 

@@ -46,9 +46,9 @@ from coastmon.stream.moments import MomentState, grid_signature, time_text
 
 CHUNK_BUDGET_BYTES = 128 * 2**20
 """Memory budget of one time chunk (inputs and the kernel's per-chunk arrays)."""
-SCRATCH_BYTES_PER_POINT = 12
-"""Kernel scratch per grid point and time step: ζ (float32, for sampling) and Okubo–Weiss
-W (float64)."""
+SCRATCH_BYTES_PER_POINT = 16
+"""Kernel scratch per grid point and time step: ζ (for sampling) and Okubo–Weiss W (for
+the eddy-core count), both float64."""
 
 SERIES_VARIABLES = ("u", "v", "zeta", "ssh")
 INPUT_VARIABLES = ("u", "v", "ssh", "zeta")
