@@ -100,15 +100,10 @@ def main(argv: list[str] | None = None) -> None:
         files = repeated_record(path, args.repeat)
         size = sum(f.stat().st_size for f in files) / 1e9
         for kind in ("read", "analyze"):
-            cold = bench_stream._drop_caches() if args.cold else False
-            out = subprocess.run(
-                [sys.executable, __file__, "--dir", str(args.dir), "--child", kind,
-                 *map(str, files)],
-                check=True, capture_output=True, text=True,
-            )
-            record = json.loads(out.stdout.strip().splitlines()[-1])
+            record = bench_stream.run_child(__file__, args.dir, [kind, *map(str, files)],
+                                            args.cold)
             record.update(variant=variant, repeat=args.repeat, size_gb=size,
-                          n_time=args.nt * args.repeat, cache="cold" if cold else "warm")
+                          n_time=args.nt * args.repeat)
             rows.append(record)
             print(json.dumps(record), flush=True)
     print(f"\n{'variant':8} {'steps':>6} {'GB':>5} {'read s':>7} {'analyze s':>10} "

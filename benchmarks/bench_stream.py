@@ -220,6 +220,19 @@ def record_arguments(parser: argparse.ArgumentParser, variants: list[str]) -> No
     parser.add_argument("--cold", action="store_true", help="drop the page cache before each run")
 
 
+def run_child(script: str, directory: Path, child_args: list[str], cold: bool) -> dict:
+    """Run one measurement in a fresh subprocess (after dropping the page cache if ``cold``)
+    and return its JSON record, with ``cache`` set to what was done."""
+    dropped = _drop_caches() if cold else False
+    out = subprocess.run(
+        [sys.executable, script, "--dir", str(directory), "--child", *child_args],
+        check=True, capture_output=True, text=True,
+    )
+    record = json.loads(out.stdout.strip().splitlines()[-1])
+    record["cache"] = "cold" if dropped else "warm"
+    return record
+
+
 def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     record_arguments(parser, ["plain", "zlib"])
@@ -240,14 +253,8 @@ def main(argv: list[str] | None = None) -> None:
             print(f"# wrote {path} ({path.stat().st_size / 1e9:.2f} GB) in "
                   f"{time.perf_counter() - start:.0f} s", flush=True)
         for kind in args.runs:
-            cold = _drop_caches() if args.cold else False
-            out = subprocess.run(
-                [sys.executable, __file__, "--dir", str(args.dir), "--child", kind, str(path)],
-                check=True, capture_output=True, text=True,
-            )
-            record = json.loads(out.stdout.strip().splitlines()[-1])
-            record.update(variant=variant, cache="cold" if cold else "warm",
-                          size_gb=path.stat().st_size / 1e9)
+            record = run_child(__file__, args.dir, [kind, str(path)], args.cold)
+            record.update(variant=variant, size_gb=path.stat().st_size / 1e9)
             results.append(record)
             print(json.dumps(record), flush=True)
     print(f"\n{'variant':8} {'run':7} {'cache':5} {'work s':>8} {'process s':>10} {'peak GB':>8}")
