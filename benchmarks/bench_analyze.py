@@ -94,10 +94,7 @@ def main(argv: list[str] | None = None) -> None:
     args.dir.mkdir(parents=True, exist_ok=True)
     rows = []
     for variant in args.variants:
-        path = args.dir / f"record_{args.ny}x{args.nx}x{args.nt}_{variant}.nc"
-        if not path.exists():
-            bench_stream.make_record(path, args.ny, args.nx, args.nt, zlib=variant == "zlib")
-        files = repeated_record(path, args.repeat)
+        files = repeated_record(bench_stream.ensure_record(args, variant), args.repeat)
         size = sum(f.stat().st_size for f in files) / 1e9
         for kind in ("read", "analyze"):
             record = bench_stream.run_child(__file__, args.dir, [kind, *map(str, files)],

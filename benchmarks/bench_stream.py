@@ -220,6 +220,17 @@ def record_arguments(parser: argparse.ArgumentParser, variants: list[str]) -> No
     parser.add_argument("--cold", action="store_true", help="drop the page cache before each run")
 
 
+def ensure_record(args: argparse.Namespace, variant: str) -> Path:
+    """The record named by the options (:func:`record_arguments`), written if missing."""
+    path = args.dir / f"record_{args.ny}x{args.nx}x{args.nt}_{variant}.nc"
+    if not path.exists():
+        start = time.perf_counter()
+        make_record(path, args.ny, args.nx, args.nt, zlib=variant == "zlib")
+        print(f"# wrote {path} ({path.stat().st_size / 1e9:.2f} GB) in "
+              f"{time.perf_counter() - start:.0f} s", flush=True)
+    return path
+
+
 def run_child(script: str, directory: Path, child_args: list[str], cold: bool) -> dict:
     """Run one measurement in a fresh subprocess (after dropping the page cache if ``cold``)
     and return its JSON record, with ``cache`` set to what was done."""
@@ -246,12 +257,7 @@ def main(argv: list[str] | None = None) -> None:
     args.dir.mkdir(parents=True, exist_ok=True)
     results = []
     for variant in args.variants:
-        path = args.dir / f"record_{args.ny}x{args.nx}x{args.nt}_{variant}.nc"
-        if not path.exists():
-            start = time.perf_counter()
-            make_record(path, args.ny, args.nx, args.nt, zlib=variant == "zlib")
-            print(f"# wrote {path} ({path.stat().st_size / 1e9:.2f} GB) in "
-                  f"{time.perf_counter() - start:.0f} s", flush=True)
+        path = ensure_record(args, variant)
         for kind in args.runs:
             record = run_child(__file__, args.dir, [kind, str(path)], args.cold)
             record.update(variant=variant, size_gb=path.stat().st_size / 1e9)
