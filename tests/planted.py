@@ -1,9 +1,13 @@
-"""Comparing found sources with the planted truth of a scenario (shared by the tests)."""
+"""Helpers shared by the tests: comparing found sources with the planted truth of a
+scenario, and a hand-built stand-in for the along-shore frame."""
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
+from scipy import sparse
 
 from coastmon.grid.metrics import haversine_m
 
@@ -28,3 +32,20 @@ def ranks_of_planted(sources: pd.DataFrame, truth: dict, tol_km: float = 30.0) -
         assert dist < tol_km, f"{name}: nearest source {dist:.0f} km away"
         ranks.append(int(sources["rank"].iloc[k]))
     return ranks
+
+
+@dataclass
+class StandInFrame:
+    """The attributes of geometry.frame.Frame that the pass uses, built by hand."""
+
+    sampler: sparse.csr_matrix
+    valid: np.ndarray
+    stations: pd.DataFrame
+    offsets_km: np.ndarray
+    ray_km: np.ndarray
+
+    def split(self, samples):
+        s, o, r = len(self.stations), self.offsets_km.size, self.ray_km.size
+        lead = samples.shape[:-1]
+        return (samples[..., : s * o].reshape(*lead, s, o),
+                samples[..., s * o:].reshape(*lead, s, r))

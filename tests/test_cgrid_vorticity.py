@@ -16,6 +16,7 @@ import pandas as pd
 import pyproj
 import pytest
 import xarray as xr
+from planted import StandInFrame
 from scipy import sparse
 
 from coastmon.config import IngestSettings, StreamSettings
@@ -302,21 +303,6 @@ def test_native_vorticity_beats_the_centre_average_on_the_scenario_cgrid(scenari
 # --------------------------------------------------------------------------- stream pass
 
 
-@dataclasses.dataclass
-class _Frame:
-    sampler: sparse.csr_matrix
-    valid: np.ndarray
-    stations: pd.DataFrame
-    offsets_km: np.ndarray
-    ray_km: np.ndarray
-
-    def split(self, samples):
-        s, o = len(self.stations), self.offsets_km.size
-        lead = samples.shape[:-1]
-        return (samples[..., : s * o].reshape(*lead, s, o),
-                samples[..., s * o:].reshape(*lead, s, self.ray_km.size))
-
-
 def _pass_inputs(zero_velocity: bool, nt=30, ny=10, nx=12, seed=3):
     rng = np.random.default_rng(seed)
     lon2, lat2 = np.meshgrid(np.linspace(-12.0, -9.0, nx), np.linspace(37.0, 40.0, ny))
@@ -343,7 +329,7 @@ def _pass_inputs(zero_velocity: bool, nt=30, ny=10, nx=12, seed=3):
         cols += list(pick)
         vals += list(w / w.sum())
     matrix = sparse.csr_matrix((vals, (rows, cols)), shape=(n_points, ny * nx))
-    frame = _Frame(matrix, np.ones(n_points, bool),
+    frame = StandInFrame(matrix, np.ones(n_points, bool),
                    pd.DataFrame({"station_id": [0, 1], "alongshore_km": [0.0, 10.0]}),
                    np.array([0.0, 10.0]), np.array([10.0, 20.0, 30.0]))
     return ds, GridMetrics.from_lonlat(lon2, lat2), frame, sea, z

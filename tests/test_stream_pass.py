@@ -6,7 +6,6 @@ import json
 import subprocess
 import sys
 import textwrap
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -14,6 +13,7 @@ import pandas as pd
 import pytest
 import xarray as xr
 from distributed import LocalCluster
+from planted import StandInFrame
 from scipy import sparse
 
 from coastmon.config import StreamSettings
@@ -23,23 +23,6 @@ from coastmon.grid.metrics import GridMetrics
 from coastmon.stream import kernels, run_pass
 
 SETTINGS = StreamSettings(progress=False)
-
-
-@dataclass
-class StandInFrame:
-    """The attributes of geometry.frame.Frame that the pass uses, built by hand."""
-
-    sampler: sparse.csr_matrix
-    valid: np.ndarray
-    stations: pd.DataFrame
-    offsets_km: np.ndarray
-    ray_km: np.ndarray
-
-    def split(self, samples):
-        s, o, r = len(self.stations), self.offsets_km.size, self.ray_km.size
-        lead = samples.shape[:-1]
-        return (samples[..., : s * o].reshape(*lead, s, o),
-                samples[..., s * o:].reshape(*lead, s, r))
 
 
 def make_frame(shape, sea, rng, n_stations=3, n_offsets=2, n_rays=4) -> StandInFrame:

@@ -24,11 +24,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import dask.array as dsa
-import numba
 import numpy as np
 import xarray as xr
 from xarray.backends import NetCDF4BackendEntrypoint, ZarrBackendEntrypoint
 
+from coastmon.compiled import compiled
 from coastmon.config import IngestSettings
 from coastmon.errors import InputError, RecordError
 from coastmon.grid.metrics import GridMetrics
@@ -652,15 +652,7 @@ def _mask_from_variable(ds: xr.Dataset, name: str, plan: _Plan) -> np.ndarray:
     return (np.isfinite(values) & sea).astype(np.int8)
 
 
-def _jit(func):
-    """``numba.njit`` with on-disk caching where the package folder is writable."""
-    try:
-        return numba.njit(cache=True, nogil=True)(func)
-    except RuntimeError:
-        return numba.njit(cache=False, nogil=True)(func)
-
-
-@_jit
+@compiled()
 def _any_beyond(values, limit):  # pragma: no cover - compiled
     """True if some value is infinite or beyond ``limit`` in magnitude (NaN never is)."""
     for k in range(values.size):
@@ -686,7 +678,7 @@ def _check_values(values: np.ndarray, limit: float, what: str, where: str,
                  "or mask the bad points")
 
 
-@_jit
+@compiled()
 def _mask_beyond(block, sea, limit, out):  # pragma: no cover - compiled
     """``out = block`` on the sea, NaN on land; True if a sea value is infinite or beyond
     ``limit`` in magnitude. One sweep, no temporaries."""

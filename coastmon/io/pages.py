@@ -17,29 +17,22 @@ import mmap
 import numpy as np
 
 
-def _mapping(arr):
-    base = arr
-    while base is not None and not isinstance(base, np.memmap):
-        base = getattr(base, "base", None)
-    handle = getattr(base, "_mmap", None)
-    return handle if handle is not None and hasattr(handle, "madvise") else None
-
-
-def _advise(arr, name: str) -> None:
-    advice = getattr(mmap, name, None)
-    handle = _mapping(arr)
-    if advice is None or handle is None:
-        return
-    try:
-        handle.madvise(advice)
-    except (OSError, ValueError):  # closed or not allowed: nothing to do
-        pass
-
-
 def release(*arrays) -> None:
     """Unmap the pages of memory-mapped arrays (or views of them) from this process.
 
     A no-op for arrays in memory and on systems without ``madvise(MADV_DONTNEED)``.
     """
+    advice = getattr(mmap, "MADV_DONTNEED", None)
+    if advice is None:
+        return
     for arr in arrays:
-        _advise(arr, "MADV_DONTNEED")
+        base = arr
+        while base is not None and not isinstance(base, np.memmap):
+            base = getattr(base, "base", None)
+        handle = getattr(base, "_mmap", None)
+        if handle is None or not hasattr(handle, "madvise"):
+            continue
+        try:
+            handle.madvise(advice)
+        except (OSError, ValueError):  # closed or not allowed: nothing to release
+            pass

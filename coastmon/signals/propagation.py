@@ -23,6 +23,7 @@ import scipy.signal
 from scipy.optimize import minimize_scalar
 from scipy.stats import t as student_t
 
+from coastmon.compiled import compiled
 from coastmon.errors import RecordError
 
 OMEGA_EARTH = 7.2921e-5
@@ -288,15 +289,7 @@ def _centroid(power: np.ndarray, freq: np.ndarray, wavenumber: np.ndarray, dd: f
     return float(np.sum(weights * freq[:, None]) / total_k)
 
 
-def _jit(func):
-    """``numba.njit`` (parallel) with on-disk caching where the package folder is writable."""
-    try:
-        return numba.njit(cache=True, nogil=True, parallel=True)(func)
-    except RuntimeError:
-        return numba.njit(cache=False, nogil=True, parallel=True)(func)
-
-
-@_jit
+@compiled(parallel=True)
 def _radon_energies(values, n_t, n_d, cos_t, sin_t, out):  # pragma: no cover - compiled
     """Projection energy of a (n_t, n_d) image (flattened) at each angle, into ``out``.
 

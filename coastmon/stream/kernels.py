@@ -18,9 +18,8 @@ The per-chunk work on a ``(time, y, x)`` block is done by:
 
 All kernels release the GIL (``nogil``) so that several chunks can be processed by
 different threads at once; the number of threads each kernel uses inside is set by the
-caller with :func:`numba.set_num_threads` (a per-thread setting). Compiled code is cached
-on disk when the package directory (or ``NUMBA_CACHE_DIR``) is writable, and compiled in
-memory on first use otherwise.
+caller with :func:`numba.set_num_threads` (a per-thread setting). Compilation and its
+on-disk cache are as :mod:`coastmon.compiled` sets them.
 """
 
 from __future__ import annotations
@@ -28,6 +27,8 @@ from __future__ import annotations
 import numba
 import numpy as np
 from numba import njit, prange
+
+from coastmon.compiled import compiled
 
 PAIR_INDEX = np.array(
     [[0, 1, 3, 6], [1, 2, 4, 7], [3, 4, 5, 8], [6, 7, 8, 9]], dtype=np.int64
@@ -38,19 +39,6 @@ PAIR_INDEX = np.array(
 
 TRIPLES = np.array([[0, 0, 0], [0, 1, 1], [0, 0, 1], [1, 1, 1]], dtype=np.int64)
 """Variable indices of the third-order co-moments kept: uuu, uvv, uuv, vvv."""
-
-
-def _compile(parallel: bool):
-    """``njit`` with on-disk caching, or in-memory compilation if no cache is writable."""
-
-    def wrap(func):
-        options = {"parallel": parallel, "nogil": True, "fastmath": False}
-        try:
-            return njit(cache=True, **options)(func)
-        except RuntimeError:
-            return njit(cache=False, **options)(func)
-
-    return wrap
 
 
 @njit(nogil=True, fastmath={"reassoc"})
@@ -366,7 +354,7 @@ def _row_cores(w, limit, j, tsel, g, ow):  # pragma: no cover - compiled
             ow[g, j, i] += 1.0 if w[t, j, i] < lim else 0.0
 
 
-@_compile(parallel=True)
+@compiled(parallel=True)
 def _chunk_kernel(u, v, zin, h, has_z, has_h, gx, gy, ow_threshold, order, starts,
                   zout, w, limit, n, mean, m2, m3, ow, n_bands):  # pragma: no cover
     nt, ny, nx = u.shape
@@ -426,7 +414,7 @@ def _chunk_kernel(u, v, zin, h, has_z, has_h, gx, gy, ow_threshold, order, start
     return 0
 
 
-@_compile(parallel=True)
+@compiled(parallel=True)
 def _block_moments(u, v, z, h, has_h, w, limit, order, starts, n, mean, m2, m3, ow):  # pragma: no cover
     ny = u.shape[1]
     nx = u.shape[2]
@@ -599,7 +587,7 @@ def chunk_moments(
     return tuple(a[0] for a in arrays)
 
 
-@_compile(parallel=True)
+@compiled(parallel=True)
 def _merge(na, ma, m2a, m3a, owa, nb, mb, m2b, m3b, owb):  # pragma: no cover - compiled
     # Written out term by term (pairs as PAIR_INDEX, triples uuu, uvv, uuv, vvv) so the
     # loop over x vectorises; s = n_b / n, r = n_a n_b / n.
@@ -674,7 +662,7 @@ def merge_moments(
     _merge(*a, *b)
 
 
-@_compile(parallel=True)
+@compiled(parallel=True)
 def _sample(cols, rows, weights, valid, x, out):  # pragma: no cover - compiled
     nt = x.shape[0]
     npts = out.shape[1]
