@@ -652,20 +652,8 @@ def _mask_from_variable(ds: xr.Dataset, name: str, plan: _Plan) -> np.ndarray:
     return (np.isfinite(values) & sea).astype(np.int8)
 
 
-@compiled()
-def _any_beyond(values, limit):  # pragma: no cover - compiled
-    """True if some value is infinite or beyond ``limit`` in magnitude (NaN never is)."""
-    for k in range(values.size):
-        if abs(values[k]) > limit:
-            return True
-    return False
-
-
 def _check_values(values: np.ndarray, limit: float, what: str, where: str,
                   when: str) -> None:
-    values = np.asarray(values)
-    if values.dtype.kind == "f" and not _any_beyond(values.reshape(-1), float(limit)):
-        return  # one compiled sweep, no temporaries: this runs on every chunk of the pass
     bad = np.isinf(values) | (np.abs(np.nan_to_num(values)) > limit)
     if bad.any():
         j, i = np.unravel_index(int(np.argmax(bad.reshape(-1, *bad.shape[-2:]).any(axis=0))),
