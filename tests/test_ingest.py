@@ -404,3 +404,17 @@ def test_absurd_values_at_first_step_and_later(tmp_path):
                       IngestSettings(time_chunk=2))
     with pytest.raises(InputError, match="absurd_later.nc"):
         ds.u.values  # noqa: B018 - the stream pass meets the bad chunk
+
+
+def test_time_chunks_are_whole_file_chunks(tmp_path):
+    from coastmon.io.ingest import _aligned_chunk
+
+    var = xr.DataArray(np.zeros((40, 3, 4), dtype=np.float32), dims=("time", "y", "x"))
+    var.encoding["chunksizes"] = (7, 3, 4)
+    # check: common practice, no source (a time block made of whole file chunks decompresses
+    # each chunk once; 20 steps would cut the third chunk in two)
+    assert _aligned_chunk(20, var, "time", IngestSettings()) == 14
+    assert _aligned_chunk(5, var, "time", IngestSettings()) == 5  # file chunks longer: kept
+    assert _aligned_chunk(20, var, "time", IngestSettings(time_chunk=20)) == 20  # user's choice
+    var.encoding = {"preferred_chunks": {"time": 10, "y": 3, "x": 4}}  # as Zarr stores give it
+    assert _aligned_chunk(25, var, "time", IngestSettings()) == 20

@@ -102,6 +102,24 @@ def test_pieces_give_the_statistics_and_ranking_of_the_whole(record):
     assert run["command"] == "update" and run["n_time"] == N_DAYS
 
 
+def test_stored_series_are_stacked_on_disk(record, tmp_path):
+    manifest = json.loads((_current(record.state) / "manifest.json").read_text())
+    parts = manifest["series_parts"]
+    assert len(parts) == len(PIECES)
+    series = monitor_state._load_series(record.state, parts, tmp_path)
+    pieces = [xr.load_dataset(record.state / monitor_state.STORE / name) for name in parts]
+    whole = xr.concat(pieces, dim="time", data_vars="minimal", coords="minimal",
+                      compat="override")
+    assert series.sizes["time"] == N_DAYS  # check: planted record length
+    # check: xarray.concat of the parts (the series in memory), value for value
+    xr.testing.assert_identical(series, whole)
+    for name in ("section_zeta", "ray_u"):
+        base = series[name].values
+        while base is not None and not isinstance(base, np.memmap):
+            base = base.base
+        assert isinstance(base, np.memmap), name  # disk-backed, not held in memory
+
+
 def test_geometry_is_stored_not_recomputed(record):
     prep = pipeline.prepare([record.nc], SETTINGS)
     grid, coastline, capes, frame = load_geometry(record.state / "store")

@@ -329,3 +329,77 @@ def test_same_statistics_without_a_threadsafe_threading_layer(tmp_path):
     # launches from several threads; the pass must then run one chunk at a time, with the
     # same merge order and so the same numbers
     np.testing.assert_array_equal(np.load(tmp_path / "eke.npy"), expected)
+
+
+def test_series_files_are_station_major(tmp_path):
+    from coastmon.stream import SeriesFile
+
+    rng = np.random.default_rng(3)
+    full = rng.standard_normal((23, 5, 4)).astype(np.float32)
+    writer = SeriesFile(tmp_path / "ray_u.npy", full.shape)
+    for t0 in (0, 7, 14, 21):  # blocks of time steps, as the pass writes them
+        writer.write(t0, full[t0:t0 + 7])
+    writer.close()
+    view = writer.open()
+    # check: common practice, no source (the view gives back exactly what was written)
+    np.testing.assert_array_equal(view, full)
+    on_disk = np.load(tmp_path / "ray_u.npy")
+    assert on_disk.shape == (5, 23, 4)
+    # check: numpy .npy format (C order): station s's whole record is one contiguous block
+    np.testing.assert_array_equal(on_disk[2], full[:, 2, :])
+
+
+FILES_SCRIPT = textwrap.dedent(
+    """
+    import json, os, sys
+    import netCDF4
+    import numpy as np
+    sys.path.insert(0, {tests!r})
+    from test_stream_pass import make_frame
+    from coastmon.config import IngestSettings, StreamSettings
+    from coastmon.grid.metrics import GridMetrics
+    from coastmon.io.ingest import open_dataset
+    from coastmon.stream import run_pass
+
+    files = {files!r}
+    ds = open_dataset(files, IngestSettings(u_var="u", v_var="v", mask_var="mask"))
+    metrics = GridMetrics.from_lonlat(ds["lon"].values, ds["lat"].values)
+    frame = make_frame(metrics.shape, ds["mask"].values == 1, np.random.default_rng(0))
+    run_pass(ds, metrics, frame, StreamSettings(progress=False), {work!r})
+    links = [os.path.realpath(f"/proc/self/fd/{{fd}}") for fd in os.listdir("/proc/self/fd")]
+    print(json.dumps({{"open": sum(link in files for link in links),
+                      "cache": netCDF4.get_chunk_cache()[0]}}))
+    """
+)
+
+
+def test_input_files_are_let_go_after_the_pass_reads_them(tmp_path):
+    ny, nx, nt = 60, 70, 6
+    lon, lat = np.meshgrid(np.linspace(-15, -5, nx), np.linspace(15, 25, ny))
+    rng = np.random.default_rng(4)
+    files = []
+    for k in range(8):
+        times = pd.date_range("2001-01-01", periods=nt, freq="D") + pd.Timedelta(days=nt * k)
+        u = rng.standard_normal((nt, ny, nx)).astype(np.float32)
+        ds = xr.Dataset(
+            {"u": (("time", "y", "x"), u, {"units": "m s-1"}),
+             "v": (("time", "y", "x"), 0.5 * u, {"units": "m s-1"})},
+            coords={"time": times, "lon": (("y", "x"), lon), "lat": (("y", "x"), lat),
+                    "mask": (("y", "x"), np.ones((ny, nx), dtype=np.int8))},
+        )
+        # Compressed, one time step per chunk: the usual layout of model output.
+        enc = {name: {"zlib": True, "complevel": 1, "chunksizes": (1, ny, nx)}
+               for name in ("u", "v")}
+        files.append(tmp_path / f"part{k}.nc")
+        ds.to_netcdf(files[-1], encoding=enc)
+    script = FILES_SCRIPT.format(tests=str(Path(__file__).parent),
+                                 files=[str(f.resolve()) for f in files],
+                                 work=str(tmp_path / "work"))
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr[-2000:]
+    usage = json.loads(out.stdout.strip().splitlines()[-1])
+    # check: common practice, no source (every open NetCDF-4 file keeps buffers and a chunk
+    # cache per variable, 64 MB by default in the netCDF-C library: a reader that kept each
+    # file it has read open would grow with the number of files, here 8)
+    assert usage["open"] <= 4, usage
+    assert usage["cache"] <= 4 * 2**20, usage

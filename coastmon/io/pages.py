@@ -4,10 +4,9 @@ The sampled series live in files in the pass's work folder and are read through 
 maps. Pages read through a map count in the process's resident memory until the map is
 dropped, so a scan over a long record would keep the whole series resident after it is
 done. The scans call :func:`release` as they go: the pages leave the process (they stay
-in the system's page cache and are read back from there if needed). A scan that reads one
-station of a (time, station, ray) series still maps nearly every page while it runs
-(each time step's row is a few pages, and the kernel maps neighbouring pages on a fault),
-so the peak resident size of the analyses includes up to the size of the ray series.
+in the system's page cache and are read back from there if needed). The files are stored
+station by station, so a scan over stations maps only the stations it has read since the
+last release, and a scan over blocks of time maps only those blocks.
 """
 
 from __future__ import annotations

@@ -73,7 +73,14 @@ from coastmon.grid.metrics import GridMetrics, coriolis_parameter
 from coastmon.io.atomic import atomic_write_text, staging_dir
 from coastmon.io.ingest import open_dataset
 from coastmon.monitor.events import shedding_events
-from coastmon.stream import load_state, merge_states, run_pass, save_state, stats_from_state
+from coastmon.stream import (
+    SeriesFile,
+    load_state,
+    merge_states,
+    run_pass,
+    save_state,
+    stats_from_state,
+)
 from coastmon.stream.moments import grid_signature
 
 STATE_FORMAT_VERSION = 1
@@ -460,15 +467,47 @@ def _with_fill(series: xr.Dataset, plan: _Plan, t_new_s: np.ndarray, calendar: s
                                                       series["time"].values))
 
 
-def _load_series(state_dir: Path, parts: list[str]) -> xr.Dataset:
-    pieces = []
-    for name in parts:
-        with xr.open_dataset(state_dir / STORE / name, engine="netcdf4") as ds:
-            pieces.append(ds.load())
-    if len(pieces) == 1:
-        return pieces[0]
-    return xr.concat(pieces, dim="time", data_vars="minimal", coords="minimal",
-                     compat="override")
+SERIES_BLOCK_STEPS = 512
+"""Time steps copied at a time when the stored series parts are stacked on disk."""
+
+
+def _load_series(state_dir: Path, parts: list[str], work: Path) -> xr.Dataset:
+    """The stored series parts as one series, in disk-backed files in ``work``.
+
+    The (time, station, k) variables are copied a block of time steps at a time into
+    station-major files (as the streaming pass writes them), so memory does not grow with
+    the length of the monitored record; the small coordinates are kept in memory.
+    """
+    work.mkdir(parents=True, exist_ok=True)
+    opened = [xr.open_dataset(state_dir / STORE / name, engine="netcdf4") for name in parts]
+    try:
+        first = opened[0]
+        n_time = sum(ds.sizes["time"] for ds in opened)
+        big = [name for name, var in first.data_vars.items()
+               if var.dims[:1] == ("time",) and var.ndim == 3]
+        writers = {name: SeriesFile(work / f"{name}.npy", (n_time, *first[name].shape[1:]))
+                   for name in big}
+        try:
+            offset = 0
+            for ds in opened:
+                n = ds.sizes["time"]
+                for t0 in range(0, n, SERIES_BLOCK_STEPS):
+                    t1 = min(n, t0 + SERIES_BLOCK_STEPS)
+                    for name, writer in writers.items():
+                        writer.write(offset + t0, ds[name][t0:t1].values)
+                offset += n
+        finally:
+            for writer in writers.values():
+                writer.close()
+        small = [ds.drop_vars(big).load() for ds in opened]
+    finally:
+        for ds in opened:
+            ds.close()
+    rest = small[0] if len(small) == 1 else xr.concat(
+        small, dim="time", data_vars="minimal", coords="minimal", compat="override")
+    data = {name: xr.DataArray(writers[name].open(), dims=first[name].dims,
+                               attrs=first[name].attrs) for name in big}
+    return rest.assign(data)[list(first.data_vars)]
 
 
 def _write_part(series: xr.Dataset, path: Path) -> None:
@@ -535,7 +574,9 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
             keep = (set(manifest["store_files"]) | set(manifest["series_parts"]) if manifest
                     else set())
             _clean_leftovers(state_dir, current, keep)
-            result = _update(state_dir, paths, settings, allow_gaps, manifest, current, timings)
+            with tempfile.TemporaryDirectory(prefix="coastmon-update-") as work:
+                result = _update(state_dir, paths, settings, allow_gaps, manifest, current,
+                                 timings, Path(work))
     except BaseException:
         if fresh:  # a first update that failed leaves no half-made state folder behind
             shutil.rmtree(state_dir, ignore_errors=True)
@@ -546,7 +587,8 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
 
 def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: bool,
             manifest: dict[str, Any] | None, current: str | None,
-            timings: dict[str, float]) -> UpdateResult:
+            timings: dict[str, float], work: Path) -> UpdateResult:
+    """The update itself; ``work`` is a temporary folder for the pass and the series."""
     store = state_dir / STORE
     where = paths[0].name if len(paths) == 1 else f"{paths[0].name} (and {len(paths) - 1} more)"
     created = manifest is None
@@ -607,19 +649,19 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
 
     notes: list[str] = []
     t = time.perf_counter()
-    with tempfile.TemporaryDirectory(prefix="coastmon-update-") as work:
-        steps = plan.new
-        if np.all(np.diff(steps) == 1):
-            steps = slice(int(steps[0]), int(steps[-1]) + 1)
-        passed = run_pass(ds.isel(time=steps), metrics, frame, settings.stream, Path(work))
-        timings["stream_pass_s"] = time.perf_counter() - t
-        merged = passed.state if moments is None else merge_states(moments, passed.state)
-        new_series = _with_fill(passed.series, plan, t_s[plan.new], calendar)
-        part = f"series-{number:06d}-{secrets.token_hex(3)}.nc"
-        _write_part(new_series, store / part)
+    steps = plan.new
+    if np.all(np.diff(steps) == 1):
+        steps = slice(int(steps[0]), int(steps[-1]) + 1)
+    passed = run_pass(ds.isel(time=steps), metrics, frame, settings.stream, work / "pass")
+    timings["stream_pass_s"] = time.perf_counter() - t
+    merged = passed.state if moments is None else merge_states(moments, passed.state)
+    new_series = _with_fill(passed.series, plan, t_s[plan.new], calendar)
+    part = f"series-{number:06d}-{secrets.token_hex(3)}.nc"
+    _write_part(new_series, store / part)
+    del passed, new_series
     parts.append(part)
     stats = stats_from_state(merged, metrics)
-    series = _load_series(state_dir, parts)
+    series = _load_series(state_dir, parts, work / "series")
     seen_all = np.concatenate([seen_s, t_s[plan.new]])
     n_filled = int(sum(plan.fill_before))
 

@@ -33,6 +33,7 @@ import pandas as pd
 import xarray as xr
 
 from coastmon.config import Settings
+from coastmon.io.pages import release
 from coastmon.signals import (
     cwt_morlet,
     lag1_autocorrelation,
@@ -71,6 +72,7 @@ def nearshore_anomaly(section: np.ndarray, offsets_km: np.ndarray, nearshore_km:
         near = np.zeros_like(near)
         near[0] = True
     sub = np.asarray(section[:, :, near], dtype=np.float64)
+    release(section)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
         anomaly = sub - np.nanmean(sub, axis=0, keepdims=True)

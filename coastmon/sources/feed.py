@@ -104,7 +104,7 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
     direction = frame.stations["ray_dir"].values
     stations, fractions, speeds, sds, eke_ts, pws, glon, glat = [], [], [], [], [], [], [], []
     for s in range(ru.shape[1]):
-        if s % 32 == 31:
+        if s % 8 == 7:
             release(ru, rv, rz, rh)  # keep the series' pages from piling up in memory
         if direction[s] == 0 or not np.isfinite(ray_lon[s, win]).all():
             continue

@@ -8,12 +8,13 @@ from coastmon.stream.moments import (
     merge_states,
     save_state,
 )
-from coastmon.stream.pass_ import PassResult, run_pass, stats_from_state
+from coastmon.stream.pass_ import PassResult, SeriesFile, run_pass, stats_from_state
 
 __all__ = [
     "FORMAT_VERSION",
     "MomentState",
     "PassResult",
+    "SeriesFile",
     "grid_signature",
     "load_state",
     "merge_states",

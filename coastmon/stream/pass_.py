@@ -6,9 +6,10 @@ moments, merges them into the running :class:`~coastmon.stream.moments.MomentSta
 samples u, v, ζ (and ssh) onto the along-shore frame. When the canonical dataset carries
 its own ``zeta`` (the native vorticity of a C-grid input), that ζ is used instead of the
 kernel's, in the moments, the samples and the Okubo–Weiss parameter (whose strain still
-comes from u and v). The sampled time series are written to files in a work folder
-(positioned writes, no memory map), so memory stays bounded by a few chunks whatever the
-record length.
+comes from u and v). The sampled time series are written to files in a work folder,
+station by station (positioned writes, no memory map), so memory stays bounded by a few
+chunks whatever the record length, and the analyses that read one station at a time
+touch only that station's part of the files.
 
 On local threads, one reader thread reads the chunks in order as one uninterrupted stream
 while one worker thread per core runs the compiled kernels (they release the GIL); at
@@ -44,6 +45,10 @@ from coastmon.grid.operators import gradient
 from coastmon.stream import kernels
 from coastmon.stream.moments import MomentState, grid_signature, time_text
 
+OPEN_FILES = 4
+"""Input files kept open during the pass (xarray's file cache): the reader goes through
+the files in time order, and every open NetCDF file holds buffers and caches (several MB
+per variable), so keeping all of them open would grow the memory with the record."""
 CHUNK_BUDGET_BYTES = 128 * 2**20
 """Memory budget of one time chunk (inputs and the kernel's per-chunk arrays)."""
 SCRATCH_BYTES_PER_POINT = 16
@@ -71,7 +76,8 @@ class PassResult:
     stats : eddy statistics on the grid (y, x); see :func:`stats_from_state`.
     series : sampled time series, float32, backed by files in the work folder:
         ``section_<var>`` (time, station, offset) and ``ray_<var>`` (time, station, ray)
-        for var in u, v, zeta[, ssh].
+        for var in u, v, zeta[, ssh]; the files are stored station-major (each station's
+        record contiguous), and the arrays are views in this dimension order.
     state : the accumulators (mergeable; save with :func:`~coastmon.stream.save_state`).
     timings : seconds spent per stage (``read_s``, ``kernel_s``, ``sample_s`` summed over
         chunks and workers; ``merge_s``, ``write_s``, ``stats_s``, ``total_s`` wall time).
@@ -347,6 +353,11 @@ def run_pass(
     ``settings.seasonal``). Sampling skips missing values: ``(W @ fill0(x)) /
     (W @ isfinite(x))`` per time step, NaN where no weight meets a finite value.
     """
+    with xr.set_options(file_cache_maxsize=OPEN_FILES):
+        return _run_pass(ds, metrics, frame, settings, workdir, progress)
+
+
+def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
     wall0 = time.perf_counter()
     names = _check_dataset(ds, metrics)
     has_h = "ssh" in names
@@ -372,7 +383,7 @@ def run_pass(
     files = {}
     for name in series_names:
         for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
-            files[f"{kind}_{name}"] = _SeriesFile(workdir / f"{kind}_{name}.npy",
+            files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy",
                                                   (nt, *shape))
 
     state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
@@ -490,23 +501,36 @@ def _distributed_submitter(client, ds, names, bounds, consts, groups):
     return submit, collect, None
 
 
-class _SeriesFile:
-    """A float32 ``.npy`` file written a block of time steps at a time (positioned writes,
-    no memory map), so that the series already written do not stay in the process's memory."""
+class SeriesFile:
+    """A float32 series ``(time, station, k)`` kept on disk station by station.
+
+    The ``.npy`` file holds ``(station, time, k)``: each station's whole record is one
+    contiguous block, so reading one station (as the per-station analyses do) touches only
+    that station's pages. Blocks of time steps are written with positioned writes (no
+    memory map), so the series already written do not stay in the process's memory;
+    :meth:`open` gives the ``(time, station, k)`` view of the file.
+    """
 
     def __init__(self, path: Path, shape: tuple[int, ...]) -> None:
         self.path = path
-        header = np.lib.format.open_memmap(path, mode="w+", dtype=np.float32, shape=shape)
+        nt, ns, *rest = shape
+        header = np.lib.format.open_memmap(path, mode="w+", dtype=np.float32,
+                                           shape=(ns, nt, *rest))
         self.offset = header.offset
         del header
-        self.row_bytes = 4 * int(np.prod(shape[1:]))
+        self.n_time = nt
+        self.step_bytes = 4 * int(np.prod(rest))
         self.fd = os.open(path, os.O_WRONLY)
 
     def write(self, t0: int, values: np.ndarray) -> None:
-        data = np.ascontiguousarray(values, dtype=np.float32).tobytes()
-        done = 0
-        while done < len(data):
-            done += os.pwrite(self.fd, data[done:], self.offset + t0 * self.row_bytes + done)
+        """Write ``values`` ``(steps, station, k)`` at time steps ``t0, t0 + 1, ...``."""
+        blocks = np.ascontiguousarray(np.swapaxes(values, 0, 1), dtype=np.float32)
+        for s, block in enumerate(blocks):
+            data = memoryview(block).cast("B")
+            at = self.offset + (s * self.n_time + t0) * self.step_bytes
+            done = 0
+            while done < len(data):
+                done += os.pwrite(self.fd, data[done:], at + done)
 
     def close(self) -> None:
         if self.fd >= 0:
@@ -514,8 +538,8 @@ class _SeriesFile:
             self.fd = -1
 
     def open(self) -> np.ndarray:
-        """The written series, read-only and disk-backed."""
-        return np.load(self.path, mmap_mode="r")
+        """The written series as a read-only, disk-backed ``(time, station, k)`` view."""
+        return np.swapaxes(np.load(self.path, mmap_mode="r"), 0, 1)
 
 
 def _consume(out, t0, t1, state, files, frame, times, timings) -> None:
