@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from coastmon.compiled import compiled
 from coastmon.io.pages import release
 
 
@@ -39,38 +40,44 @@ def pattern_correlation(a: np.ndarray, b: np.ndarray) -> float:
     return float((x * y).sum() / den) if den > 0 else float("nan")
 
 
-def spinup_curve(fields: list[np.ndarray], time_days: np.ndarray, threshold: float = 0.9,
-                 n_lengths: int = 40, block: int = 64) -> SpinupCurve:
-    """Running-mean convergence of one or more (time, points) fields.
+@compiled()
+def _accumulate(values, total, count):  # pragma: no cover - compiled
+    """Add the finite values of (steps, points) to the running sums and counts."""
+    for t in range(values.shape[0]):
+        for p in range(values.shape[1]):
+            x = np.float64(values[t, p])
+            if np.isfinite(x):
+                total[p] += x
+                count[p] += 1.0
 
-    The fields are concatenated along the point axis (e.g. u and v on every frame point).
-    Running sums are accumulated block by block over time, so memory stays bounded.
+
+def spinup_curve(fields: list[np.ndarray], time_days: np.ndarray, threshold: float = 0.9,
+                 n_lengths: int = 40, block: int = 256) -> SpinupCurve:
+    """Running-mean convergence of one or more (time, points...) fields.
+
+    The fields are joined along their point axes (e.g. u and v on every frame point).
+    Running sums (float64) are accumulated one block of time steps at a time, in one
+    compiled sweep, and the running mean is taken at each of the ``n_lengths`` record
+    lengths, so memory stays bounded whatever the record length.
     """
     n_t = fields[0].shape[0]
     t = np.asarray(time_days, dtype=float)
     dt = float(np.median(np.diff(t))) if t.size > 1 else 1.0
     marks = np.unique(np.clip(np.round(np.geomspace(max(2, n_t / 50), n_t, n_lengths)).astype(int),
                               2, n_t))
-    n_pts = sum(int(np.prod(f.shape[1:])) for f in fields)
-    total = np.zeros(n_pts)
-    count = np.zeros(n_pts)
+    sizes = [int(np.prod(f.shape[1:])) for f in fields]
+    starts = np.concatenate([[0], np.cumsum(sizes)])
+    total = np.zeros(starts[-1])
+    count = np.zeros(starts[-1])
     snapshots = []
-    mark_i = 0
-    for start in range(0, n_t, block):
-        stop = min(start + block, n_t)
-        chunk = np.concatenate([np.asarray(f[start:stop], dtype=np.float64).reshape(stop - start, -1)
-                                for f in fields], axis=1)
-        ok = np.isfinite(chunk)
-        vals = np.where(ok, chunk, 0.0)
-        csum = np.cumsum(vals, axis=0)
-        ccnt = np.cumsum(ok, axis=0)
-        while mark_i < marks.size and marks[mark_i] <= stop:
-            k = marks[mark_i] - start - 1
+    edges = np.union1d(np.append(np.arange(0, n_t, block), n_t), marks)
+    for start, stop in zip(edges[:-1], edges[1:], strict=True):
+        for f, a, b in zip(fields, starts[:-1], starts[1:], strict=True):
+            part = np.ascontiguousarray(f[start:stop]).reshape(stop - start, -1)
+            _accumulate(part, total[a:b], count[a:b])
+        if stop in marks:
             with np.errstate(invalid="ignore", divide="ignore"):
-                snapshots.append((total + csum[k]) / (count + ccnt[k]))
-            mark_i += 1
-        total += csum[-1]
-        count += ccnt[-1]
+                snapshots.append(total / count)
         release(*fields)
     with np.errstate(invalid="ignore", divide="ignore"):
         final = total / count
