@@ -37,12 +37,12 @@ from coastmon.io import sgrid, vertical
 from coastmon.io.units import scale_factor
 
 CHUNK_BUDGET_BYTES = 128 * 2**20
+"""Target size of one time chunk of the largest input variable (bytes)."""
 NETCDF_CHUNK_CACHE_BYTES = 4 * 2**20
 """Chunk cache of each variable of each NetCDF-4 file opened for reading (the library's
 default, 64 MB, stays allocated while the file is open: with many input files it grew
 the pass's memory by over 100 MB per file). The pass reads every file chunk once, in
 time blocks aligned with the file's own time chunks, so a small cache loses nothing."""
-"""Target size of one time chunk of the largest input variable (bytes)."""
 MAX_SPEED_M_S = 20.0
 """Speeds above this (or infinite) are taken as corrupt data, not ocean currents."""
 MAX_SSH_M = 30.0
