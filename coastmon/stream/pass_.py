@@ -383,8 +383,7 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
     files = {}
     for name in series_names:
         for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
-            files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy",
-                                                  (nt, *shape))
+            files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy", (nt, *shape))
 
     state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
                               grid_signature(metrics.lon, metrics.lat))
