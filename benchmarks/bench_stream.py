@@ -2,11 +2,16 @@
 
 Not part of the test suite. Builds (once) a NetCDF4 record of float32 u, v on a
 ``ny x nx`` grid over ``nt`` days (500 x 500 x 1100 = 2.2 GB by default), plain and
-zlib-compressed, then times in separate subprocesses (peak memory = ``ru_maxrss``):
+zlib-compressed, then times in separate subprocesses (peak memory = ``ru_maxrss`` of the
+measuring process; for the pass also ``peak_tree_gb``, the proportional set size of the
+process and its reader processes, sampled every 0.2 s):
 
-* ``read``   — a plain read of u and v with netCDF4, chunk by chunk (the pass's time chunks),
-  one thread, nothing computed;
-* ``pass``   — :func:`coastmon.stream.run_pass` (threads, default settings);
+* ``read``   — a plain read of u and v with netCDF4, chunk by chunk, one thread, nothing
+  computed;
+* ``pass``   — :func:`coastmon.stream.run_pass` on the dataset as ``coastmon analyze``
+  opens it (default settings: reader processes on the compressed record), timed from
+  starting the readers, with building the stand-in frame;
+* ``pass-thread`` — the same with ``stream.read_processes = 0`` (one reader thread);
 * ``recipe`` — the straightforward xarray + dask recipe for the same statistics: time
   means, then anomalies, products and their means (a second read), vorticity and
   Okubo–Weiss with ``xarray.apply_ufunc``.
@@ -135,20 +140,73 @@ def measure_read(path: Path) -> dict:
     return {"work_s": time.perf_counter() - start, "values_read": values}
 
 
-def measure_pass(path: Path, workdir: Path) -> dict:
-    import xarray as xr
-
-    from coastmon.config import StreamSettings
+def measure_pass(path: Path, workdir: Path, read_processes: int | None = None) -> dict:
+    """The pass on the canonical dataset as ``coastmon analyze`` opens it (its time chunks;
+    on the compressed record, reader processes unless ``read_processes`` = 0)."""
+    from coastmon.config import IngestSettings, StreamSettings
     from coastmon.grid.metrics import GridMetrics
-    from coastmon.stream import run_pass
+    from coastmon.io.ingest import open_dataset
+    from coastmon.stream import prestart_readers, run_pass
 
-    ds = xr.open_dataset(path, chunks={"time": TIME_CHUNK})
+    ds = open_dataset([path], IngestSettings(u_var="u", v_var="v", mask_var="mask"))
+    settings = StreamSettings(progress=False, read_processes=read_processes)
+    start = time.perf_counter()
+    prestart_readers(ds, settings)  # as analyze does, before building the frame
     metrics = GridMetrics.from_lonlat(ds["lon"].values, ds["lat"].values)
     frame = _frame(ds)
-    start = time.perf_counter()
-    result = run_pass(ds, metrics, frame, StreamSettings(progress=False), workdir)
+    with PeakMemory(os.getpid()) as memory:
+        result = run_pass(ds, metrics, frame, settings, workdir)
     return {"work_s": time.perf_counter() - start, "timings": result.timings,
-            "eke_mean": float(result.stats["eke"].mean())}
+            "peak_tree_gb": memory.peak / 1e9, "eke_mean": float(result.stats["eke"].mean())}
+
+
+def tree_memory(pid: int) -> int:
+    """Proportional set size (bytes) of a process and all its descendants: shared pages
+    (the reader processes' slots) are counted once in all."""
+    children: dict[int, list[int]] = {}
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                stat = Path(f"/proc/{entry}/stat").read_text()
+            except OSError:
+                continue
+            ppid = int(stat.rsplit(")", 1)[1].split()[1])
+            children.setdefault(ppid, []).append(int(entry))
+    total, todo = 0, [pid]
+    while todo:
+        p = todo.pop()
+        todo += children.get(p, [])
+        try:
+            for line in Path(f"/proc/{p}/smaps_rollup").read_text().splitlines():
+                if line.startswith("Pss:"):
+                    total += int(line.split()[1]) * 1024
+                    break
+        except OSError:
+            pass
+    return total
+
+
+class PeakMemory:
+    """Samples :func:`tree_memory` of ``pid`` every ``every`` seconds; ``peak`` in bytes."""
+
+    def __init__(self, pid: int, every: float = 0.2) -> None:
+        import threading
+
+        self.pid, self.every, self.peak = pid, every, 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def _run(self) -> None:
+        while not self._stop.wait(self.every):
+            self.peak = max(self.peak, tree_memory(self.pid))
+
+    def __enter__(self) -> PeakMemory:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        self._thread.join()
 
 
 def measure_recipe(path: Path) -> dict:
@@ -193,6 +251,8 @@ def _child(kind: str, path: Path, workdir: Path) -> None:
         extra = measure_read(path)
     elif kind == "pass":
         extra = measure_pass(path, workdir)
+    elif kind == "pass-thread":
+        extra = measure_pass(path, workdir, read_processes=0)
     else:
         extra = measure_recipe(path)
     wall = time.perf_counter() - start
@@ -231,12 +291,13 @@ def ensure_record(args: argparse.Namespace, variant: str) -> Path:
     return path
 
 
-def run_child(script: str, directory: Path, child_args: list[str], cold: bool) -> dict:
+def run_child(script: str, directory: Path, child_args: list[str], cold: bool,
+              options: tuple[str, ...] = ()) -> dict:
     """Run one measurement in a fresh subprocess (after dropping the page cache if ``cold``)
     and return its JSON record, with ``cache`` set to what was done."""
     dropped = _drop_caches() if cold else False
     out = subprocess.run(
-        [sys.executable, script, "--dir", str(directory), "--child", *child_args],
+        [sys.executable, script, "--dir", str(directory), *options, "--child", *child_args],
         check=True, capture_output=True, text=True,
     )
     record = json.loads(out.stdout.strip().splitlines()[-1])
@@ -248,7 +309,7 @@ def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     record_arguments(parser, ["plain", "zlib"])
     parser.add_argument("--runs", nargs="+", default=["read", "pass", "recipe"],
-                        choices=["read", "pass", "recipe"])
+                        choices=["read", "pass", "pass-thread", "recipe"])
     parser.add_argument("--child", nargs=2, metavar=("KIND", "FILE"), help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.child:
@@ -263,10 +324,11 @@ def main(argv: list[str] | None = None) -> None:
             record.update(variant=variant, size_gb=path.stat().st_size / 1e9)
             results.append(record)
             print(json.dumps(record), flush=True)
-    print(f"\n{'variant':8} {'run':7} {'cache':5} {'work s':>8} {'process s':>10} {'peak GB':>8}")
+    print(f"\n{'variant':8} {'run':11} {'cache':5} {'work s':>8} {'process s':>10} "
+          f"{'peak GB':>8} {'tree GB':>8}")
     for r in results:
-        print(f"{r['variant']:8} {r['kind']:7} {r['cache']:5} {r['work_s']:8.1f} "
-              f"{r['wall_s']:10.1f} {r['peak_rss_gb']:8.2f}")
+        print(f"{r['variant']:8} {r['kind']:11} {r['cache']:5} {r['work_s']:8.1f} "
+              f"{r['wall_s']:10.1f} {r['peak_rss_gb']:8.2f} {r.get('peak_tree_gb', 0):8.2f}")
 
 
 if __name__ == "__main__":

@@ -2,4 +2,5 @@
 
 from coastmon.cli import main
 
-raise SystemExit(main())
+if __name__ == "__main__":  # not when a reader process of the pass re-imports this module
+    raise SystemExit(main())

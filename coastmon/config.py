@@ -98,6 +98,9 @@ class StreamSettings:
     """Show a progress bar on the terminal."""
     ow_threshold: float = 0.2
     """Eddy cores are where Okubo-Weiss W < -ow_threshold * sigma_W (sigma_W per snapshot)."""
+    read_processes: int | None = None
+    """Processes that read (decompress) the input's chunks in parallel; None = one per
+    core, up to 4, when the input is compressed (else 0); 0 = one reader thread."""
 
 
 @dataclass(frozen=True)
@@ -337,6 +340,8 @@ def validate(settings: Settings) -> None:
          "output.gis may contain only gpkg, geojson, shp, csv"),
         (settings.ingest.time_chunk is None or settings.ingest.time_chunk >= 1,
          "ingest.time_chunk must be at least 1"),
+        (settings.stream.read_processes is None or settings.stream.read_processes >= 0,
+         "stream.read_processes must be 0 or more"),
         (settings.ingest.ssh_smooth_km >= 0, "ingest.ssh_smooth_km must be 0 or more"),
     ]
     for ok, message in checks:

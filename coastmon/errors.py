@@ -26,6 +26,10 @@ class CoastmonError(Exception):
             parts.append(todo if todo.endswith(("?", "!")) else todo + ".")
         super().__init__(" ".join(parts))
 
+    def __reduce__(self):
+        # Rebuilt from its parts when it crosses between processes (the pass's readers).
+        return (type(self), (self.what, self.where, self.todo))
+
 
 class InputError(CoastmonError):
     """An input file or store cannot be used as given."""

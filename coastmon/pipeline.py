@@ -68,7 +68,7 @@ from coastmon.sources import (
     rank_sources,
 )
 from coastmon.sources.detect import nearshore_anomaly, time_step_days
-from coastmon.stream import run_pass
+from coastmon.stream import prestart_readers, run_pass
 
 
 # --------------------------------------------------------------------------- preparation
@@ -105,6 +105,7 @@ def geometry_of(path: str | Path) -> Iterator[None]:
 def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
     """Open the inputs lazily and build grid metrics, coastline, capes and frame."""
     ds = open_dataset([Path(p) for p in inputs], settings.ingest)
+    prestart_readers(ds, settings.stream)  # they import their libraries meanwhile
     lon = np.asarray(ds["lon"].values, dtype=np.float64)
     lat = np.asarray(ds["lat"].values, dtype=np.float64)
     mask = np.asarray(ds["mask"].values)

@@ -5,8 +5,8 @@ The canonical dataset (documented in ``docs/canonical-dataset.md``) has dims
 eastward/northward ``u``, ``v`` in m s-1 with NaN on land, an int8 ``mask`` (1 = sea),
 optional ``ssh`` (m) and ``bathymetry`` (m, positive down), on C-grid inputs the native
 relative vorticity ``zeta`` (s-1; circulation around the cell corners, see
-:mod:`coastmon.io.sgrid`), and the attributes ``source_files``, ``depth_m`` and
-``velocity_kind``.
+:mod:`coastmon.io.sgrid`), and the attributes ``source_files``, ``depth_m``,
+``velocity_kind`` and ``compressed_input``.
 
 Nothing here reads the (time, y, x) data except the first time step (for the land/sea
 mask and a sanity check) and one value of the last time step of each file (to catch
@@ -36,8 +36,12 @@ from coastmon.grid.operators import geostrophic_velocity
 from coastmon.io import sgrid, vertical
 from coastmon.io.units import scale_factor
 
-CHUNK_BUDGET_BYTES = 128 * 2**20
-"""Target size of one time chunk of the largest input variable (bytes)."""
+CHUNK_BUDGET_BYTES = 24 * 2**20
+"""Target size of one time chunk of the largest input variable (bytes). The pass holds one
+chunk per compute thread and per reader, and short chunks fill its pipeline of reads and
+computation sooner; below glibc's 32 MiB ceiling for serving large arrays from the heap,
+the memory of a chunk read is reused for the next instead of being mapped afresh (and
+page-faulted) each time."""
 NETCDF_CHUNK_CACHE_BYTES = 4 * 2**20
 """Chunk cache of each variable of each NetCDF-4 file opened for reading (the library's
 default, 64 MB, stays allocated while the file is open: with many input files it grew
@@ -549,9 +553,21 @@ def _combine(files: list[Path], kinds: list[str], first: xr.Dataset, plan: _Plan
                              compat="override", join="override")
         static = opened[0][2].drop_vars(timed)
         combined = xr.merge([combined, static], compat="override", join="override")
+    combined.attrs["_compressed"] = int(_compressed(first[main]))
     combined.attrs["_files"] = json.dumps([str(p.resolve()) for _, p, _ in opened])
     combined.attrs["_lengths"] = json.dumps([int(ds.sizes[plan.tdim]) for _, _, ds in opened])
     return combined
+
+
+_FILTER_KEYS = ("zlib", "szip", "zstd", "bzip2", "blosc", "compression", "compressor",
+                "compressors")
+
+
+def _compressed(var: xr.DataArray) -> bool:
+    """Whether the variable is stored compressed (NetCDF-4/HDF5 filters, Zarr compressors),
+    from the encoding the backend reports."""
+    enc = var.encoding
+    return any(enc.get(key) not in (None, False, 0, "", "none", (), []) for key in _FILTER_KEYS)
 
 
 def _probe_last(ds: xr.Dataset, name: str | None, tdim: str, path: Path) -> None:
@@ -853,6 +869,7 @@ def open_dataset(paths: list[str | Path], settings: IngestSettings,
     builder = _Builder(raw, plan, settings, where, need_time)
     out = builder.build()
     out.attrs["source_files"] = json.dumps(file_list)
+    out.attrs["compressed_input"] = int(raw.attrs.get("_compressed", 0))
     if "u" in out:
         sea = out["mask"].values == 1
         out["u"] = _guarded(out["u"], sea, MAX_SPEED_M_S, "u (m s-1)", file_list, lengths)

@@ -39,9 +39,9 @@ Rules for new data:
 Settings: those stored in the state win. A later call may pass the defaults (no settings
 file) or the very same settings; anything else is refused with
 :class:`~coastmon.errors.SettingsError`. Settings that do not change the statistics (the
-run options ``stream.scheduler`` and ``stream.progress``, and the ``output`` section) are
-taken from the call where it sets them to something other than the default, and are
-otherwise the stored ones.
+run options ``stream.scheduler``, ``stream.progress`` and ``stream.read_processes``, and
+the ``output`` section) are taken from the call where it sets them to something other than
+the default, and are otherwise the stored ones.
 """
 
 from __future__ import annotations
@@ -91,7 +91,7 @@ OUTPUTS = "outputs"
 GAP_FACTOR = 1.5
 """A step longer than this many record time steps is a gap."""
 _TIME_UNITS = "seconds since 1970-01-01 00:00:00"
-_RUN_ONLY = (("stream", "scheduler"), ("stream", "progress"))
+_RUN_ONLY = (("stream", "scheduler"), ("stream", "progress"), ("stream", "read_processes"))
 
 
 # --------------------------------------------------------------------------- result

@@ -99,6 +99,12 @@ def _legend_corner(mask2d: np.ndarray | None) -> str:
 
 def _save(fig: Figure, path: str | os.PathLike[str]) -> Path:
     final = Path(path)
+    engine = fig.get_layout_engine()
+    if engine is not None:
+        # Lay the figure out once and fix it: with an engine attached, savefig would draw
+        # twice (a layout pass without rendering, then the picture), laying out each time.
+        engine.execute(fig)
+        fig.set_layout_engine("none")
     with atomic_path(final) as tmp:
         fig.savefig(tmp, format="png", dpi=DPI, facecolor="white")
     return final

@@ -8,7 +8,13 @@ from coastmon.stream.moments import (
     merge_states,
     save_state,
 )
-from coastmon.stream.pass_ import PassResult, SeriesFile, run_pass, stats_from_state
+from coastmon.stream.pass_ import (
+    PassResult,
+    SeriesFile,
+    prestart_readers,
+    run_pass,
+    stats_from_state,
+)
 
 __all__ = [
     "FORMAT_VERSION",
@@ -18,6 +24,7 @@ __all__ = [
     "grid_signature",
     "load_state",
     "merge_states",
+    "prestart_readers",
     "run_pass",
     "save_state",
     "stats_from_state",

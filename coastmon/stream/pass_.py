@@ -42,8 +42,9 @@ from coastmon.config import StreamSettings
 from coastmon.errors import InputError, SettingsError
 from coastmon.grid.metrics import GridMetrics
 from coastmon.grid.operators import gradient
-from coastmon.stream import kernels
+from coastmon.stream import kernels, readers
 from coastmon.stream.moments import MomentState, grid_signature, time_text
+from coastmon.stream.readers import ProcessReader, read_chunk
 
 OPEN_FILES = 4
 """Input files kept open during the pass (xarray's file cache): the reader goes through
@@ -168,30 +169,6 @@ def _input_array(ds: xr.Dataset, name: str):
     return data
 
 
-def _one_block(x: da.Array):
-    """A dask array of one block as a delayed object, else the array itself.
-
-    Computing a one-block dask array copies the result (dask's guard against handing out
-    a buffer held by the graph); the pass only reads its input blocks, and that copy cost
-    as much as reading an uncompressed file from the page cache.
-    """
-    parts = x.to_delayed().ravel()
-    return parts[0] if parts.size == 1 else x
-
-
-def _read_chunk(arrays, t0: int, t1: int) -> tuple[list, float]:
-    """Read one time chunk of every input (dask arrays computed synchronously here)."""
-    start = time.perf_counter()
-    blocks = [None if a is None else a[t0:t1] for a in arrays]
-    lazy = [_one_block(b) for b in blocks if isinstance(b, da.Array)]
-    if lazy:
-        computed = iter(dask.compute(*lazy, scheduler="synchronous"))
-        blocks = [next(computed) if isinstance(b, da.Array) else b for b in blocks]
-    blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray) else b)
-              for b in blocks]
-    return blocks, time.perf_counter() - start
-
-
 class _Inline:
     """An executor that runs each task at once in the calling thread."""
 
@@ -280,6 +257,40 @@ def _time_bounds(arrays: list, nt: int) -> list[tuple[int, int]]:
         sizes = [step] * (nt // step) + ([nt % step] if nt % step else [])
     edges = np.concatenate([[0], np.cumsum(sizes)]).astype(int)
     return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:], strict=True)]
+
+
+def _local_plan(ds: xr.Dataset, settings: StreamSettings, arrays, n_chunks: int):
+    """Compute threads, reader processes and chunks in flight of a pass on local threads.
+
+    One compute thread per core (one in all when the kernels may not run concurrently);
+    reader processes as :func:`coastmon.stream.readers.read_processes` decides for a
+    compressed input, else one reader thread; in flight, one chunk per compute thread
+    and per reader (the reader thread counting one).
+    """
+    ncpu = os.cpu_count() or 1
+    if not kernels.concurrent_calls_safe():
+        return 1, 0, 2
+    workers = max(1, min(ncpu, n_chunks))
+    nbytes = sum(int(a.dtype.itemsize) * int(np.prod(a.shape)) for a in arrays if a is not None)
+    n_readers = readers.read_processes(settings.read_processes,
+                                       bool(ds.attrs.get("compressed_input", 0)), nbytes, ncpu)
+    return workers, n_readers, workers + max(1, n_readers)
+
+
+def prestart_readers(ds: xr.Dataset, settings: StreamSettings) -> None:
+    """Start the reader processes that :func:`run_pass` will use on ``ds`` now.
+
+    They take a second or two to import their libraries; started before the geometry is
+    built, they are ready when the pass begins. Does nothing when the pass would read in
+    a thread (uncompressed or short input, one core, a dask scheduler).
+    """
+    names = [n for n in INPUT_VARIABLES if n in ds.data_vars]
+    if settings.scheduler or "u" not in names or ds.sizes.get("time", 0) < 1:
+        return  # no local pass, or run_pass will say what is wrong
+    arrays = [_input_array(ds, n) if n in names else None for n in INPUT_VARIABLES]
+    _, n_readers, window = _local_plan(ds, settings, arrays,
+                                       len(_time_bounds(arrays, ds.sizes["time"])))
+    readers.prestart(n_readers, window)
 
 
 def _groups(ds: xr.Dataset, seasonal: bool) -> np.ndarray:
@@ -408,10 +419,9 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             workers = max(1, len(client.nthreads()))
             kernel_threads = max(1, ncpu // nthreads)
         else:
-            nthreads = workers = max(1, min(ncpu, len(bounds)))
+            workers, n_readers, window = _local_plan(ds, settings, arrays, len(bounds))
+            nthreads = workers
             inline = not kernels.concurrent_calls_safe()
-            if inline:
-                nthreads = workers = 1
             kernel_threads = max(1, ncpu // workers)
         consts = _Constants(
             gx=np.ascontiguousarray(metrics.gx), gy=np.ascontiguousarray(metrics.gy),
@@ -427,23 +437,39 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
                                                            groups)
         else:
             # One reader thread reads the chunks in order, so the input is read as one
-            # uninterrupted stream (decompression is serial anyway), while the workers
-            # compute; at most `window` chunks are read and not yet merged.
-            window = nthreads + 1
+            # uninterrupted stream, while the workers compute; on compressed input a few
+            # reader processes decompress several chunks at once instead. At most
+            # `window` chunks are read and not yet merged.
             if inline:
                 # Kernels may not run in two threads at once: everything in this thread
                 # (each kernel still uses every core).
                 reader, pool = _Inline(), _Inline()
             else:
-                reader = ThreadPoolExecutor(max_workers=1, thread_name_prefix="coastmon-read")
+                if n_readers:
+                    # Compressed input: several chunks decompressed at once, in processes.
+                    reader = readers.take(n_readers, window)
+                    try:
+                        reader.start(arrays, max(b - a for a, b in bounds), OPEN_FILES)
+                    except readers.CannotShip:
+                        reader.close()
+                        if settings.read_processes:
+                            raise
+                        n_readers, window = 0, workers + 1  # cannot ship: read in a thread
+                if not n_readers:
+                    reader = ThreadPoolExecutor(max_workers=1,
+                                                thread_name_prefix="coastmon-read")
                 pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="coastmon-pass",
                                           initializer=_yield_to_reader)
             workspaces = queue.SimpleQueue()
             for _ in range(workers):
                 workspaces.put(kernels.Workspace())
+            counter = iter(range(len(bounds)))
 
             def submit(t0, t1):
-                read = reader.submit(_read_chunk, arrays, t0, t1)
+                if n_readers:
+                    read = reader.submit(next(counter), t0, t1)
+                else:
+                    read = reader.submit(read_chunk, arrays, t0, t1)
                 return pool.submit(_process_read, read, groups[t0:t1], consts, workspaces)
 
             def collect(future):
@@ -470,10 +496,12 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
                     progress(done, len(bounds))
         finally:
             bar.close()
-            if reader is not None:
-                reader.shutdown(wait=True, cancel_futures=True)
             if pool is not None:
                 pool.shutdown(wait=True, cancel_futures=True)
+            if isinstance(reader, ProcessReader):
+                reader.close()
+            elif reader is not None:
+                reader.shutdown(wait=True, cancel_futures=True)
     finally:
         if client is not None:
             client.close()
