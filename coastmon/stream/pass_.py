@@ -56,6 +56,10 @@ SCRATCH_BYTES_PER_POINT = 16
 """Kernel scratch per grid point and time step: ζ (for sampling) and Okubo–Weiss W (for
 the eddy-core count), both float64."""
 
+SERIES_BUFFER_BYTES = 4 * 2**20
+"""Sampled series gathered per file before they are written (bytes): a few MB per file
+turn one small write per station and chunk into one per station and a few dozen chunks."""
+
 SERIES_VARIABLES = ("u", "v", "zeta", "ssh")
 INPUT_VARIABLES = ("u", "v", "ssh", "zeta")
 """Variables read from the canonical dataset, in the order the chunk tasks take them; a
@@ -546,7 +550,10 @@ class SeriesFile:
     contiguous block, so reading one station (as the per-station analyses do) touches only
     that station's pages. Blocks of time steps are written with positioned writes (no
     memory map), so the series already written do not stay in the process's memory;
-    :meth:`open` gives the ``(time, station, k)`` view of the file.
+    consecutive blocks are gathered up to :data:`SERIES_BUFFER_BYTES` first, so that each
+    station gets one write per gathered block rather than one per chunk of the pass.
+    :meth:`close` writes what is gathered; :meth:`open` gives the ``(time, station, k)``
+    view of the file.
     """
 
     def __init__(self, path: Path, shape: tuple[int, ...]) -> None:
@@ -559,21 +566,43 @@ class SeriesFile:
         self.n_time = nt
         self.step_bytes = 4 * int(np.prod(rest))
         self.fd = os.open(path, os.O_WRONLY)
+        self._held: list[np.ndarray] = []
+        self._held_t0 = 0
+        self._held_steps = 0
 
     def write(self, t0: int, values: np.ndarray) -> None:
         """Write ``values`` ``(steps, station, k)`` at time steps ``t0, t0 + 1, ...``."""
-        blocks = np.ascontiguousarray(np.swapaxes(values, 0, 1), dtype=np.float32)
+        if self._held and t0 != self._held_t0 + self._held_steps:
+            self.flush()
+        if not self._held:
+            self._held_t0 = t0
+        self._held.append(np.asarray(values, dtype=np.float32))
+        self._held_steps += values.shape[0]
+        if self._held_steps * self.step_bytes * values.shape[1] >= SERIES_BUFFER_BYTES:
+            self.flush()
+
+    def flush(self) -> None:
+        """Write the gathered blocks, station by station."""
+        if not self._held:
+            return
+        values = self._held[0] if len(self._held) == 1 else np.concatenate(self._held)
+        blocks = np.ascontiguousarray(np.swapaxes(values, 0, 1))
         for s, block in enumerate(blocks):
             data = memoryview(block).cast("B")
-            at = self.offset + (s * self.n_time + t0) * self.step_bytes
+            at = self.offset + (s * self.n_time + self._held_t0) * self.step_bytes
             done = 0
             while done < len(data):
                 done += os.pwrite(self.fd, data[done:], at + done)
+        self._held, self._held_steps = [], 0
 
     def close(self) -> None:
         if self.fd >= 0:
-            os.close(self.fd)
-            self.fd = -1
+            try:
+                self.flush()
+            finally:
+                os.close(self.fd)
+                self.fd = -1
+                self._held, self._held_steps = [], 0
 
     def open(self) -> np.ndarray:
         """The written series as a read-only, disk-backed ``(time, station, k)`` view."""
