@@ -271,10 +271,11 @@ class _Worker:
         self.log.seek(0)
         tail = self.log.read().decode("utf-8", "replace").strip().splitlines()[-3:]
         said = f" It said: {' / '.join(tail)}" if tail else ""
+        code = self.proc.returncode
+        how = (f"was killed (signal {-code}), most likely by the system for lack of memory"
+               if code is not None and code < 0 else f"ended with exit status {code}")
         return InputError(
-            f"A reader process of the streaming pass stopped (exit status "
-            f"{self.proc.returncode}), most likely killed by the system for lack of "
-            f"memory.{said}",
+            f"A reader process of the streaming pass stopped: it {how}.{said}",
             where="streaming pass, reading the input",
             todo="Free memory, set a smaller ingest.time_chunk, or set "
             "stream.read_processes = 0 to read in one thread")
