@@ -33,6 +33,8 @@ distribution with the (robust) spread of the gate's speed estimates, truncated a
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -45,6 +47,8 @@ from coastmon.io.pages import release
 from coastmon.signals import centroid_speed, propagation_speed, wavenumber_frequency
 
 G = 9.80665
+GATE_THREADS = 4
+"""Most threads measuring the gates at once (one per core up to this)."""
 
 
 @dataclass
@@ -102,17 +106,16 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
     rh = series["ray_ssh"].values if has_ssh else None
     ray_lon, ray_lat = frame.ray_lon, frame.ray_lat
     direction = frame.stations["ray_dir"].values
-    stations, fractions, speeds, sds, eke_ts, pws, glon, glat = [], [], [], [], [], [], [], []
-    for s in range(ru.shape[1]):
-        if s % 8 == 7:
-            release(ru, rv, rz, rh)  # keep the series' pages from piling up in memory
+
+    def one_gate(s: int):
+        """The gate quantities of station ``s``, or None where its ray has no gate."""
         if direction[s] == 0 or not np.isfinite(ray_lon[s, win]).all():
-            continue
+            return None
         u = np.asarray(ru[:, s, win], dtype=np.float64)
         v = np.asarray(rv[:, s, win], dtype=np.float64)
         z = np.asarray(rz[:, s, win], dtype=np.float64)
         if not (np.isfinite(u).mean() > 0.9 and np.isfinite(v).mean() > 0.9):
-            continue
+            return None
         u = u - np.nanmean(u, axis=0)
         v = v - np.nanmean(v, axis=0)
         z = z - np.nanmean(z, axis=0)
@@ -143,14 +146,22 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
             # No coherent propagation on this ray (the Radon scan ran to near-vertical
             # lines): the speed is not measurable here.
             speed, sd = np.nan, np.nan
-        stations.append(s)
-        fractions.append(fraction)
-        speeds.append(speed)
-        sds.append(sd if np.isfinite(sd) or not np.isfinite(speed) else 0.0)
-        eke_ts.append(0.5 * np.mean(u**2 + v**2, axis=1))
-        pws.append(pw)
-        glon.append(ray_lon[s, gate_i])
-        glat.append(ray_lat[s, gate_i])
+        sd = sd if np.isfinite(sd) or not np.isfinite(speed) else 0.0
+        return (s, fraction, speed, sd, 0.5 * np.mean(u**2 + v**2, axis=1), pw,
+                ray_lon[s, gate_i], ray_lat[s, gate_i])
+
+    # Stations on all cores (the FFTs and the compiled Radon scan release the GIL), in
+    # blocks whose series pages are released after each, so they do not pile up in memory.
+    rows = []
+    workers = max(1, min(os.cpu_count() or 1, GATE_THREADS))
+    block = 8 * workers
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        for b0 in range(0, ru.shape[1], block):
+            rows += [r for r in pool.map(one_gate, range(b0, min(ru.shape[1], b0 + block)))
+                     if r is not None]
+            release(ru, rv, rz, rh)
+    stations, fractions, speeds, sds, eke_ts, pws, glon, glat = (
+        [r[k] for r in rows] for k in range(8))
     if not stations:
         return _empty_gates(series)
     return GateSet(
