@@ -100,7 +100,8 @@ class StreamSettings:
     """Eddy cores are where Okubo-Weiss W < -ow_threshold * sigma_W (sigma_W per snapshot)."""
     read_processes: int | None = None
     """Processes that read (decompress) the input's chunks in parallel; None = one per
-    core, up to 4, when the input is compressed (else 0); 0 = one reader thread."""
+    core, up to 4, when the input is compressed and at least 1 GiB decoded (else 0);
+    0 = one reader thread (always so where processes are not supported: not POSIX)."""
 
 
 @dataclass(frozen=True)

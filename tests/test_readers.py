@@ -65,6 +65,12 @@ def test_how_many_reader_processes():
     assert readers.read_processes(0, True, 2 * gib, 16) == 0
 
 
+def test_no_reader_processes_where_they_cannot_be_fed(monkeypatch):
+    monkeypatch.setattr(readers, "PROCESSES_SUPPORTED", False)  # as on Windows
+    assert readers.read_processes(None, True, 2**31, 16) == 0
+    assert readers.read_processes(4, True, 2**31, 16) == 0
+
+
 def test_ingest_says_whether_the_input_is_compressed(tmp_path):
     (tmp_path / "z").mkdir()
     (tmp_path / "p").mkdir()

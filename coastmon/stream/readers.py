@@ -49,6 +49,8 @@ are busy with the compiled kernels too)."""
 MIN_PROCESS_READ_BYTES = 2**30
 """Smallest decoded record read in processes by default: starting a reader process costs
 about 2 s of CPU time (its libraries), which a short record does not pay back."""
+PROCESSES_SUPPORTED = os.name == "posix"
+"""Reader processes need POSIX (descriptors handed down to a child with ``pass_fds``)."""
 SLOT_ALIGN = 64
 """Byte alignment of each variable inside a slot."""
 
@@ -86,7 +88,9 @@ def read_processes(setting: int | None, compressed: bool, nbytes: int, ncpu: int
     """Number of reader processes: the setting, or (None) one per core up to
     :data:`MAX_READ_PROCESSES` when the input is compressed, holds at least
     :data:`MIN_PROCESS_READ_BYTES` once decoded, and there are 2 cores or more; 0 means
-    the reader thread."""
+    the reader thread (always, where processes cannot be fed as here: not POSIX)."""
+    if not PROCESSES_SUPPORTED:
+        return 0
     if setting is not None:
         return max(0, int(setting))
     if not compressed or nbytes < MIN_PROCESS_READ_BYTES or ncpu < 2:
