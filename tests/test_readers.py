@@ -19,7 +19,7 @@ from coastmon.config import IngestSettings
 from coastmon.errors import InputError
 from coastmon.io.ingest import open_dataset
 from coastmon.stream import readers
-from coastmon.stream.pass_ import INPUT_VARIABLES, _input_array, _time_bounds
+from coastmon.stream.pass_ import INPUT_VARIABLES, _input_arrays, _time_bounds
 
 INGEST = IngestSettings(u_var="u", v_var="v", mask_var="mask")
 
@@ -51,7 +51,7 @@ def write_record(folder: Path, n_files=3, nt=9, ny=30, nx=40, zlib=True, bad_at=
 
 
 def arrays_of(ds):
-    return [_input_array(ds, n) if n in ds.data_vars else None for n in INPUT_VARIABLES]
+    return _input_arrays(ds, [n for n in INPUT_VARIABLES if n in ds.data_vars])
 
 
 def test_how_many_reader_processes():

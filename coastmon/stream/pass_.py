@@ -31,6 +31,7 @@ from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import NamedTuple
 
 import dask
 import dask.array as da
@@ -263,22 +264,35 @@ def _time_bounds(arrays: list, nt: int) -> list[tuple[int, int]]:
     return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:], strict=True)]
 
 
-def _local_plan(ds: xr.Dataset, settings: StreamSettings, arrays, n_chunks: int):
+def _input_arrays(ds: xr.Dataset, names: list[str]) -> list:
+    """The inputs in :data:`INPUT_VARIABLES` order (:func:`_input_array`), None if absent."""
+    return [_input_array(ds, n) if n in names else None for n in INPUT_VARIABLES]
+
+
+class _Plan(NamedTuple):
+    workers: int
+    n_readers: int
+    window: int
+    inline: bool
+
+
+def _local_plan(ds: xr.Dataset, settings: StreamSettings, arrays, n_chunks: int) -> _Plan:
     """Compute threads, reader processes and chunks in flight of a pass on local threads.
 
-    One compute thread per core (one in all when the kernels may not run concurrently);
-    reader processes as :func:`coastmon.stream.readers.read_processes` decides for a
-    compressed input, else one reader thread; in flight, one chunk per compute thread
-    and per reader (the reader thread counting one).
+    One compute thread per core, or everything inline in the calling thread when the
+    kernels may not run concurrently; reader processes as
+    :func:`coastmon.stream.readers.read_processes` decides for a compressed input, else
+    one reader thread; in flight, one chunk per compute thread and per reader (the reader
+    thread counting one).
     """
     ncpu = os.cpu_count() or 1
     if not kernels.concurrent_calls_safe():
-        return 1, 0, 2
+        return _Plan(1, 0, 2, True)
     workers = max(1, min(ncpu, n_chunks))
     nbytes = sum(int(a.dtype.itemsize) * int(np.prod(a.shape)) for a in arrays if a is not None)
     n_readers = readers.read_processes(settings.read_processes,
                                        bool(ds.attrs.get("compressed_input", 0)), nbytes, ncpu)
-    return workers, n_readers, workers + max(1, n_readers)
+    return _Plan(workers, n_readers, workers + max(1, n_readers), False)
 
 
 def prestart_readers(ds: xr.Dataset, settings: StreamSettings) -> None:
@@ -291,10 +305,9 @@ def prestart_readers(ds: xr.Dataset, settings: StreamSettings) -> None:
     names = [n for n in INPUT_VARIABLES if n in ds.data_vars]
     if settings.scheduler or "u" not in names or ds.sizes.get("time", 0) < 1:
         return  # no local pass, or run_pass will say what is wrong
-    arrays = [_input_array(ds, n) if n in names else None for n in INPUT_VARIABLES]
-    _, n_readers, window = _local_plan(ds, settings, arrays,
-                                       len(_time_bounds(arrays, ds.sizes["time"])))
-    readers.prestart(n_readers, window)
+    arrays = _input_arrays(ds, names)
+    plan = _local_plan(ds, settings, arrays, len(_time_bounds(arrays, ds.sizes["time"])))
+    readers.prestart(plan.n_readers, plan.window)
 
 
 def _groups(ds: xr.Dataset, seasonal: bool) -> np.ndarray:
@@ -389,7 +402,7 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
     has_h = "ssh" in names
     workdir = Path(workdir)
     workdir.mkdir(parents=True, exist_ok=True)
-    arrays = [_input_array(ds, n) if n in names else None for n in INPUT_VARIABLES]
+    arrays = _input_arrays(ds, names)
     nt = ds.sizes["time"]
     bounds = _time_bounds(arrays, nt)
     groups = _groups(ds, settings.seasonal)
@@ -423,9 +436,8 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             workers = max(1, len(client.nthreads()))
             kernel_threads = max(1, ncpu // nthreads)
         else:
-            workers, n_readers, window = _local_plan(ds, settings, arrays, len(bounds))
+            workers, n_readers, window, inline = _local_plan(ds, settings, arrays, len(bounds))
             nthreads = workers
-            inline = not kernels.concurrent_calls_safe()
             kernel_threads = max(1, ncpu // workers)
         consts = _Constants(
             gx=np.ascontiguousarray(metrics.gx), gy=np.ascontiguousarray(metrics.gy),
@@ -528,7 +540,7 @@ def _distributed_submitter(client, ds, names, bounds, consts, groups):
     """Submit chunk tasks to a dask.distributed cluster; constants are scattered once."""
     if ds["u"].chunks is None:
         ds = ds[names].chunk({"time": bounds[0][1] - bounds[0][0]})
-    lazy = [_input_array(ds, n) if n in names else None for n in INPUT_VARIABLES]
+    lazy = _input_arrays(ds, names)
     consts_future = client.scatter(consts, broadcast=True)
 
     def submit(t0, t1):
@@ -564,7 +576,7 @@ class SeriesFile:
         self.offset = header.offset
         del header
         self.n_time = nt
-        self.step_bytes = 4 * int(np.prod(rest))
+        self.step_bytes = 4 * int(np.prod(rest))  # one station, one step
         self.fd = os.open(path, os.O_WRONLY)
         self._held: list[np.ndarray] = []
         self._held_t0 = 0
@@ -578,6 +590,7 @@ class SeriesFile:
             self._held_t0 = t0
         self._held.append(np.asarray(values, dtype=np.float32))
         self._held_steps += values.shape[0]
+        # steps held x bytes per station and step x stations
         if self._held_steps * self.step_bytes * values.shape[1] >= SERIES_BUFFER_BYTES:
             self.flush()
 
