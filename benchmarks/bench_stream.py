@@ -9,9 +9,12 @@ process and its reader processes, sampled every 0.2 s):
 * ``read``   — a plain read of u and v with netCDF4, chunk by chunk, one thread, nothing
   computed;
 * ``pass``   — :func:`coastmon.stream.run_pass` on the dataset as ``coastmon analyze``
-  opens it (default settings: reader processes on the compressed record), timed from
-  starting the readers, with building the stand-in frame;
-* ``pass-thread`` — the same with ``stream.read_processes = 0`` (one reader thread);
+  opens it (default settings: on the compressed record, one reader thread whose chunks are
+  decoded on all cores by :mod:`coastmon.io.chunks`), timed from starting the readers,
+  with building the stand-in frame;
+* ``pass-library`` — the same with the chunks decoded by the netCDF4/HDF5 library, as
+  before 2026-12-02's fifth round (on the compressed record: in reader processes);
+* ``pass-thread`` — the library decoding in one reader thread (``stream.read_processes = 0``);
 * ``recipe`` — the straightforward xarray + dask recipe for the same statistics: time
   means, then anomalies, products and their means (a second read), vorticity and
   Okubo–Weiss with ``xarray.apply_ufunc``.
@@ -140,13 +143,18 @@ def measure_read(path: Path) -> dict:
     return {"work_s": time.perf_counter() - start, "values_read": values}
 
 
-def measure_pass(path: Path, workdir: Path, read_processes: int | None = None) -> dict:
-    """The pass on the canonical dataset as ``coastmon analyze`` opens it (its time chunks;
-    on the compressed record, reader processes unless ``read_processes`` = 0)."""
+def measure_pass(path: Path, workdir: Path, read_processes: int | None = None,
+                 library: bool = False) -> dict:
+    """The pass on the canonical dataset as ``coastmon analyze`` opens it (its time chunks
+    and reader); ``library``: every chunk decoded by the netCDF4/HDF5 library."""
     from coastmon.config import IngestSettings, StreamSettings
     from coastmon.grid.metrics import GridMetrics
+    from coastmon.io import chunks
     from coastmon.io.ingest import open_dataset
     from coastmon.stream import prestart_readers, run_pass
+
+    if library:
+        chunks.eligible = lambda var: False
 
     ds = open_dataset([path], IngestSettings(u_var="u", v_var="v", mask_var="mask"))
     settings = StreamSettings(progress=False, read_processes=read_processes)
@@ -251,8 +259,10 @@ def _child(kind: str, path: Path, workdir: Path) -> None:
         extra = measure_read(path)
     elif kind == "pass":
         extra = measure_pass(path, workdir)
+    elif kind == "pass-library":
+        extra = measure_pass(path, workdir, library=True)
     elif kind == "pass-thread":
-        extra = measure_pass(path, workdir, read_processes=0)
+        extra = measure_pass(path, workdir, read_processes=0, library=True)
     else:
         extra = measure_recipe(path)
     wall = time.perf_counter() - start
@@ -309,7 +319,7 @@ def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     record_arguments(parser, ["plain", "zlib"])
     parser.add_argument("--runs", nargs="+", default=["read", "pass", "recipe"],
-                        choices=["read", "pass", "pass-thread", "recipe"])
+                        choices=["read", "pass", "pass-library", "pass-thread", "recipe"])
     parser.add_argument("--child", nargs=2, metavar=("KIND", "FILE"), help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.child:
@@ -324,10 +334,10 @@ def main(argv: list[str] | None = None) -> None:
             record.update(variant=variant, size_gb=path.stat().st_size / 1e9)
             results.append(record)
             print(json.dumps(record), flush=True)
-    print(f"\n{'variant':8} {'run':11} {'cache':5} {'work s':>8} {'process s':>10} "
+    print(f"\n{'variant':8} {'run':12} {'cache':5} {'work s':>8} {'process s':>10} "
           f"{'peak GB':>8} {'tree GB':>8}")
     for r in results:
-        print(f"{r['variant']:8} {r['kind']:11} {r['cache']:5} {r['work_s']:8.1f} "
+        print(f"{r['variant']:8} {r['kind']:12} {r['cache']:5} {r['work_s']:8.1f} "
               f"{r['wall_s']:10.1f} {r['peak_rss_gb']:8.2f} {r.get('peak_tree_gb', 0):8.2f}")
 
 

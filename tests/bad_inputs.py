@@ -191,7 +191,25 @@ def build_corpus(folder: Path) -> dict[str, list[Path]]:
     inf_later[250, 7, 3] = np.inf
     cases["inf_later_step"] = [write(dataset(inf_later, v), folder / "inf_later.nc")]
 
+    cases["damaged_chunk"] = [damaged_chunk_file(folder, u, v)]
+
     return cases
+
+
+def damaged_chunk_file(folder: Path, u: np.ndarray, v: np.ndarray) -> Path:
+    """The good record deflated in 10-step chunks, with bytes of u's chunk of steps 200-209
+    overwritten (a disk or transfer fault in the middle of the record)."""
+    import h5py
+
+    path = folder / "damaged_chunk.nc"
+    enc = {name: {"zlib": True, "complevel": 1, "chunksizes": (10, NY, NX)} for name in "uv"}
+    dataset(u, v).to_netcdf(path, engine="netcdf4", encoding=enc)
+    with h5py.File(path, "r") as f:
+        info = f["u"].id.get_chunk_info_by_coord((200, 0, 0))
+    with path.open("r+b") as fh:
+        fh.seek(info.byte_offset + info.size // 2)
+        fh.write(b"\x5a" * 64)
+    return path
 
 
 def holes_file(folder: Path) -> Path:

@@ -106,6 +106,7 @@ IN_PROCESS_CASES = {
     "record_too_short": ("analyze", ["sixty_days.nc", "60 days", "signals.eddy_period_days"]),
     "absurd_first_step": ("analyze", ["absurd.nc", "u (m s-1)", "y=5, x=5"]),
     "inf_later_step": ("analyze", ["inf_later.nc", "u (m s-1)", "y=7, x=3"]),
+    "damaged_chunk": ("analyze", ["damaged_chunk.nc", "'u'", "damaged"]),
     "no_velocity_coast": ("coast", ["temperature_only.nc", "ingest.mask_var"]),
     "all_land_coast": ("coast", ["all_land.nc", "no sea"]),
 }

@@ -281,8 +281,9 @@ def _local_plan(ds: xr.Dataset, settings: StreamSettings, arrays, n_chunks: int)
 
     One compute thread per core, or everything inline in the calling thread when the
     kernels may not run concurrently; reader processes as
-    :func:`coastmon.stream.readers.read_processes` decides for a compressed input, else
-    one reader thread; in flight, one chunk per compute thread and per reader (the reader
+    :func:`coastmon.stream.readers.read_processes` decides for a compressed input that the
+    HDF5 or Zarr library decodes (one thread at a time), else one reader thread (on inputs
+    that :mod:`coastmon.io.chunks` decodes, that thread decodes each chunk on all cores); in flight, one chunk per compute thread and per reader (the reader
     thread counting one).
     """
     ncpu = os.cpu_count() or 1
@@ -290,8 +291,8 @@ def _local_plan(ds: xr.Dataset, settings: StreamSettings, arrays, n_chunks: int)
         return _Plan(1, 0, 2, True)
     workers = max(1, min(ncpu, n_chunks))
     nbytes = sum(int(a.dtype.itemsize) * int(np.prod(a.shape)) for a in arrays if a is not None)
-    n_readers = readers.read_processes(settings.read_processes,
-                                       bool(ds.attrs.get("compressed_input", 0)), nbytes, ncpu)
+    serial = bool(ds.attrs.get("compressed_input", 0)) and not ds.attrs.get("threaded_decoding")
+    n_readers = readers.read_processes(settings.read_processes, serial, nbytes, ncpu)
     return _Plan(workers, n_readers, workers + max(1, n_readers), False)
 
 

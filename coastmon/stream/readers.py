@@ -86,7 +86,9 @@ def read_chunk(arrays, t0: int, t1: int) -> tuple[list, float]:
 
 def read_processes(setting: int | None, compressed: bool, nbytes: int, ncpu: int) -> int:
     """Number of reader processes: the setting, or (None) one per core up to
-    :data:`MAX_READ_PROCESSES` when the input is compressed, holds at least
+    :data:`MAX_READ_PROCESSES` when the input is compressed in a way that only its own
+    library decodes (one thread of a process at a time; not the deflated NetCDF-4 chunks
+    that :mod:`coastmon.io.chunks` decodes on all cores), holds at least
     :data:`MIN_PROCESS_READ_BYTES` once decoded, and there are 2 cores or more; 0 means
     the reader thread (always, where processes cannot be fed as here: not POSIX)."""
     if not PROCESSES_SUPPORTED:
