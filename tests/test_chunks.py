@@ -135,6 +135,34 @@ def test_index_arrays_are_read_by_the_library(shuffled_file):
     assert same_bits(got, ref[[0, 4, 9]][:, :, [1, 2, 12]])
 
 
+def test_one_decode_thread_reads_the_same(shuffled_file):
+    # check: netCDF4-python's read of the same file
+    path, ref = shuffled_file
+    chunks.set_decode_threads(1)
+    try:
+        assert chunks.decode_threads() == 1
+        got = direct(path).read_box([0, 0, 0], list(SHAPE))
+    finally:
+        chunks.set_decode_threads(None)
+    assert chunks.decode_threads() >= 1
+    assert same_bits(got, ref)
+
+
+def test_a_variable_in_too_many_chunks_is_left_to_the_library(shuffled_file, monkeypatch):
+    # check: netCDF4-python's read of the same file (the index would grow with the record)
+    path, ref = shuffled_file
+    monkeypatch.setattr(chunks, "MAX_INDEXED_CHUNKS", 10)
+    ds = xr.open_dataset(path, engine=chunks.Entrypoint, mask_and_scale=False)
+    try:
+        backend = ds["q"].variable._data
+        while not isinstance(backend, chunks.ChunkedArray):  # xarray's lazy wrappers
+            backend = backend.array
+        assert same_bits(ds["q"][1:7].values, ref[1:7])
+        assert backend.index() is None  # 4 x 3 x 3 = 36 chunks > 10
+    finally:
+        ds.close()
+
+
 def test_unwritten_chunks_read_as_the_fill_value(tmp_path):
     # check: netCDF4-python returns the fill value where HDF5 never stored a chunk
     path = tmp_path / "holes.nc"

@@ -23,6 +23,7 @@ netCDF4 library).
 from __future__ import annotations
 
 import itertools
+import math
 import os
 import sys
 import threading
@@ -50,16 +51,36 @@ FILTER_SHUFFLE = 2
 ENCODING_KEY = "coastmon_chunk_reader"
 """Encoding entry set to True on the variables :func:`open_netcdf` reads itself."""
 
+MAX_INDEXED_CHUNKS = 2**21
+"""Most chunks of one variable whose index is kept (three int64 each, 48 MB at most); a
+variable stored in more chunks than this (small tiles over a long record) is read by the
+netCDF4 library, so that memory does not grow with the record."""
+
 _POOL: ThreadPoolExecutor | None = None
 _POOL_LOCK = threading.Lock()
+_THREADS: int | None = None
 
 
 def decode_threads() -> int:
-    """Threads that decode chunks: one per core this process may run on."""
+    """Threads that decode chunks: one per core this process may run on, unless set by
+    :func:`set_decode_threads`."""
+    if _THREADS is not None:
+        return _THREADS
     try:
         return max(1, len(os.sched_getaffinity(0)))
     except AttributeError:  # pragma: no cover - not Linux
         return max(1, os.cpu_count() or 1)
+
+
+def set_decode_threads(n: int | None) -> None:
+    """Decode with ``n`` threads from now on (1 in reader processes: they are the
+    parallelism there); None: one per core again."""
+    global _THREADS, _POOL
+    with _POOL_LOCK:
+        _THREADS = None if n is None else max(1, int(n))
+        if _POOL is not None:
+            _POOL.shutdown(wait=False)
+            _POOL = None
 
 
 def _pool() -> ThreadPoolExecutor:
@@ -178,6 +199,8 @@ class ChunkIndex:
             fill = dset.fillvalue
             self.fill = np.array(0 if fill is None else fill, dtype=self.dtype)
             grid = tuple(-(-n // c) for n, c in zip(self.shape, self.chunks, strict=True))
+            if math.prod(grid) > MAX_INDEXED_CHUNKS:
+                raise ValueError(f"{math.prod(grid)} chunks")
             self.offset = np.full(grid, -1, dtype=np.int64)
             self.size = np.zeros(grid, dtype=np.int64)
             self.mask = np.zeros(grid, dtype=np.int64)
@@ -291,8 +314,9 @@ class ChunkedArray(BackendArray):
         todo = list(itertools.product(*ranges))
         fd = os.open(self.path, os.O_RDONLY)
         try:
-            if len(todo) == 1:
-                self._decode(index, fd, todo[0], lo, hi, out)
+            if len(todo) == 1 or decode_threads() == 1:
+                for at in todo:
+                    self._decode(index, fd, at, lo, hi, out)
             else:
                 jobs = [_pool().submit(self._decode, index, fd, at, lo, hi, out) for at in todo]
                 for job in jobs:

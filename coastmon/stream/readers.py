@@ -42,6 +42,7 @@ import numpy as np
 import xarray as xr
 
 from coastmon.errors import InputError
+from coastmon.io import chunks
 
 MAX_READ_PROCESSES = 4
 """Most reader processes used by default (decompression scales with them until the cores
@@ -157,6 +158,7 @@ def serve() -> None:
     except EOFError:  # started ahead of a pass that did not come
         return
     _small_chunk_cache()
+    chunks.set_decode_threads(1)  # the processes are the parallelism here
     xr.set_options(file_cache_maxsize=open_files)
     dask.config.set(scheduler="synchronous")
     slots = [_map(fd, slot_bytes) for fd in fds]
