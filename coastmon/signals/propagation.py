@@ -299,10 +299,13 @@ def _radon_energies(values, n_t, n_d, cos_t, sin_t, out):  # pragma: no cover - 
     for a in numba.prange(cos_t.shape[0]):
         c = cos_t[a]
         s = sin_t[a]
+        # r is monotone in d and in t, in floating point too (a product by a constant and
+        # a difference are monotone in each argument), so its extremes over the image lie
+        # at the corners.
         low_r = np.inf
         high_r = -np.inf
-        for t in range(n_t):
-            for d in range(n_d):
+        for t in (0, n_t - 1):
+            for d in (0, n_d - 1):
                 r = c * float(d) - s * float(t)
                 low_r = min(low_r, r)
                 high_r = max(high_r, r)
