@@ -31,21 +31,26 @@ CHUNKS = (3, 7, 5)  # edge chunks on every axis
 
 
 def write_nc(path, dtype="f4", shuffle=True, endian="native", chunksizes=CHUNKS,
-             fletcher32=False, complevel=4, written=None):
-    """One variable ``q`` (time, y, x) with NaN/fill holes, deflated in chunks."""
+             fletcher32=False, complevel=4, written=None, layout="deflate"):
+    """One variable ``q`` (time, y, x) with NaN/fill holes: deflated in chunks (``layout``
+    "deflate"), chunked without compression ("chunked") or "contiguous" (fixed time axis)."""
     rng = np.random.default_rng(3)
     if endian == "big":
         dtype = np.dtype(dtype).newbyteorder(">")
     data = (rng.standard_normal(SHAPE) * 50).astype(dtype)
     if np.dtype(dtype).kind == "f":
         data[2, 3:9, 4] = np.nan
+    options = {"zlib": True, "complevel": complevel, "shuffle": shuffle,
+               "chunksizes": chunksizes, "fletcher32": fletcher32}
+    if layout == "chunked":
+        options.update(zlib=False, shuffle=False)
+    elif layout == "contiguous":
+        options = {"contiguous": True}
     with netCDF4.Dataset(path, "w") as nc:
-        nc.createDimension("time", None)
+        nc.createDimension("time", SHAPE[0] if layout == "contiguous" else None)
         nc.createDimension("y", SHAPE[1])
         nc.createDimension("x", SHAPE[2])
-        var = nc.createVariable("q", dtype, ("time", "y", "x"), zlib=True, complevel=complevel,
-                                shuffle=shuffle, endian=endian, chunksizes=chunksizes,
-                                fletcher32=fletcher32)
+        var = nc.createVariable("q", dtype, ("time", "y", "x"), endian=endian, **options)
         steps = range(SHAPE[0]) if written is None else written
         for t in steps:
             var[t] = data[t]
@@ -72,24 +77,38 @@ def same_bits(a, b):
         b.astype(b.dtype.newbyteorder("=")).view(f"u{b.dtype.itemsize}"))
 
 
-@pytest.mark.parametrize("dtype,shuffle,endian", [
-    ("f4", True, "native"), ("f4", False, "native"), ("f8", True, "native"),
-    ("i2", True, "native"), ("i4", True, "big"), ("f4", True, "big"), ("u1", True, "native"),
+@pytest.mark.parametrize("dtype,shuffle,endian,layout", [
+    ("f4", True, "native", "deflate"), ("f4", False, "native", "deflate"),
+    ("f8", True, "native", "deflate"), ("i2", True, "native", "deflate"),
+    ("i4", True, "big", "deflate"), ("f4", True, "big", "deflate"),
+    ("u1", True, "native", "deflate"), ("f4", False, "native", "chunked"),
+    ("f4", False, "native", "contiguous"), ("i2", False, "big", "contiguous"),
+    ("f8", False, "native", "contiguous"),
 ])
-def test_whole_variable_matches_the_netcdf_library(tmp_path, dtype, shuffle, endian):
+def test_whole_variable_matches_the_netcdf_library(tmp_path, dtype, shuffle, endian, layout):
     # check: netCDF4-python (netCDF-C over HDF5) reads the same bits from the same file
     path = tmp_path / "q.nc"
-    write_nc(path, dtype=dtype, shuffle=shuffle, endian=endian)
+    write_nc(path, dtype=dtype, shuffle=shuffle, endian=endian, layout=layout)
     arr = direct(path)
     assert arr.index() is not None
-    got = arr.read_box([0, 0, 0], list(SHAPE))
-    assert same_bits(got, reference(path))
+    assert arr.index().contiguous == (layout == "contiguous")
+    ref = reference(path)
+    assert same_bits(arr.read_box([0, 0, 0], list(SHAPE)), ref)
+    assert same_bits(arr.read_box([2, 5, 3], [9, 6, 11]), ref[2:9, 5:6, 3:11])
+    assert same_bits(arr.read_box([4, 0, 0], [7, SHAPE[1], SHAPE[2]]), ref[4:7])
 
 
 @pytest.fixture(scope="module")
 def shuffled_file(tmp_path_factory):
     path = tmp_path_factory.mktemp("chunks") / "q.nc"
     write_nc(path)
+    return path, reference(path)
+
+
+@pytest.fixture(scope="module")
+def contiguous_file(tmp_path_factory):
+    path = tmp_path_factory.mktemp("contiguous") / "q.nc"
+    write_nc(path, layout="contiguous")
     return path, reference(path)
 
 
@@ -111,10 +130,11 @@ def selections(draw):
 
 
 @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(key=selections())
-def test_any_selection_matches_numpy_on_the_library_read(shuffled_file, key):
+@given(key=selections(), contiguous=st.booleans())
+def test_any_selection_matches_numpy_on_the_library_read(shuffled_file, contiguous_file, key,
+                                                          contiguous):
     # check: numpy's basic indexing of the netCDF4 library's read of the whole variable
-    path, ref = shuffled_file
+    path, ref = contiguous_file if contiguous else shuffled_file
     ds = xr.open_dataset(path, engine=chunks.Entrypoint, mask_and_scale=False)
     try:
         assert ds["q"].encoding.get(chunks.ENCODING_KEY) is True
@@ -172,6 +192,22 @@ def test_unwritten_chunks_read_as_the_fill_value(tmp_path):
     assert stored < np.prod([-(-n // c) for n, c in zip(SHAPE, CHUNKS, strict=True)])
     got = direct(path).read_box([0, 0, 0], list(SHAPE))
     assert same_bits(got, reference(path))
+
+
+def test_a_contiguous_variable_never_written_reads_as_the_fill_value(tmp_path):
+    # check: netCDF4-python returns the fill value where HDF5 allocated no storage
+    path = tmp_path / "empty.nc"
+    with netCDF4.Dataset(path, "w") as nc:
+        nc.createDimension("t", 6)
+        nc.createDimension("x", 5)
+        nc.createVariable("q", "f4", ("t", "x"), contiguous=True, fill_value=-9.5)
+    with netCDF4.Dataset(path) as nc:
+        var = nc["q"]
+        var.set_auto_maskandscale(False)
+        want = np.asarray(var[:])
+        arr = chunks.ChunkedArray(str(path), "q", var.shape, var.dtype, fallback=None)
+    assert arr.index() is not None and arr.index().offset < 0
+    assert same_bits(arr.read_box([1, 0], [4, 5]), want[1:4])
 
 
 def test_a_chunk_stored_with_a_filter_skipped(tmp_path):
@@ -271,11 +307,11 @@ def test_ingest_decodes_deflated_inputs_itself(tmp_path, monkeypatch):
     ds.to_netcdf(tmp_path / "in.nc", encoding={"u": packed, "v": packed})
     ingest = IngestSettings(u_var="u", v_var="v")
     out = open_dataset([tmp_path / "in.nc"], ingest)
-    assert out.attrs["compressed_input"] == 1 and out.attrs["threaded_decoding"] == 1
+    assert out.attrs["compressed_input"] == 1 and out.attrs["direct_read"] == 1
     with monkeypatch.context() as m:  # the same files, every variable read by the library
         m.setattr(chunks, "eligible", lambda var: False)
         ref = open_dataset([tmp_path / "in.nc"], ingest)
-    assert ref.attrs["threaded_decoding"] == 0
+    assert ref.attrs["direct_read"] == 0
     for name in ("u", "v"):
         assert same_bits(out[name].values, ref[name].values)
         assert np.isnan(out[name].values[:, :3, :4]).all()
@@ -287,8 +323,8 @@ def test_no_reader_processes_for_inputs_decoded_in_threads(tmp_path, monkeypatch
     monkeypatch.setattr(os, "cpu_count", lambda: 4)
     out = xr.Dataset({"u": (("time", "y", "x"), np.zeros((8, 3, 4), "f4"))})
     arrays = _input_arrays(out, ["u"])
-    out.attrs.update(compressed_input=1, threaded_decoding=0)
+    out.attrs.update(compressed_input=1, direct_read=0)
     assert _local_plan(out, StreamSettings(), arrays, 4).n_readers > 0
-    out.attrs.update(threaded_decoding=1)
+    out.attrs.update(direct_read=1)
     assert _local_plan(out, StreamSettings(), arrays, 4).n_readers == 0
     assert _local_plan(out, StreamSettings(read_processes=2), arrays, 4).n_readers == 2

@@ -6,7 +6,7 @@ eastward/northward ``u``, ``v`` in m s-1 with NaN on land, an int8 ``mask`` (1 =
 optional ``ssh`` (m) and ``bathymetry`` (m, positive down), on C-grid inputs the native
 relative vorticity ``zeta`` (s-1; circulation around the cell corners, see
 :mod:`coastmon.io.sgrid`), and the attributes ``source_files``, ``depth_m``,
-``velocity_kind``, ``compressed_input`` and ``threaded_decoding``.
+``velocity_kind``, ``compressed_input`` and ``direct_read``.
 
 Nothing here reads the (time, y, x) data except the first time step (for the land/sea
 mask and a sanity check) and one value of the last time step of each file (to catch
@@ -555,7 +555,7 @@ def _combine(files: list[Path], kinds: list[str], first: xr.Dataset, plan: _Plan
         static = opened[0][2].drop_vars(timed)
         combined = xr.merge([combined, static], compat="override", join="override")
     combined.attrs["_compressed"] = int(_compressed(first[main]))
-    combined.attrs["_chunk_reader"] = int(bool(first[main].encoding.get(chunk_reader.ENCODING_KEY)))
+    combined.attrs["_direct_read"] = int(bool(first[main].encoding.get(chunk_reader.ENCODING_KEY)))
     combined.attrs["_files"] = json.dumps([str(p.resolve()) for _, p, _ in opened])
     combined.attrs["_lengths"] = json.dumps([int(ds.sizes[plan.tdim]) for _, _, ds in opened])
     return combined
@@ -872,7 +872,7 @@ def open_dataset(paths: list[str | Path], settings: IngestSettings,
     out = builder.build()
     out.attrs["source_files"] = json.dumps(file_list)
     out.attrs["compressed_input"] = int(raw.attrs.get("_compressed", 0))
-    out.attrs["threaded_decoding"] = int(raw.attrs.get("_chunk_reader", 0))
+    out.attrs["direct_read"] = int(raw.attrs.get("_direct_read", 0))
     if "u" in out:
         sea = out["mask"].values == 1
         out["u"] = _guarded(out["u"], sea, MAX_SPEED_M_S, "u (m s-1)", file_list, lengths)

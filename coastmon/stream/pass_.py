@@ -291,7 +291,7 @@ def _local_plan(ds: xr.Dataset, settings: StreamSettings, arrays, n_chunks: int)
         return _Plan(1, 0, 2, True)
     workers = max(1, min(ncpu, n_chunks))
     nbytes = sum(int(a.dtype.itemsize) * int(np.prod(a.shape)) for a in arrays if a is not None)
-    serial = bool(ds.attrs.get("compressed_input", 0)) and not ds.attrs.get("threaded_decoding")
+    serial = bool(ds.attrs.get("compressed_input", 0)) and not ds.attrs.get("direct_read")
     n_readers = readers.read_processes(settings.read_processes, serial, nbytes, ncpu)
     return _Plan(workers, n_readers, workers + max(1, n_readers), False)
 
