@@ -328,3 +328,17 @@ def test_no_reader_processes_for_inputs_decoded_in_threads(tmp_path, monkeypatch
     out.attrs.update(direct_read=1)
     assert _local_plan(out, StreamSettings(), arrays, 4).n_readers == 0
     assert _local_plan(out, StreamSettings(read_processes=2), arrays, 4).n_readers == 2
+
+
+def test_a_contiguous_variable_cut_short_is_one_clear_error(tmp_path):
+    path = tmp_path / "q.nc"
+    write_nc(path, layout="contiguous")
+    index = chunks.ChunkIndex(str(path), "q")
+    cut = tmp_path / "cut.nc"
+    cut.write_bytes(path.read_bytes()[:int(index.offset) + 4 * 17 * 13 * 5 + 7])
+    arr = chunks.ChunkedArray(str(cut), "q", SHAPE, "f4", fallback=None)
+    arr._index = index  # the index as read before the file was cut
+    assert arr.read_box([0, 0, 0], [5, 17, 13]).shape == (5, 17, 13)
+    with pytest.raises(InputError) as err:
+        arr.read_box([0, 0, 0], [7, 17, 13])
+    assert "'q'" in str(err.value) and "truncated" in str(err.value) and str(cut) in str(err.value)

@@ -244,7 +244,12 @@ def _read_into(fd: int, buf: np.ndarray, offset: int) -> None:
     view = memoryview(buf.reshape(-1).view(np.uint8))
     done = 0
     while done < view.nbytes:
-        got = os.preadv(fd, [view[done:]], offset + done)
+        if hasattr(os, "preadv"):
+            got = os.preadv(fd, [view[done:]], offset + done)
+        else:  # pragma: no cover - systems without preadv: read, then copy
+            data = os.pread(fd, view.nbytes - done, offset + done)
+            got = len(data)
+            view[done:done + got] = data
         if got <= 0:
             raise ValueError("the file ends inside the variable")
         done += got
