@@ -301,7 +301,7 @@ class ChunkedArray(BackendArray):
                 try:
                     index = ChunkIndex(self.path, self.name)
                     ok = index.shape == self.shape
-                except (ValueError, KeyError, OSError):
+                except (ValueError, KeyError, OSError, ImportError):  # left to the library
                     ok = False
                 self._index = index if ok else False
             return self._index or None
@@ -388,15 +388,17 @@ class ChunkedArray(BackendArray):
                 try:
                     _read_into(fd, target[where], start + int(np.dot(first, strides)))
                 except (ValueError, OSError) as exc:
-                    raise InputError(
-                        f"The variable '{self.name}' cannot be read ({exc}); the file is "
-                        "damaged or truncated", where=self.path,
-                        todo="Check the file with a NetCDF tool, or copy it again") from None
+                    raise self._damaged(f"The variable '{self.name}' cannot be read",
+                                        exc) from None
         finally:
             os.close(fd)
         if target is not out:
             out[...] = target
         return out
+
+    def _damaged(self, what: str, exc: Exception) -> InputError:
+        return InputError(f"{what} ({exc}); the file is damaged or truncated",
+                          where=self.path, todo="Check the file with a NetCDF tool, or copy it again")
 
     def _decode(self, index: ChunkIndex, fd: int, at: tuple, lo, hi, out: np.ndarray) -> None:
         src, dst = [], []
@@ -412,22 +414,18 @@ class ChunkedArray(BackendArray):
         try:
             data = _read_exact(fd, int(index.size[at]), offset)
             skipped = int(index.mask[at])
-            raw = None
-            for k in reversed(range(len(index.filters))):
+            for k in reversed(range(len(index.filters))):  # undo the filters, last first
                 if skipped >> k & 1:
                     continue
                 if index.filters[k] == FILTER_DEFLATE:
                     data = inflate(data, index.nbytes)
                 else:
-                    raw = unshuffle(data, index.dtype.itemsize)
-                    data = raw
+                    data = unshuffle(data, index.dtype.itemsize)
             if len(data) != index.nbytes:
                 raise ValueError(f"{len(data)} bytes, expected {index.nbytes}")
         except (ValueError, OSError) as exc:
-            raise InputError(
-                f"A compressed chunk of the variable '{self.name}' cannot be decoded ({exc}); "
-                "the file is damaged or truncated", where=self.path,
-                todo="Check the file with a NetCDF tool, or copy it again") from None
+            raise self._damaged(f"A chunk of the variable '{self.name}' cannot be decoded",
+                                exc) from None
         chunk = np.frombuffer(data, dtype=index.dtype).reshape(index.chunks)
         out[tuple(dst)] = chunk[tuple(src)]
 
