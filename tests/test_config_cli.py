@@ -92,3 +92,13 @@ def test_an_internal_error_is_reported_without_a_traceback(tmp_path, monkeypatch
     assert "internal error" in err and "Traceback" not in err
     saved = err.split("traceback is in ")[1].split(";")[0]
     assert "planted bug" in open(saved).read()
+
+
+def test_the_command_starts_without_the_slow_scipy_modules():
+    # check: common practice, no source (scipy.signal and scipy.stats take about a second
+    # to import; analyze, coast and update need neither, only `compare` and the tests do)
+    code = ("import sys, coastmon.cli, coastmon.pipeline; "
+            "print([m for m in ('scipy.signal', 'scipy.stats') if m in sys.modules])")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True)
+    assert out.stdout.strip() == "[]"

@@ -19,9 +19,8 @@ from typing import Literal
 import numba
 import numpy as np
 import scipy.fft
-import scipy.signal
+import scipy.special
 from scipy.optimize import minimize_scalar
-from scipy.stats import t as student_t
 
 from coastmon.compiled import compiled
 from coastmon.errors import RecordError
@@ -118,6 +117,15 @@ class SpeedEstimate:
     level: float
 
 
+def _hann(n: int) -> np.ndarray:
+    """Periodic Hann window of ``n`` points, 0.5 - 0.5 cos(2 pi k / n), computed as
+    ``scipy.signal.windows.hann(n, sym=False)`` computes it (same bits; written here so that
+    the command need not import ``scipy.signal``, about a second)."""
+    if n <= 1:
+        return np.ones(n)
+    return 0.5 + 0.5 * np.cos(np.linspace(-np.pi, np.pi, n + 1)[:-1])
+
+
 def _complete_block(field: np.ndarray) -> tuple[np.ndarray, tuple[int, int]]:
     """Longest run of distance columns with a complete (all finite) record."""
     data = np.asarray(field, dtype=float)
@@ -202,8 +210,7 @@ def wavenumber_frequency(field: np.ndarray, dt: float, dd: float,
     n_t, n_d = data.shape
     detrended = detrend_time(data)
     if taper:
-        window = np.outer(scipy.signal.windows.hann(n_t, sym=False),
-                          scipy.signal.windows.hann(n_d, sym=False))
+        window = np.outer(_hann(n_t), _hann(n_d))
     else:
         window = np.ones_like(detrended)
     spectrum = scipy.fft.fft(scipy.fft.rfft(detrended * window, axis=0), axis=1)
@@ -472,7 +479,7 @@ def propagation_speed(field: np.ndarray, dt: float, dd: float,
     speed = radon_speed(data, dt, dd, direction=searched)
     parts = np.array([radon_speed(data[i * segment:(i + 1) * segment], dt, dd,
                                   direction=searched) for i in range(n_segments)])
-    half = float(student_t.ppf(0.5 * (1.0 + level), n_segments - 1)
+    half = float(scipy.special.stdtrit(n_segments - 1, 0.5 * (1.0 + level))
                  * np.std(parts, ddof=1) / np.sqrt(n_segments))
     return SpeedEstimate(speed=speed, speed_lo=speed - half, speed_hi=speed + half,
                          spectral_speed=spectral, direction=sign, n_segments=n_segments,
