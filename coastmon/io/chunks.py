@@ -173,8 +173,10 @@ def unshuffle(data: bytes | np.ndarray, itemsize: int) -> np.ndarray:
     whole = _WHOLE.get(itemsize)
     if itemsize <= 1:
         dst[:] = src
+    elif whole is not None and src.size % itemsize == 0 and itemsize == 4:
+        _unshuffle4(src, dst.view(whole))
     elif whole is not None and src.size % itemsize == 0:
-        _unshuffle4(src, dst.view(whole)) if itemsize == 4 else _unshuffle8(src, dst.view(whole))
+        _unshuffle8(src, dst.view(whole))
     else:
         _unshuffle_bytes(src, itemsize, dst)
     return dst
@@ -183,8 +185,9 @@ def unshuffle(data: bytes | np.ndarray, itemsize: int) -> np.ndarray:
 class ChunkIndex:
     """Where the data of one HDF5 dataset lie in its file, and how they are encoded.
 
-    A contiguous dataset is one chunk the size of the whole array (``contiguous`` True,
-    never filtered); a chunked one has an offset, stored size and filter mask per chunk.
+    A contiguous dataset has one ``offset`` (``contiguous`` True; never filtered); a chunked
+    one has an offset, stored size and filter mask per chunk, its ``filters`` and the
+    decoded size ``nbytes`` of a chunk.
     """
 
     def __init__(self, path: str, name: str) -> None:
@@ -206,10 +209,7 @@ class ChunkIndex:
                 if stored not in (0, math.prod(self.shape) * self.dtype.itemsize):
                     raise ValueError(f"contiguous storage of {stored} bytes")
                 start = dset.id.get_offset()
-                self.filters = []
-                self.chunks = self.shape
-                self.offset = np.array(-1 if start is None else start, dtype=np.int64)
-                self.nbytes = math.prod(self.shape) * self.dtype.itemsize
+                self.offset = -1 if start is None else int(start)
                 return
             if layout != h5py.h5d.CHUNKED or dset.chunks is None:
                 raise ValueError("neither contiguous nor chunked")
@@ -239,8 +239,9 @@ class ChunkIndex:
         self.nbytes = int(np.prod(self.chunks)) * self.dtype.itemsize
 
 
-def _read_into(fd: int, buf: np.ndarray, offset: int) -> None:
-    """Fill the contiguous array ``buf`` with the bytes of the file from ``offset`` on."""
+def _read_into(fd: int, buf: np.ndarray, offset: int, what: str) -> np.ndarray:
+    """Fill the contiguous array ``buf`` with the bytes of the file from ``offset`` on
+    (ValueError naming ``what`` if the file ends first); returns ``buf``."""
     view = memoryview(buf.reshape(-1).view(np.uint8))
     done = 0
     while done < view.nbytes:
@@ -251,18 +252,9 @@ def _read_into(fd: int, buf: np.ndarray, offset: int) -> None:
             got = len(data)
             view[done:done + got] = data
         if got <= 0:
-            raise ValueError("the file ends inside the variable")
+            raise ValueError(f"the file ends inside {what}")
         done += got
-
-
-def _read_exact(fd: int, size: int, offset: int) -> bytes:
-    data = os.pread(fd, size, offset)
-    while len(data) < size:
-        more = os.pread(fd, size - len(data), offset + len(data))
-        if not more:
-            raise ValueError("the file ends inside a chunk")
-        data += more
-    return data
+    return buf
 
 
 class ChunkedArray(BackendArray):
@@ -369,7 +361,7 @@ class ChunkedArray(BackendArray):
         The box is read in runs, each as long as the trailing dimensions it spans whole
         allow (one run for whole time steps).
         """
-        start = int(index.offset)
+        start = index.offset
         if start < 0:  # never written
             out[...] = index.fill
             return out
@@ -386,7 +378,8 @@ class ChunkedArray(BackendArray):
                 first = lead + tuple(lo[axis:])
                 where = tuple(i - a for i, a in zip(lead, lo, strict=False))
                 try:
-                    _read_into(fd, target[where], start + int(np.dot(first, strides)))
+                    _read_into(fd, target[where], start + int(np.dot(first, strides)),
+                               "the variable")
                 except (ValueError, OSError) as exc:
                     raise self._damaged(f"The variable '{self.name}' cannot be read",
                                         exc) from None
@@ -412,7 +405,7 @@ class ChunkedArray(BackendArray):
             out[tuple(dst)] = index.fill
             return
         try:
-            data = _read_exact(fd, int(index.size[at]), offset)
+            data = _read_into(fd, np.empty(int(index.size[at]), np.uint8), offset, "a chunk")
             skipped = int(index.mask[at])
             for k in reversed(range(len(index.filters))):  # undo the filters, last first
                 if skipped >> k & 1:
