@@ -1,13 +1,18 @@
 """The ``coastmon`` command line: parse options, call the pipeline, report errors plainly.
 
 No science lives here. User errors (:class:`coastmon.errors.CoastmonError`) are printed as
-one paragraph on stderr with exit status 2 and no traceback; an interrupt exits 130.
+one paragraph on stderr with exit status 2 and no traceback. SIGINT, SIGTERM and SIGHUP stop
+the run, remove its temporary folders and exit with 128 + the signal number (130, 143, 129);
+when the result was already complete the run reports that and exits 0.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
+import signal
 import sys
+import warnings
 from pathlib import Path
 
 from coastmon import __version__
@@ -152,43 +157,120 @@ def main(argv: list[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 0
-    from coastmon import pipeline  # imported late so --help stays fast
+    from coastmon.io import owned
 
+    previous = owned.install_signal_handlers()
     try:
+        with warnings.catch_warnings():
+            _library_warnings_policy()
+            return _run(args)
+    finally:
+        owned.remove_all_registered()
+        owned.restore_signal_handlers(previous)
+
+
+def _library_warnings_policy() -> None:
+    """No library warnings on a user's terminal: numeric RuntimeWarnings (all-NaN slices,
+    division by zero; coastmon counts and reports missing data itself) and every warning
+    raised outside coastmon (dask chunking, xarray, netCDF4) are ignored; coastmon's own
+    warnings are printed as one line each."""
+    warnings.filterwarnings("ignore", module=r"(?!coastmon(\.|$))")
+    warnings.simplefilter("ignore", RuntimeWarning)
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        _say(f"coastmon: warning: {message}")
+
+    warnings.showwarning = show
+
+
+def _say(text: str) -> None:
+    """Print on stderr; a closed stderr is no reason to fail."""
+    try:
+        print(text, file=sys.stderr, flush=True)
+    except (OSError, ValueError):
+        pass
+
+
+def _print_result(text: str) -> None:
+    from coastmon.io.atomic import publication_notes
+
+    notes = [f"  note: {n}" for n in publication_notes()]
+    print("\n".join([text, *notes]), flush=True)
+
+
+def _run(args: argparse.Namespace) -> int:
+    from coastmon.io import owned
+    from coastmon.io.atomic import publication_notes
+
+    publication_notes()  # start with none
+    try:
+        from coastmon import pipeline  # imported late so --help stays fast
+
         if args.command == "analyze":
             result = pipeline.analyze(args.inputs, args.out, settings_from_args(args))
-            print(result.summary_text())
+            _print_result(result.summary_text())
         elif args.command == "coast":
             result = pipeline.coast(args.input, args.out, settings_from_args(args))
-            print(result.summary_text())
+            _print_result(result.summary_text())
         elif args.command == "compare":
             from coastmon.assess.compare import compare_folders
 
             result = compare_folders(args.a_dir, args.b_dir, args.out)
-            print(result.summary_text())
+            _print_result(result.summary_text())
         elif args.command == "update":
             from coastmon.monitor.state import update
 
             result = update(args.state_dir, args.inputs, settings_from_args(args),
                             allow_gaps=args.allow_gaps)
-            print(result.summary_text())
+            _print_result(result.summary_text())
         elif args.command == "demo":
             text = pipeline.demo(args.out, variant=args.variant, progress=not args.no_progress)
-            print(text)
+            _print_result(text)
     except CoastmonError as exc:
-        print(f"coastmon: {exc}", file=sys.stderr)
+        _say(f"coastmon: {exc}")
         return exc.exit_code
-    except KeyboardInterrupt:
-        print("coastmon: interrupted; nothing was written to the output folder.", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        signum = getattr(exc, "signum", int(signal.SIGINT))
+        name = getattr(exc, "name", "SIGINT")
+        owned.remove_all_registered()
+        done = owned.completed()
+        if done:
+            _say(f"coastmon: {name} arrived after the results were complete; they are kept, "
+                 f"complete, in {done[-1]} (exit status 0).")
+            return 0
+        _say(f"coastmon: interrupted ({name}); nothing was written to the output folder (its "
+             "earlier content, if any, is unchanged) and the temporary files were removed.")
+        return 128 + signum
+    except BrokenPipeError:
+        _silence_stdout()
+        done = owned.completed()
+        if done:
+            _say(f"coastmon: the output pipe closed before the summary was printed; the "
+                 f"results are complete in {done[-1]}.")
+            return 0
+        _say("coastmon: the output pipe closed; the run stopped and nothing was written to "
+             "the output folder.")
+        return 128 + int(getattr(signal, "SIGPIPE", 13))
     except Exception as exc:  # a bug in coastmon, not a user error: keep the details
         report = _save_traceback(exc)
-        print(f"coastmon: internal error ({type(exc).__name__}: {exc}). This is a bug in "
-              f"coastmon, not in your input; nothing was written to the output folder. The "
-              f"full traceback is in {report}; please include it when you report the problem.",
-              file=sys.stderr)
+        done = owned.completed()
+        state = (f"the results in {done[-1]} are complete" if done
+                 else "nothing was written to the output folder")
+        _say(f"coastmon: internal error ({type(exc).__name__}: {exc}). This is a bug in "
+             f"coastmon, not in your input; {state}. The full traceback is in {report}; "
+             "please include it when you report the problem.")
         return 1
     return 0
+
+
+def _silence_stdout() -> None:
+    """Point stdout at /dev/null so the interpreter's last flush does not fail again."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError):
+        pass
 
 
 def _save_traceback(exc: BaseException) -> str:

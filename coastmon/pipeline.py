@@ -20,9 +20,8 @@ import hashlib
 import json
 import platform
 import shutil
-import tempfile
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -50,6 +49,7 @@ from coastmon.grid.metrics import GridMetrics, beta_parameter
 from coastmon.io.atomic import atomic_write_text, output_error, staging_dir
 from coastmon.io.gis import write_layers
 from coastmon.io.ingest import open_dataset
+from coastmon.io.owned import owned_dir
 from coastmon.io.results import CAUTIONS, write_results
 from coastmon.signals import (
     cwt_morlet,
@@ -423,8 +423,13 @@ class AnalyzeResult:
         return "\n".join(lines)
 
 
-def analyze(inputs: list[str | Path], out: str | Path, settings: Settings) -> AnalyzeResult:
-    """The whole job: see the module docstring."""
+def analyze(inputs: list[str | Path], out: str | Path, settings: Settings,
+            add_to_stage: Callable[[Path], None] | None = None) -> AnalyzeResult:
+    """The whole job: see the module docstring.
+
+    ``add_to_stage`` (used by :func:`demo`) may add files to the staged result before it
+    is published, so that they are published with it, as one result.
+    """
     timings: dict[str, float] = {}
     t = time.perf_counter()
     inputs = [Path(p) for p in inputs]
@@ -434,7 +439,7 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings) -> An
     check_record_length(days.size, float(np.median(np.diff(days))), settings,
                         where=f"time axis of {', '.join(str(p) for p in inputs)}")
     timings["prepare_s"] = time.perf_counter() - t
-    with staging_dir(out) as stage, tempfile.TemporaryDirectory(prefix="coastmon-work-") as work:
+    with staging_dir(out) as stage, owned_dir("coastmon-work-") as work:
         t = time.perf_counter()
         try:
             result = run_pass(prep.ds, prep.metrics, prep.frame, settings.stream, Path(work))
@@ -461,6 +466,8 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings) -> An
         timings["outputs_s"] = time.perf_counter() - t
         # Written again so that run.json also carries the time the outputs took.
         atomic_write_text(stage / "run.json", json.dumps(provenance, indent=2, default=str))
+        if add_to_stage is not None:
+            add_to_stage(stage)
     return AnalyzeResult(out, products, timings)
 
 
@@ -516,19 +523,33 @@ def demo(out: str | Path, variant: str = "default", progress: bool = True) -> st
 
     params = {"default": default_params, "straight": straight_coast_params,
               "western": western_boundary_params}[variant]()
+    params_factory = {"default": "default_params", "straight": "straight_coast_params",
+                      "western": "western_boundary_params"}
     out = Path(out).resolve()
-    data_dir = out.parent / f".{out.name}-scenario"
-    data_dir.mkdir(parents=True, exist_ok=True)
-    try:
+    with owned_dir("coastmon-demo-") as data_dir:
         nc, truth_path = make_scenario(params, data_dir)
         settings = Settings()
         if not progress:
             settings = settings.replace("stream", progress=False)
-        result = analyze([nc], out, settings)
-        shutil.copy2(truth_path, out / "planted_truth.json")
-    finally:
-        shutil.rmtree(data_dir, ignore_errors=True)
-    truth = json.loads((out / "planted_truth.json").read_text())
+
+        def add_demo_files(stage: Path) -> None:
+            # The scenario input is a temporary file (it is made again, bit for bit, from
+            # the scenario's fixed seed): run.json says so and how to make it again.
+            shutil.copy2(truth_path, stage / "planted_truth.json")
+            run = json.loads((stage / "run.json").read_text(encoding="utf-8"))
+            run["demo"] = {
+                "variant": variant,
+                "input_kept": False,
+                "input_note": "The scenario input was a temporary file and has been removed. "
+                              "It is made again, identical, from the scenario's fixed seed by "
+                              f"'coastmon demo --variant {variant}' or, in Python, by "
+                              f"coastmon.scenario.make_scenario(coastmon.scenario."
+                              f"{params_factory[variant]}(), FOLDER).",
+            }
+            atomic_write_text(stage / "run.json", json.dumps(run, indent=2, default=str))
+
+        result = analyze([nc], out, settings, add_to_stage=add_demo_files)
+        truth = json.loads(truth_path.read_text(encoding="utf-8"))
     return result.summary_text() + "\n" + truth_comparison(result.products.sources, truth)
 
 

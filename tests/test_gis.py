@@ -239,9 +239,9 @@ def test_disk_full_becomes_output_error(tmp_path, monkeypatch):
 
 def test_staging_publishes_and_keeps_user_files(tmp_path):
     out = tmp_path / "out"
-    out.mkdir()
+    with staging_dir(out) as stage:
+        (stage / "sources.csv").write_text("stale")
     (out / "notes.txt").write_text("mine")
-    (out / "sources.csv").write_text("stale")
     with staging_dir(out) as stage:
         assert stage.parent == tmp_path and stage.name.startswith(".out.partial-")
         (stage / "sources.csv").write_text("fresh")

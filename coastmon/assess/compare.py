@@ -55,7 +55,7 @@ from scipy.stats import norm, spearmanr
 
 from coastmon.errors import InputError, OutputError
 from coastmon.grid.metrics import haversine_m
-from coastmon.io.atomic import atomic_write_text, staging_dir
+from coastmon.io.atomic import atomic_write_text, check_result_folder, staging_dir
 from coastmon.io.results import CAUTIONS, read_results
 from coastmon.report import figures as _fig
 from coastmon.report.html import _css, _figures, _value
@@ -406,6 +406,8 @@ def compare_folders(a_dir: str | os.PathLike[str], b_dir: str | os.PathLike[str]
     coastmon.errors.OutputError
         ``out`` is one of the compared folders, or cannot be written.
     """
+    for folder in (a_dir, b_dir):
+        check_result_folder(Path(folder))  # not one left half-published by a killed run
     a = read_run_folder(a_dir)
     b = read_run_folder(b_dir)
     out = _check_out(Path(out), a.path, b.path)

@@ -11,6 +11,9 @@ on the same frame.
 
 Layout of ``STATE_DIR``::
 
+    coastmon-state.json  the marker: format, format version, a random state id (written
+                       first, when the folder is made; coastmon writes into, and cleans, only
+                       a folder that carries it, or a new or empty one)
     current            name of the committed version folder (the pointer)
     v000003/           manifest.json (format version, settings, record, history),
                        moments.npz (accumulators), times.npz (time steps seen)
@@ -22,7 +25,10 @@ Nothing is ever pickled: ``.npz`` files are read with ``allow_pickle=False``, th
 JSON and NetCDF. Crash safety: an update writes a *new* version folder and then replaces
 the pointer with :func:`os.replace` (atomic on POSIX and Windows); an update that dies
 before that leaves the previous version current and usable, and the next call removes the
-leftovers (partial folders, uncommitted series files) and starts again from it. The
+leftovers and starts again from it. Only leftovers coastmon can prove it wrote are removed,
+and only after the new inputs were checked: version folders whose owner marker carries the
+state id, its own temporary file names, and series files in ``store/`` with its own name
+pattern that no committed version lists; anything else in the folder is never touched. The
 outputs are refreshed (atomically, as a whole) just before the pointer moves, so after a
 crash between the two the outputs can be one update ahead of the state until the next call.
 
@@ -51,9 +57,9 @@ import dataclasses
 import datetime as _dt
 import json
 import os
+import re
 import secrets
 import shutil
-import tempfile
 import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
@@ -70,8 +76,9 @@ from coastmon.config import Settings, settings_from_dict
 from coastmon.errors import InputError, OutputError, RecordError, SettingsError
 from coastmon.geometry import Coastline, Frame, Segment, local_projection
 from coastmon.grid.metrics import GridMetrics, coriolis_parameter
-from coastmon.io.atomic import atomic_write_text, staging_dir
+from coastmon.io.atomic import RESULT_MANIFEST, atomic_write_text, staging_dir
 from coastmon.io.ingest import open_dataset
+from coastmon.io.owned import critical, note_complete, owned_dir, read_marker, write_marker
 from coastmon.monitor.events import shedding_events
 from coastmon.stream import (
     SeriesFile,
@@ -85,6 +92,8 @@ from coastmon.stream.moments import grid_signature
 
 STATE_FORMAT_VERSION = 1
 """Layout version of a monitoring state; a state with another version is refused."""
+STATE_MARKER = "coastmon-state.json"
+"""The marker file that makes a folder provably a coastmon monitoring state."""
 POINTER = "current"
 STORE = "store"
 OUTPUTS = "outputs"
@@ -292,20 +301,162 @@ def _current(state_dir: Path) -> str | None:
     return name
 
 
-def _clean_leftovers(state_dir: Path, current: str | None, keep_store: set[str]) -> None:
-    """Remove what an interrupted update left: partial and superseded version folders,
-    staging folders of the outputs, and series files no committed version refers to."""
+_VERSION = re.compile(r"v\d{6}")
+_PARTIAL_VERSION = re.compile(r"\.v\d{6}\.partial-[0-9a-f]{8}")
+_ROOT_TEMP = re.compile(r"\.(current|coastmon-state)\.tmp-[0-9a-f]{8}(\.json)?")
+_STORE_FILE = re.compile(
+    r"(series-\d{6}-[0-9a-f]{6}\.nc(\.part)?|(grid|frame|coastline|capes)\.npz\.part)")
+_GEOMETRY = ("grid.npz", "coastline.npz", "capes.npz", "frame.npz")
+
+
+def _not_a_state(state_dir: Path, why: str) -> OutputError:
+    return OutputError(
+        f"The folder is not a coastmon monitoring state ({why}); coastmon update writes only "
+        f"into a new or empty folder or into a state it created, and changed nothing here",
+        where=str(state_dir),
+        todo="Give the folder of an existing monitoring state, or a new (or empty) folder to "
+             "start one",
+    )
+
+
+def _read_state_marker(state_dir: Path) -> str:
+    """The state id of a marked state folder (refuses a damaged or foreign marker)."""
+    path = state_dir / STATE_MARKER
+    try:
+        marker = json.loads(path.read_text(encoding="utf-8"))
+        ok = (marker.get("format") == "coastmon monitoring state"
+              and isinstance(marker.get("state_id"), str)
+              and re.fullmatch(r"[0-9a-f]{16}", marker["state_id"]) is not None)
+    except (OSError, ValueError, UnicodeDecodeError, AttributeError):
+        ok = False
+    if not ok:
+        raise InputError(
+            f"The monitoring state's marker file ({STATE_MARKER}) is damaged",
+            where=str(path),
+            todo="The state folder was edited or damaged; start a new state folder from the "
+                 "full record (coastmon changed nothing here)",
+        )
+    version = marker.get("format_version")
+    if not isinstance(version, int) or version != STATE_FORMAT_VERSION:
+        raise InputError(
+            f"The monitoring state has format version {version}; this coastmon "
+            f"({__version__}) reads version {STATE_FORMAT_VERSION}",
+            where=str(path),
+            todo="Use the coastmon version that wrote the state, or start a new state folder",
+        )
+    return str(marker["state_id"])
+
+
+def _claim(state_dir: Path) -> tuple[str, bool]:
+    """Make sure ``state_dir`` is (or becomes) a marked monitoring state.
+
+    Returns the state id and whether the folder was made by this call. A new or empty
+    folder gets the marker first of all; an existing folder must carry it. A non-empty
+    folder without it is refused before anything in it is touched.
+    """
+    made = False
+    if not state_dir.exists():
+        try:
+            state_dir.mkdir(parents=True)
+        except FileExistsError:
+            pass
+        except OSError as exc:
+            raise OutputError(f"Cannot create the monitoring state folder ({exc.strerror})",
+                              where=str(state_dir),
+                              todo="Choose a folder you may write to") from None
+        else:
+            made = True
+    if (state_dir / STATE_MARKER).exists() or (state_dir / STATE_MARKER).is_symlink():
+        return _read_state_marker(state_dir), made
+    try:
+        entries = [p.name for p in state_dir.iterdir()]
+    except OSError as exc:
+        raise OutputError(f"Cannot read the monitoring state folder ({exc.strerror})",
+                          where=str(state_dir), todo="Check the folder's permissions") from None
+    if entries and not _legacy_state(state_dir):
+        raise _not_a_state(state_dir, f"it holds {len(entries)} entr"
+                           f"{'y' if len(entries) == 1 else 'ies'} but no {STATE_MARKER}")
+    state_id = secrets.token_hex(8)
+    marker = {"format": "coastmon monitoring state", "format_version": STATE_FORMAT_VERSION,
+              "state_id": state_id, "coastmon_version": __version__,
+              "created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
+              "note": "Written by coastmon update; coastmon writes into and cleans this folder "
+                      "because this file is here."}
+    try:
+        fd = os.open(state_dir / STATE_MARKER, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o644)
+        try:
+            os.write(fd, json.dumps(marker, indent=1).encode("utf-8"))
+        finally:
+            os.close(fd)
+    except FileExistsError:
+        return _read_state_marker(state_dir), made
+    except OSError as exc:
+        raise OutputError(f"Cannot write into the monitoring state folder ({exc.strerror})",
+                          where=str(state_dir), todo="Choose a folder you may write to") from None
+    return state_id, made
+
+
+def _legacy_state(state_dir: Path) -> bool:
+    """A state written before the marker existed: its pointer names a version folder whose
+    manifest is a monitoring-state manifest (it gets the marker; its old version folders,
+    which carry no owner marker, are never removed)."""
+    try:
+        name = (state_dir / POINTER).read_text(encoding="utf-8").strip()
+        manifest = json.loads((state_dir / name / "manifest.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError, UnicodeDecodeError):
+        return False
+    return (_VERSION.fullmatch(name) is not None and isinstance(manifest, dict)
+            and manifest.get("format") == "coastmon monitoring state")
+
+
+def _ours(folder: Path, state_id: str) -> bool:
+    """A version folder (final or partial) that this state's updates wrote."""
+    if folder.is_symlink() or not folder.is_dir():
+        return False
+    record = read_marker(folder)
+    return record is not None and record.get("state_id") == state_id
+
+
+def _clean_leftovers(state_dir: Path, current: str | None, keep_store: set[str],
+                     state_id: str) -> None:
+    """Remove what interrupted updates left, and only what they provably wrote: version
+    folders (partial or superseded) whose owner marker carries the state id, coastmon's own
+    temporary file names, and series files (coastmon's name pattern) no committed version
+    lists. Everything else is left alone."""
     for p in state_dir.iterdir():
-        stale_version = p.is_dir() and p.name.startswith("v") and p.name[1:].isdigit() \
-            and p.name != current
-        partial = p.name.startswith(".") and p.name != ".lock"
-        if stale_version or partial:
-            shutil.rmtree(p, ignore_errors=True) if p.is_dir() else p.unlink(missing_ok=True)
+        if p.name == current:
+            continue
+        if (_VERSION.fullmatch(p.name) or _PARTIAL_VERSION.fullmatch(p.name)) \
+                and _ours(p, state_id):
+            shutil.rmtree(p, ignore_errors=True)
+        elif _ROOT_TEMP.fullmatch(p.name) and p.is_file() and not p.is_symlink():
+            p.unlink(missing_ok=True)
     store = state_dir / STORE
-    if store.is_dir():
+    if store.is_dir() and not store.is_symlink():
         for p in store.iterdir():
-            if p.name not in keep_store:
+            if (p.name not in keep_store and _STORE_FILE.fullmatch(p.name) and p.is_file()
+                    and not p.is_symlink()):
                 p.unlink(missing_ok=True)
+
+
+def _discard_new_state(state_dir: Path, made: bool, state_id: str) -> None:
+    """Undo a first update that failed: remove what it wrote, and the folder if it made it."""
+    _clean_leftovers(state_dir, None, set(), state_id)
+    store = state_dir / STORE
+    if store.is_dir() and not store.is_symlink():
+        for name in _GEOMETRY:
+            with contextlib.suppress(OSError):
+                (store / name).unlink()
+        with contextlib.suppress(OSError):
+            store.rmdir()
+    if (state_dir / OUTPUTS / RESULT_MANIFEST).is_file():
+        return  # outputs were published: the marker stays, so they stay provably ours
+    for name in (".lock", STATE_MARKER):
+        with contextlib.suppress(OSError):
+            (state_dir / name).unlink()
+    if made:
+        with contextlib.suppress(OSError):
+            state_dir.rmdir()
 
 
 def _read_manifest(state_dir: Path, name: str) -> dict[str, Any]:
@@ -341,14 +492,21 @@ def _commit(state_dir: Path, number: int, manifest: dict[str, Any], moments, see
     name = f"v{number:06d}"
     partial = state_dir / f".{name}.partial-{secrets.token_hex(4)}"
     partial.mkdir()
+    write_marker(partial, "state-version", state_id=manifest["state_id"])
     save_state(moments, partial / "moments.npz")
     _savez(partial / "times.npz", {"seen_s": np.asarray(seen_s, np.float64)})
     atomic_write_text(partial / "manifest.json", json.dumps(manifest, indent=2, default=str))
     final = state_dir / name
-    if final.exists():
-        shutil.rmtree(final)
-    os.replace(partial, final)
-    _switch_pointer(state_dir, name)
+    with critical():
+        if final.exists() or final.is_symlink():
+            if not _ours(final, manifest["state_id"]):
+                shutil.rmtree(partial, ignore_errors=True)
+                raise _not_a_state(state_dir, f"a folder '{name}' that coastmon did not write "
+                                   "stands where the next version goes")
+            shutil.rmtree(final)
+        os.replace(partial, final)
+        _switch_pointer(state_dir, name)
+        note_complete(str(state_dir))
     return name
 
 
@@ -560,26 +718,30 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
             raise OutputError(
                 "An input lies inside the monitoring state folder", where=str(rp),
                 todo="Keep the input files outside the state folder")
-    fresh = not state_dir.exists()
+    state_id, made = _claim(state_dir)
+    new_state = True
     try:
         try:
-            (state_dir / STORE).mkdir(parents=True, exist_ok=True)
+            (state_dir / STORE).mkdir(exist_ok=True)
         except OSError as exc:
             raise OutputError(f"Cannot create the monitoring state folder ({exc.strerror})",
                               where=str(state_dir),
                               todo="Choose a folder you may write to") from None
         with _locked(state_dir):
             current = _current(state_dir)
+            new_state = current is None
             manifest = _read_manifest(state_dir, current) if current else None
-            keep = (set(manifest["store_files"]) | set(manifest["series_parts"]) if manifest
-                    else set())
-            _clean_leftovers(state_dir, current, keep)
-            with tempfile.TemporaryDirectory(prefix="coastmon-update-") as work:
+            if manifest is not None and manifest.get("state_id", state_id) != state_id:
+                raise InputError(
+                    f"The monitoring state's version folder {current} belongs to another state "
+                    f"than its marker ({STATE_MARKER})", where=str(state_dir / current),
+                    todo="The state folder was edited or damaged; start a new state folder")
+            with owned_dir("coastmon-update-") as work:
                 result = _update(state_dir, paths, settings, allow_gaps, manifest, current,
-                                 timings, Path(work))
+                                 timings, work, state_id)
     except BaseException:
-        if fresh:  # a first update that failed leaves no half-made state folder behind
-            shutil.rmtree(state_dir, ignore_errors=True)
+        if new_state:  # a first update that failed leaves no half-made state behind
+            _discard_new_state(state_dir, made, state_id)
         raise
     result.timings["total_s"] = time.perf_counter() - t0
     return result
@@ -587,7 +749,7 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
 
 def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: bool,
             manifest: dict[str, Any] | None, current: str | None,
-            timings: dict[str, float], work: Path) -> UpdateResult:
+            timings: dict[str, float], work: Path, state_id: str) -> UpdateResult:
     """The update itself; ``work`` is a temporary folder for the pass and the series."""
     store = state_dir / STORE
     where = paths[0].name if len(paths) == 1 else f"{paths[0].name} (and {len(paths) - 1} more)"
@@ -642,6 +804,9 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
             False, notes=["Every time step given was already in the state; nothing changed."],
             timings=timings)
 
+    # The inputs are checked: only now are an interrupted update's leftovers removed.
+    keep = set(manifest["store_files"]) | set(manifest["series_parts"]) if manifest else set()
+    _clean_leftovers(state_dir, current, keep, state_id)
     if created:
         store_files = save_geometry(store, lon, lat, mask, coastline, capes, frame)
     else:
@@ -689,6 +854,7 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
     new_manifest = {
         "format": "coastmon monitoring state",
         "format_version": STATE_FORMAT_VERSION,
+        "state_id": state_id,
         "coastmon_version": __version__,
         "created": manifest["created"] if manifest else now,
         "updated": now,
@@ -723,12 +889,16 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
             "grid_shape": list(metrics.shape), "deformation_radius_km": ld_km,
             "history": history,
         }
-        with staging_dir(state_dir / OUTPUTS) as stage:
+        # The outputs are published and the state committed in one section that holds
+        # back SIGINT/SIGTERM/SIGHUP: an interrupt lands before both or after both.
+        with staging_dir(state_dir / OUTPUTS, after_publish=lambda: _commit(
+                state_dir, number, new_manifest, merged, seen_all)) as stage:
             pipeline.write_outputs(stage, prep, products, settings, provenance, series=series)
             events.to_csv(stage / "events.csv", index=False)
         timings["outputs_s"] = time.perf_counter() - t
-    _commit(state_dir, number, new_manifest, merged, seen_all)
-    _clean_leftovers(state_dir, f"v{number:06d}", set(store_files) | set(parts))
+    else:
+        _commit(state_dir, number, new_manifest, merged, seen_all)
+    _clean_leftovers(state_dir, f"v{number:06d}", set(store_files) | set(parts), state_id)
     return UpdateResult(state_dir, created, number, int(plan.new.size), plan.n_duplicate,
                         n_filled, int(seen_all.size), new_manifest["time_start"],
                         new_manifest["time_end"], products is not None, n_events, products,
@@ -759,5 +929,5 @@ def _check_same_grid(ds: xr.Dataset, lon: np.ndarray, lat: np.ndarray, mask: np.
         )
 
 
-__all__ = ["STATE_FORMAT_VERSION", "UpdateResult", "load_geometry", "save_geometry",
+__all__ = ["STATE_FORMAT_VERSION", "STATE_MARKER", "UpdateResult", "load_geometry", "save_geometry",
            "time_seconds", "update"]
