@@ -268,6 +268,7 @@ def staging_dir(out_dir: str | os.PathLike[str],
     except OSError as exc:
         raise output_error(exc, parent, "create a working folder for the outputs") from None
     try:
+        os.chmod(stage, 0o777 & ~_umask())  # mkdtemp's 0700 would become the folder's mode
         record = owned.write_marker(stage, "stage", out=str(out_dir))
     except OSError as exc:
         with suppress(OSError):
@@ -285,6 +286,12 @@ def staging_dir(out_dir: str | os.PathLike[str],
         raise output_error(exc, out_dir, "write the outputs") from None
     finally:
         owned.remove_owned(stage)
+
+
+def _umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def _staged_content(stage: Path) -> tuple[list[str], list[str]]:

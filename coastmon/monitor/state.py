@@ -55,6 +55,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import datetime as _dt
+import hashlib
 import json
 import os
 import re
@@ -287,18 +288,65 @@ def _locked(state_dir: Path) -> Iterator[None]:
         fh.close()
 
 
+def _damaged(what: str, where: Path) -> InputError:
+    return InputError(
+        f"The monitoring state is damaged: {what}", where=str(where),
+        todo="The state folder was edited or damaged; restore it from a backup, or start a new "
+             "state folder from the full record (coastmon changed nothing here)",
+    )
+
+
+def _sha256(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
 def _current(state_dir: Path) -> str | None:
+    """The committed version folder named by the pointer."""
     pointer = state_dir / POINTER
-    if not pointer.is_file():
+    if not pointer.exists() and not pointer.is_symlink():
         return None
-    name = pointer.read_text(encoding="utf-8").strip()
-    if not name or not (state_dir / name / "manifest.json").is_file():
+    try:
+        name = pointer.read_text(encoding="utf-8").strip()
+    except (OSError, UnicodeDecodeError):
+        raise _damaged("its pointer file cannot be read", pointer) from None
+    if not _VERSION.fullmatch(name):
+        raise _damaged("its pointer file does not name a version folder", pointer)
+    if not (state_dir / name / "manifest.json").is_file():
         raise InputError(
             "The monitoring state's pointer names a version folder that is missing",
             where=str(pointer),
             todo="The state folder was edited or damaged; start a new state folder",
         )
     return name
+
+
+def _manifest_digest(manifest: dict[str, Any]) -> str:
+    """Checksum of a manifest's content (every key but the checksum itself)."""
+    body = {k: v for k, v in manifest.items() if k != "manifest_sha256"}
+    text = json.dumps(body, sort_keys=True, default=str, separators=(",", ":"))
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def _verify_files(state_dir: Path, manifest: dict[str, Any], current: str) -> None:
+    """Check every file the committed version needs against the manifest's checksums."""
+    sums = manifest.get("sha256")
+    if sums is None:
+        return  # a state written before the checksums
+    needed = [f"{STORE}/{n}" for n in [*manifest["store_files"], *manifest["series_parts"]]]
+    needed += [f"{current}/moments.npz", f"{current}/times.npz"]
+    for rel in needed:
+        path = state_dir / rel
+        if not isinstance(sums, dict) or rel not in sums:
+            raise _damaged(f"its manifest holds no checksum for {rel}", state_dir / current)
+        if not path.is_file():
+            raise _damaged(f"the file {rel} is missing", path)
+        if _sha256(path) != sums[rel]:
+            raise _damaged(f"the file {rel} was changed or truncated (its checksum differs)",
+                           path)
 
 
 _VERSION = re.compile(r"v\d{6}")
@@ -467,6 +515,8 @@ def _read_manifest(state_dir: Path, name: str) -> dict[str, Any]:
         raise InputError(f"The monitoring state's manifest cannot be read ({exc})",
                          where=str(path),
                          todo="The state is damaged; start a new state folder") from None
+    if not isinstance(manifest, dict):
+        raise _damaged("its manifest is not a JSON object", path)
     version = manifest.get("format_version")
     if not isinstance(version, int) or version > STATE_FORMAT_VERSION:
         raise InputError(
@@ -483,6 +533,9 @@ def _read_manifest(state_dir: Path, name: str) -> dict[str, Any]:
             where=str(path),
             todo="Start a new state folder from the full record with this coastmon",
         )
+    if ("manifest_sha256" in manifest or "sha256" in manifest) \
+            and manifest.get("manifest_sha256") != _manifest_digest(manifest):
+        raise _damaged("its manifest was changed (its checksum differs)", path)
     return manifest
 
 
@@ -495,6 +548,10 @@ def _commit(state_dir: Path, number: int, manifest: dict[str, Any], moments, see
     write_marker(partial, "state-version", state_id=manifest["state_id"])
     save_state(moments, partial / "moments.npz")
     _savez(partial / "times.npz", {"seen_s": np.asarray(seen_s, np.float64)})
+    manifest["sha256"] = {**manifest["sha256"],
+                          **{f"{name}/{f}": _sha256(partial / f)
+                             for f in ("moments.npz", "times.npz")}}
+    manifest["manifest_sha256"] = _manifest_digest(manifest)
     atomic_write_text(partial / "manifest.json", json.dumps(manifest, indent=2, default=str))
     final = state_dir / name
     with critical():
@@ -731,6 +788,8 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
             current = _current(state_dir)
             new_state = current is None
             manifest = _read_manifest(state_dir, current) if current else None
+            if manifest is not None:
+                _verify_files(state_dir, manifest, current)
             if manifest is not None and manifest.get("state_id", state_id) != state_id:
                 raise InputError(
                     f"The monitoring state's version folder {current} belongs to another state "
@@ -872,6 +931,10 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
         "dataset_attrs": {k: light.attrs.get(k) for k in ("velocity_kind", "depth_m")},
         "store_files": store_files,
         "series_parts": parts,
+        "sha256": {**{k: v for k, v in (manifest or {}).get("sha256", {}).items()
+                      if k.startswith(f"{STORE}/")},
+                   **{f"{STORE}/{n}": _sha256(store / n) for n in [*store_files, *parts]
+                      if manifest is None or f"{STORE}/{n}" not in manifest.get("sha256", {})}},
         "inputs": inputs_seen,
         "history": history,
     }
