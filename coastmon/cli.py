@@ -166,7 +166,12 @@ def main(argv: list[str] | None = None) -> int:
             return _run(args)
     finally:
         owned.remove_all_registered()
-        owned.restore_signal_handlers(previous)
+        if argv is None:
+            # The program itself: the run is over and reported, so a signal during the
+            # interpreter's shutdown must not change the exit status it reported.
+            owned.ignore_signals()
+        else:
+            owned.restore_signal_handlers(previous)
 
 
 def _library_warnings_policy() -> None:

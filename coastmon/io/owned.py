@@ -238,6 +238,13 @@ def restore_signal_handlers(previous: dict[int, Any]) -> None:
         signal.signal(signum, handler)
 
 
+def ignore_signals() -> None:
+    """Ignore SIGINT, SIGTERM and SIGHUP from now on (the command has reported its end)."""
+    if threading.current_thread() is threading.main_thread():
+        for signum in HANDLED_SIGNALS:
+            signal.signal(signum, signal.SIG_IGN)
+
+
 def reset() -> None:
     """Forget held-back signals and completed results (start of a command)."""
     _STATE.update(depth=0, pending=None, stopping=False, complete=[])
@@ -273,6 +280,6 @@ def completed() -> list[str]:
 
 
 __all__ = ["HANDLED_SIGNALS", "MARKER", "Interrupted", "completed", "critical",
-           "install_signal_handlers", "is_debris", "note_complete", "owned_dir",
+           "ignore_signals", "install_signal_handlers", "is_debris", "note_complete", "owned_dir",
            "process_alive", "read_marker", "register", "remove_all_registered", "remove_owned",
            "restore_signal_handlers", "sweep", "write_marker"]
