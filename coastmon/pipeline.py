@@ -541,7 +541,7 @@ def demo(out: str | Path, variant: str = "default", progress: bool = True) -> st
                 "variant": variant,
                 "input_kept": False,
                 "input_note": "The scenario input was a temporary file and has been removed. "
-                              "It is made again, identical, from the scenario's fixed seed by "
+                              "It is made again, with the same data, from the scenario's fixed seed by "
                               f"'coastmon demo --variant {variant}' or, in Python, by "
                               f"coastmon.scenario.make_scenario(coastmon.scenario."
                               f"{params_factory[variant]}(), FOLDER).",

@@ -122,6 +122,8 @@ def atomic_path(final: str | os.PathLike[str]) -> Iterator[Path]:
     except OSError as exc:
         raise output_error(exc, final.parent, "create the output folder") from None
     tmp = _temp_name(final)
+    while tmp.exists() or tmp.is_symlink():  # never one that is not ours to remove
+        tmp = _temp_name(final)
     try:
         yield tmp
         os.replace(tmp, final)

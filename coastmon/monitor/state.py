@@ -776,7 +776,7 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
                 "An input lies inside the monitoring state folder", where=str(rp),
                 todo="Keep the input files outside the state folder")
     state_id, made = _claim(state_dir)
-    new_state = True
+    new_state = made  # known for sure once the lock is held (never another run's state)
     try:
         try:
             (state_dir / STORE).mkdir(exist_ok=True)
