@@ -346,7 +346,7 @@ def _publish(stage: Path, out_dir: Path) -> None:
     atomic_write_text(out_dir / JOURNAL, json.dumps(journal, indent=1))
     try:
         _roll_forward(out_dir, journal)
-    except OSError:
+    except BaseException:
         _roll_back(out_dir, journal)
         raise
 
@@ -419,22 +419,32 @@ def _roll_forward(out_dir: Path, journal: dict[str, Any]) -> None:
 
 
 def _roll_back(out_dir: Path, journal: dict[str, Any]) -> None:
-    """Undo a publication: new files back to the stage, the old ones back in place."""
+    """Undo a publication: new files back to the stage, the old ones back in place.
+
+    Each step is tried on its own; when one fails (the disk went away) the journal stays
+    and the next run into the folder finishes the job."""
     stage, backup = Path(journal["stage"]), out_dir / journal["backup"]
-    with suppress(OSError):
-        if journal["phase"] == "in":
-            for rel in reversed(journal["new"]):
-                if not _exists(out_dir / rel):
-                    continue
-                if stage.is_dir():
-                    _move(out_dir / rel, stage / rel)
-                else:  # listed in our journal, and no file of another's had its name
-                    (out_dir / rel).unlink()
-        for rel in journal["old"]:
-            if _exists(backup / rel) and not _exists(out_dir / rel):
+    failed = False
+    if journal["phase"] == "in":  # every old file is in the backup: these are the new ones
+        for rel in reversed(journal["new"]):
+            if _exists(out_dir / rel):
+                try:
+                    if stage.is_dir():
+                        _move(out_dir / rel, stage / rel)
+                    else:  # listed in our journal, and no file of another's had its name
+                        (out_dir / rel).unlink()
+                except OSError:
+                    failed = True
+    for rel in journal["old"]:
+        if _exists(backup / rel) and not _exists(out_dir / rel):
+            try:
                 _move(backup / rel, out_dir / rel)
-        (out_dir / JOURNAL).unlink()
-        _after_commit(out_dir, {**journal, "old_folders": []})
+            except OSError:
+                failed = True
+    if not failed:
+        with suppress(OSError):
+            (out_dir / JOURNAL).unlink()
+            _after_commit(out_dir, {**journal, "old_folders": []})
 
 
 def _after_commit(out_dir: Path, journal: dict[str, Any]) -> None:
