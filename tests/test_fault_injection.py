@@ -297,15 +297,22 @@ def _mount_tmpfs(path: Path, size: str) -> None:
 
 
 @pytest.fixture
-def small_disk(tmp_path):
-    disk = tmp_path / "disk"
-    _mount_tmpfs(disk, "600k")
-    yield disk
-    subprocess.run(["umount", str(disk)], check=False)
+def disks(tmp_path):
+    """Two small tmpfs: 120 kB (too small for any result) and 8 MB (filled up later)."""
+    mounted = []
+    try:
+        for name, size in (("disk", "120k"), ("big", "8m")):
+            _mount_tmpfs(tmp_path / name, size)
+            mounted.append(tmp_path / name)
+        yield mounted
+    finally:
+        for path in mounted:
+            subprocess.run(["umount", str(path)], check=False)
 
 
 @pytest.mark.slow
-def test_full_disk(record, tmp_path, small_disk):
+def test_full_disk(record, tmp_path, disks):
+    small_disk, big_disk = disks
     tmpdir = tmp_path / "systmp"
     tmpdir.mkdir()
     (small_disk / "keep.txt").write_text("the user's own file")
@@ -329,15 +336,15 @@ def test_full_disk(record, tmp_path, small_disk):
     assert not (tmp_path / "out2").exists()
     _log("analyze with TMPDIR on a full disk", "exit 2, disk is full, names TMPDIR")
     # a monitoring state on a disk that fills up during an update
-    state = small_disk / "state"
+    state = big_disk / "state"
     shutil.copytree(record.state1, state, ignore=shutil.ignore_patterns("outputs"))
-    free = shutil.disk_usage(small_disk).free
-    (small_disk / "filler.bin").write_bytes(b"\0" * max(0, free - 64 * 1024))
+    free = shutil.disk_usage(big_disk).free
+    (big_disk / "filler.bin").write_bytes(b"\0" * max(0, free - 64 * 1024))
     done = _cli(["update", str(state), str(record.pieces[1]), "--no-progress"], tmpdir)
     assert done.returncode == 2, done.stderr
     _one_paragraph(done.stderr)
     assert (state / "current").read_text().strip() == "v000001"
-    (small_disk / "filler.bin").unlink()
+    (big_disk / "filler.bin").unlink()
     done = _cli(["update", str(state), str(record.pieces[1]), "--no-progress"], tmpdir)
     assert done.returncode == 0, done.stderr
     _assert_same_moments(state, record.state2)

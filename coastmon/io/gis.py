@@ -46,6 +46,7 @@ import pandas as pd
 import pyogrio
 import shapely
 
+from coastmon.errors import OutputError
 from coastmon.io.atomic import atomic_path, atomic_write_text, output_error
 
 FORMATS = ("gpkg", "geojson", "shp", "csv")
@@ -190,10 +191,18 @@ def _geometry_type(name: str, gdf: gpd.GeoDataFrame) -> tuple[str, bool]:
 
 def _write(gdf: gpd.GeoDataFrame, path: Path, name: str, driver: str, **options: str) -> None:
     geometry_type, promote = _geometry_type(name, gdf)
-    pyogrio.write_dataframe(
-        gdf, path, layer=name, driver=driver, geometry_type=geometry_type,
-        promote_to_multi=promote, **options,
-    )
+    try:
+        pyogrio.write_dataframe(
+            gdf, path, layer=name, driver=driver, geometry_type=geometry_type,
+            promote_to_multi=promote, **options,
+        )
+    except (pyogrio.errors.DataSourceError, pyogrio.errors.DataLayerError) as exc:
+        # GDAL reports a full disk or a lost folder without an errno: say what is known
+        free = shutil.disk_usage(path.parent).free if path.parent.exists() else 0
+        reason = ("the disk is full" if free < (1 << 20) else
+                  f"the GIS library reported: {exc}")
+        raise OutputError(f"Could not write {path.name}: {reason}", where=str(path.parent),
+                          todo="Free some space or choose another output folder") from None
 
 
 def _table(gdf: gpd.GeoDataFrame) -> pd.DataFrame:

@@ -55,6 +55,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import datetime as _dt
+import errno
 import hashlib
 import json
 import os
@@ -77,9 +78,16 @@ from coastmon.config import Settings, settings_from_dict
 from coastmon.errors import InputError, OutputError, RecordError, SettingsError
 from coastmon.geometry import Coastline, Frame, Segment, local_projection
 from coastmon.grid.metrics import GridMetrics, coriolis_parameter
-from coastmon.io.atomic import RESULT_MANIFEST, atomic_write_text, staging_dir
+from coastmon.io.atomic import RESULT_MANIFEST, atomic_write_text, output_error, staging_dir
 from coastmon.io.ingest import open_dataset
-from coastmon.io.owned import critical, note_complete, owned_dir, read_marker, write_marker
+from coastmon.io.owned import (
+    MARKER,
+    critical,
+    note_complete,
+    owned_dir,
+    read_marker,
+    write_marker,
+)
 from coastmon.monitor.events import shedding_events
 from coastmon.stream import (
     SeriesFile,
@@ -457,6 +465,24 @@ def _legacy_state(state_dir: Path) -> bool:
             and manifest.get("format") == "coastmon monitoring state")
 
 
+_VERSION_FILES = re.compile(
+    r"(manifest\.json|moments\.npz|times\.npz|(moments|times)\.npz\.part"
+    r"|\.manifest\.tmp-[0-9a-f]{8}\.json|" + re.escape(MARKER) + ")")
+
+
+def _remove_version_folder(folder: Path) -> bool:
+    """Remove the files a version folder of coastmon holds, then the folder if that left it
+    empty; a file of anyone else's keeps it (and itself). True when the folder is gone."""
+    for p in folder.iterdir():
+        if _VERSION_FILES.fullmatch(p.name) and p.is_file() and not p.is_symlink():
+            p.unlink(missing_ok=True)
+    try:
+        folder.rmdir()
+    except OSError:
+        return False
+    return True
+
+
 def _ours(folder: Path, state_id: str) -> bool:
     """A version folder (final or partial) that this state's updates wrote."""
     if folder.is_symlink() or not folder.is_dir():
@@ -476,7 +502,7 @@ def _clean_leftovers(state_dir: Path, current: str | None, keep_store: set[str],
             continue
         if (_VERSION.fullmatch(p.name) or _PARTIAL_VERSION.fullmatch(p.name)) \
                 and _ours(p, state_id):
-            shutil.rmtree(p, ignore_errors=True)
+            _remove_version_folder(p)
         elif _ROOT_TEMP.fullmatch(p.name) and p.is_file() and not p.is_symlink():
             p.unlink(missing_ok=True)
     store = state_dir / STORE
@@ -556,11 +582,10 @@ def _commit(state_dir: Path, number: int, manifest: dict[str, Any], moments, see
     final = state_dir / name
     with critical():
         if final.exists() or final.is_symlink():
-            if not _ours(final, manifest["state_id"]):
-                shutil.rmtree(partial, ignore_errors=True)
-                raise _not_a_state(state_dir, f"a folder '{name}' that coastmon did not write "
-                                   "stands where the next version goes")
-            shutil.rmtree(final)
+            if not (_ours(final, manifest["state_id"]) and _remove_version_folder(final)):
+                _remove_version_folder(partial)
+                raise _not_a_state(state_dir, f"a folder '{name}' holding files that coastmon "
+                                   "did not write stands where the next version goes")
         os.replace(partial, final)
         _switch_pointer(state_dir, name)
         note_complete(str(state_dir))
@@ -728,7 +753,13 @@ def _load_series(state_dir: Path, parts: list[str], work: Path) -> xr.Dataset:
 def _write_part(series: xr.Dataset, path: Path) -> None:
     enc = {"time": {"units": _TIME_UNITS, "dtype": "float64"}}
     tmp = path.with_name(path.name + ".part")
-    series.to_netcdf(tmp, engine="netcdf4", encoding=enc)
+    try:
+        series.to_netcdf(tmp, engine="netcdf4", encoding=enc)
+    except RuntimeError:  # the NetCDF library reports a full disk as "HDF error"
+        tmp.unlink(missing_ok=True)  # our own temporary name, written just now
+        if shutil.disk_usage(path.parent).free < (1 << 20):
+            raise OSError(errno.ENOSPC, "No space left on device", str(path)) from None
+        raise
     os.replace(tmp, path)
 
 
@@ -798,9 +829,11 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
             with owned_dir("coastmon-update-") as work:
                 result = _update(state_dir, paths, settings, allow_gaps, manifest, current,
                                  timings, work, state_id)
-    except BaseException:
+    except BaseException as exc:
         if new_state:  # a first update that failed leaves no half-made state behind
             _discard_new_state(state_dir, made, state_id)
+        if isinstance(exc, OSError):
+            raise output_error(exc, state_dir, "write the monitoring state") from None
         raise
     result.timings["total_s"] = time.perf_counter() - t0
     return result
