@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import xarray as xr
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from coastmon.cli import main
@@ -403,6 +403,7 @@ def _damage(state: Path, ops) -> tuple[list[str], dict[Path, bytes]]:
 @settings(max_examples=8, deadline=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(ops=_DAMAGE)
+@example(ops=[("add_file", 20, 0)])  # a user's file inside the version folder superseded
 def test_random_damage_to_a_state(record, tmp_path_factory, capsys, ops):
     work = tmp_path_factory.mktemp("damage")
     state = work / "state"

@@ -42,6 +42,8 @@ from typing import Any
 
 MARKER = ".coastmon-owner.json"
 """Name of the owner marker inside every temporary folder coastmon makes."""
+TEMP_PREFIXES = ("coastmon-work-", "coastmon-update-", "coastmon-demo-")
+"""Prefixes of coastmon's folders in the system temporary folder (swept by every run)."""
 HANDLED_SIGNALS = tuple(getattr(signal, name) for name in ("SIGINT", "SIGTERM", "SIGHUP")
                         if hasattr(signal, name))
 
@@ -188,10 +190,10 @@ def owned_dir(prefix: str, parent: str | os.PathLike[str] | None = None,
     """A new folder ``<parent>/<prefix><random>`` with an owner marker, removed at the end.
 
     ``parent`` defaults to the system temporary folder (``TMPDIR``). Dead runs' folders
-    with the same prefix there are removed first (:func:`sweep`).
+    there (any of :data:`TEMP_PREFIXES`, and ``prefix``) are removed first (:func:`sweep`).
     """
     base = Path(parent) if parent is not None else Path(tempfile.gettempdir())
-    sweep(base, (f"{prefix}*",))
+    sweep(base, tuple(f"{p}*" for p in {*TEMP_PREFIXES, prefix}))
     folder = Path(tempfile.mkdtemp(prefix=prefix, dir=base))
     try:
         record = write_marker(folder, kind)
@@ -279,7 +281,7 @@ def completed() -> list[str]:
     return list(_STATE["complete"])
 
 
-__all__ = ["HANDLED_SIGNALS", "MARKER", "Interrupted", "completed", "critical",
+__all__ = ["HANDLED_SIGNALS", "MARKER", "TEMP_PREFIXES", "Interrupted", "completed", "critical",
            "ignore_signals", "install_signal_handlers", "is_debris", "note_complete", "owned_dir",
            "process_alive", "read_marker", "register", "remove_all_registered", "remove_owned",
            "restore_signal_handlers", "sweep", "write_marker"]
