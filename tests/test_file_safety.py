@@ -98,8 +98,12 @@ def test_cleaner_removes_only_provable_leftovers(tmp_path):
     users[1].mkdir()
     users[2].write_text("x")
     users[3].write_text("x")
-    stale = state / "store" / "series-000002-abcdef.nc"
+    stale = state / "store" / monitor_state._part_name(state_id, 2)
     stale.write_text("an uncommitted part")
+    users.append(state / "store" / "series-000009-abcdef-01234567.nc")  # our pattern, no tag
+    users[-1].write_text("x")
+    users.append(state / "store" / monitor_state._part_name(other, 2))  # another state's tag
+    users[-1].write_text("x")
     kept_part = state / "store" / "series-000001-123456.nc"
     kept_part.write_text("a committed part")
     monitor_state._clean_leftovers(state, None, {kept_part.name}, state_id)

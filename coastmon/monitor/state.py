@@ -26,9 +26,9 @@ JSON and NetCDF. Crash safety: an update writes a *new* version folder and then 
 the pointer with :func:`os.replace` (atomic on POSIX and Windows); an update that dies
 before that leaves the previous version current and usable, and the next call removes the
 leftovers and starts again from it. Only leftovers coastmon can prove it wrote are removed,
-and only after the new inputs were checked: version folders whose owner marker carries the
-state id, its own temporary file names, and series files in ``store/`` with its own name
-pattern that no committed version lists; anything else in the folder is never touched. The
+and only after the new inputs were checked: the files of version folders whose owner
+marker carries the state id, and series files in ``store/`` that no committed version
+lists and whose name carries the tag of the state id; anything else is never touched. The
 outputs are refreshed (atomically, as a whole) just before the pointer moves, so after a
 crash between the two the outputs can be one update ahead of the state until the next call.
 
@@ -359,9 +359,26 @@ def _verify_files(state_dir: Path, manifest: dict[str, Any], current: str) -> No
 
 _VERSION = re.compile(r"v\d{6}")
 _PARTIAL_VERSION = re.compile(r"\.v\d{6}\.partial-[0-9a-f]{8}")
-_ROOT_TEMP = re.compile(r"\.(current|coastmon-state)\.tmp-[0-9a-f]{8}(\.json)?")
-_STORE_FILE = re.compile(
-    r"(series-\d{6}-[0-9a-f]{6}\.nc(\.part)?|(grid|frame|coastline|capes)\.npz\.part)")
+_STORE_FILE = re.compile(r"series-(\d{6})-([0-9a-f]{6})-([0-9a-f]{8})\.nc(\.part)?")
+
+
+def _tag(state_id: str, number: int, token: str) -> str:
+    return hashlib.sha256(f"{state_id}:{number}:{token}".encode()).hexdigest()[:8]
+
+
+def _part_name(state_id: str, number: int) -> str:
+    """Name of a new series part: ``series-<version>-<random>-<tag>.nc``; the tag is derived
+    from the state id, so the name itself proves which state wrote the file."""
+    token = secrets.token_hex(3)
+    return f"series-{number:06d}-{token}-{_tag(state_id, number, token)}.nc"
+
+
+def _provable_part(name: str, state_id: str) -> bool:
+    """A series part (or its temporary ``.part``) that this state's updates wrote."""
+    m = _STORE_FILE.fullmatch(name)
+    return m is not None and m[3] == _tag(state_id, int(m[1]), m[2])
+
+
 _GEOMETRY = ("grid.npz", "coastline.npz", "capes.npz", "frame.npz")
 
 
@@ -494,21 +511,19 @@ def _ours(folder: Path, state_id: str) -> bool:
 def _clean_leftovers(state_dir: Path, current: str | None, keep_store: set[str],
                      state_id: str) -> None:
     """Remove what interrupted updates left, and only what they provably wrote: version
-    folders (partial or superseded) whose owner marker carries the state id, coastmon's own
-    temporary file names, and series files (coastmon's name pattern) no committed version
-    lists. Everything else is left alone."""
+    folders (partial or superseded) whose owner marker carries the state id (only their
+    coastmon files), and series files that no committed version lists and whose name
+    carries the tag of this state id. Everything else is left alone."""
     for p in state_dir.iterdir():
         if p.name == current:
             continue
         if (_VERSION.fullmatch(p.name) or _PARTIAL_VERSION.fullmatch(p.name)) \
                 and _ours(p, state_id):
             _remove_version_folder(p)
-        elif _ROOT_TEMP.fullmatch(p.name) and p.is_file() and not p.is_symlink():
-            p.unlink(missing_ok=True)
     store = state_dir / STORE
     if store.is_dir() and not store.is_symlink():
         for p in store.iterdir():
-            if (p.name not in keep_store and _STORE_FILE.fullmatch(p.name) and p.is_file()
+            if (p.name not in keep_store and _provable_part(p.name, state_id) and p.is_file()
                     and not p.is_symlink()):
                 p.unlink(missing_ok=True)
 
@@ -913,7 +928,7 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
     timings["stream_pass_s"] = time.perf_counter() - t
     merged = passed.state if moments is None else merge_states(moments, passed.state)
     new_series = _with_fill(passed.series, plan, t_s[plan.new], calendar)
-    part = f"series-{number:06d}-{secrets.token_hex(3)}.nc"
+    part = _part_name(state_id, number)
     _write_part(new_series, store / part)
     del passed, new_series
     parts.append(part)
