@@ -404,6 +404,7 @@ def _damage(state: Path, ops) -> tuple[list[str], dict[Path, bytes]]:
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(ops=_DAMAGE)
 @example(ops=[("add_file", 20, 0)])  # a user's file inside the version folder superseded
+@example(ops=[("add_file", 3493, 0)])  # a user's file named like a series part
 def test_random_damage_to_a_state(record, tmp_path_factory, capsys, ops):
     work = tmp_path_factory.mktemp("damage")
     state = work / "state"
