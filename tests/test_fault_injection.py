@@ -400,7 +400,7 @@ def _damage(state: Path, ops) -> tuple[list[str], dict[Path, bytes]]:
 
 
 @pytest.mark.slow
-@settings(max_examples=8, deadline=None,
+@settings(max_examples=int(os.environ.get("COASTMON_DAMAGE_EXAMPLES", "8")), deadline=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(ops=_DAMAGE)
 @example(ops=[("add_file", 20, 0)])  # a user's file inside the version folder superseded
