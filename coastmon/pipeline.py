@@ -22,6 +22,7 @@ import platform
 import shutil
 import tempfile
 import time
+import warnings
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -38,7 +39,14 @@ from xarray.backends import NetCDF4BackendEntrypoint, ZarrBackendEntrypoint
 from coastmon import __version__
 from coastmon.assess.spinup import SpinupCurve, spinup_curve
 from coastmon.config import Settings
-from coastmon.errors import CoastmonError, GeometryError, InputError, OutputError, RecordError
+from coastmon.errors import (
+    CoastmonError,
+    DataWarning,
+    GeometryError,
+    InputError,
+    OutputError,
+    RecordError,
+)
 from coastmon.geometry import (
     build_frame,
     capes_layer,
@@ -50,6 +58,7 @@ from coastmon.grid.metrics import GridMetrics, beta_parameter
 from coastmon.io.atomic import atomic_write_text, output_error, staging_dir
 from coastmon.io.gis import write_layers
 from coastmon.io.ingest import open_dataset
+from coastmon.io.position import position_text
 from coastmon.io.results import CAUTIONS, write_results
 from coastmon.signals import (
     cwt_morlet,
@@ -83,6 +92,7 @@ class Prepared:
     frame: Any
     ld_km: float
     inputs: list[Path]
+    notes: list[str] = field(default_factory=list)
 
 
 def deformation_radius_km(settings: Settings, frame) -> float:
@@ -104,7 +114,13 @@ def geometry_of(path: str | Path) -> Iterator[None]:
 
 def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
     """Open the inputs lazily and build grid metrics, coastline, capes and frame."""
-    ds = open_dataset([Path(p) for p in inputs], settings.ingest)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", DataWarning)
+        ds = open_dataset([Path(p) for p in inputs], settings.ingest)
+    notes = [str(w.message) for w in caught if issubclass(w.category, DataWarning)]
+    for w in caught:
+        if not issubclass(w.category, DataWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     prestart_readers(ds, settings.stream)  # they import their libraries meanwhile
     lon = np.asarray(ds["lon"].values, dtype=np.float64)
     lat = np.asarray(ds["lat"].values, dtype=np.float64)
@@ -116,7 +132,7 @@ def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
         capes = find_capes(coastline, settings.coast)
         frame = build_frame(coastline, lon, lat, mask, settings.coast)
     return Prepared(ds, metrics, coastline, capes, frame, deformation_radius_km(settings, frame),
-                    [Path(p) for p in inputs])
+                    [Path(p) for p in inputs], notes)
 
 
 # --------------------------------------------------------------------------- small data
@@ -402,6 +418,17 @@ def pass_error(exc: OSError, work: Path, inputs: list[Path]) -> CoastmonError:
                       todo="Check the files with a NetCDF or Zarr tool, or copy them again")
 
 
+def coverage_notes(ds: xr.Dataset, result) -> list[str]:
+    """Notes on the data missing in the record read by the pass (raises when too little
+    is left; see :mod:`coastmon.assess.coverage`)."""
+    from coastmon.assess.coverage import check_coverage
+
+    return check_coverage(result.valid_steps, result.stats["n_valid"].values,
+                          ds["mask"].values, ds["time"].values if "time" in ds.coords else None,
+                          json.loads(ds.attrs.get("source_files", "[]")),
+                          json.loads(ds.attrs.get("source_steps", "[]")))
+
+
 @dataclass
 class AnalyzeResult:
     out: Path
@@ -414,7 +441,7 @@ class AnalyzeResult:
         for _, r in src.head(10).iterrows():
             cape = r["cape_id"] or "unanchored"
             lines.append(
-                f"  rank {int(r['rank'])}: {r['lat']:.2f}N {r['lon']:.2f}E  "
+                f"  rank {int(r['rank'])}: {position_text(r['lon'], r['lat'])}  "
                 f"feed {r['feed_w_per_m']:.3g} W/m [{r['feed_lo']:.3g}, {r['feed_hi']:.3g}]  "
                 f"persistence {r['persistence']:.2f}  cape {cape}")
         for w in self.products.warnings:
@@ -442,8 +469,10 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings) -> An
             raise pass_error(exc, Path(work), inputs) from None
         timings["stream_pass_s"] = time.perf_counter() - t
         t = time.perf_counter()
+        notes = prep.notes + coverage_notes(prep.ds, result)
         products = analyse_series(result.stats, result.series, prep.frame, prep.capes,
                                   settings, prep.ld_km)
+        products.warnings[:0] = notes
         timings["analyses_s"] = time.perf_counter() - t
         t = time.perf_counter()
         provenance = {

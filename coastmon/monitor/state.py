@@ -71,6 +71,7 @@ from coastmon.errors import InputError, OutputError, RecordError, SettingsError
 from coastmon.geometry import Coastline, Frame, Segment, local_projection
 from coastmon.grid.metrics import GridMetrics, coriolis_parameter
 from coastmon.io.atomic import atomic_write_text, staging_dir
+from coastmon.io.gridcheck import calendar_of, grid_differences
 from coastmon.io.ingest import open_dataset
 from coastmon.monitor.events import shedding_events
 from coastmon.stream import (
@@ -128,13 +129,6 @@ class UpdateResult:
 
 
 # --------------------------------------------------------------------------- time
-def _calendar(values: np.ndarray) -> str:
-    values = np.asarray(values)
-    if np.issubdtype(values.dtype, np.datetime64):
-        return "proleptic_gregorian"
-    return str(getattr(values.flat[0], "calendar", "standard") or "standard")
-
-
 def time_seconds(values: np.ndarray) -> np.ndarray:
     """Seconds since 1970-01-01 of datetime64 or cftime values (in their own calendar)."""
     values = np.asarray(values)
@@ -143,7 +137,7 @@ def time_seconds(values: np.ndarray) -> np.ndarray:
     import cftime
 
     return np.asarray(cftime.date2num(list(values.ravel()), _TIME_UNITS,
-                                      calendar=_calendar(values)), dtype=np.float64)
+                                      calendar=calendar_of(values)), dtype=np.float64)
 
 
 def _times_from_seconds(seconds: np.ndarray, calendar: str, like: np.ndarray) -> np.ndarray:
@@ -600,7 +594,7 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
         lon, lat = metrics.lon, metrics.lat
         mask = np.asarray(ds["mask"].values)
         ld_km = prep.ld_km
-        calendar = _calendar(ds["time"].values)
+        calendar = calendar_of(ds["time"].values)
         seen_s = np.zeros(0)
         dt_s = None
         moments = None
@@ -618,9 +612,9 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
         metrics = GridMetrics.from_lonlat(lon, lat)
         ld_km = float(manifest["deformation_radius_km"])
         calendar = manifest["calendar"]
-        if _calendar(ds["time"].values) != calendar:
+        if calendar_of(ds["time"].values) != calendar:
             raise InputError(
-                f"The new data use the '{_calendar(ds['time'].values)}' calendar, the "
+                f"The new data use the '{calendar_of(ds['time'].values)}' calendar, the "
                 f"monitoring state '{calendar}'", where=where,
                 todo="Give data of the same model run or product, in the same calendar")
         seen_s = _loadz(state_dir / current / "times.npz")["seen_s"]
@@ -739,13 +733,7 @@ def _check_same_grid(ds: xr.Dataset, lon: np.ndarray, lat: np.ndarray, mask: np.
                      manifest: dict[str, Any], where: str) -> None:
     new_lon = np.asarray(ds["lon"].values, np.float64)
     new_lat = np.asarray(ds["lat"].values, np.float64)
-    problems = []
-    if new_lon.shape != lon.shape:
-        problems.append(f"grid shape {new_lon.shape} instead of {lon.shape}")
-    elif grid_signature(new_lon, new_lat) != manifest["grid_id"]:
-        problems.append("other longitudes or latitudes")
-    elif not np.array_equal(np.asarray(ds["mask"].values), mask):
-        problems.append("another land/sea mask")
+    problems = grid_differences(new_lon, new_lat, lon, lat, np.asarray(ds["mask"].values), mask)
     kind = ds.attrs.get("velocity_kind")
     stored_kind = manifest["dataset_attrs"].get("velocity_kind")
     if kind and stored_kind and kind != stored_kind:

@@ -88,6 +88,9 @@ class PassResult:
     timings : seconds spent per stage (``read_s``, ``kernel_s``, ``sample_s`` summed over
         chunks and workers; ``merge_s``, ``write_s``, ``stats_s``, ``total_s`` wall time).
     n_time : number of time steps read.
+    valid_steps : (time,) int64, the number of grid points with both u and v present at
+        each time step (land is missing at every step), for the missing-data checks of
+        :mod:`coastmon.assess.coverage`.
     """
 
     stats: xr.Dataset
@@ -95,6 +98,7 @@ class PassResult:
     state: MomentState
     timings: dict[str, float] = field(default_factory=dict)
     n_time: int = 0
+    valid_steps: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -127,6 +131,7 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
     nt = u.shape[0]
     parts: dict[int, tuple] = {}
     samples: dict[str, list] = {}
+    valid = np.zeros(nt, dtype=np.int64)
     kernel_s = sample_s = 0.0
     for s0 in range(0, nt, consts.step_limit):
         s1 = min(nt, s0 + consts.step_limit)
@@ -142,6 +147,7 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
             else:
                 parts[g] = part
         t1 = time.perf_counter()
+        valid[s0:s1] = np.count_nonzero(np.isfinite(ub + vb).reshape(s1 - s0, -1), axis=1)
         for name, arr in (("u", ub), ("v", vb), ("zeta", zeta), ("ssh", hb)):
             if arr is not None:
                 samples.setdefault(name, []).append(consts.sampler(arr.reshape(s1 - s0, -1)))
@@ -151,6 +157,7 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
     return {
         "parts": parts,
         "samples": {k: np.concatenate(val) for k, val in samples.items()},
+        "valid_steps": valid,
         "kernel_s": kernel_s,
         "sample_s": sample_s,
     }
@@ -425,6 +432,7 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
         for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
             files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy", (nt, *shape))
 
+    valid_steps = np.zeros(nt, dtype=np.int64)
     state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
                               grid_signature(metrics.lon, metrics.lat))
     ncpu = os.cpu_count() or 1
@@ -507,6 +515,7 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
                 if nxt is not None:
                     pending.append((*nxt, submit(*nxt)))
                 _consume(out, t0, t1, state, files, frame, times, timings)
+                valid_steps[t0:t1] = out["valid_steps"]
                 done += 1
                 bar.update(1)
                 if progress is not None:
@@ -534,7 +543,8 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
     timings["total_s"] = time.perf_counter() - wall0
     if client is not None:
         timings.pop("read_s")
-    return PassResult(stats=stats, series=series, state=state, timings=timings, n_time=nt)
+    return PassResult(stats=stats, series=series, state=state, timings=timings, n_time=nt,
+                      valid_steps=valid_steps)
 
 
 def _distributed_submitter(client, ds, names, bounds, consts, groups):

@@ -230,8 +230,10 @@ class _Worker:
         # The reader must import this very coastmon, wherever it was imported from.
         here = str(Path(__file__).resolve().parents[2])
         env["PYTHONPATH"] = os.pathsep.join(p for p in (here, env.get("PYTHONPATH")) if p)
+        # -P: the current folder is not put on the module path, so a file there named like
+        # a library module (mmap.py, numpy.py ...) is never imported by the reader.
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "coastmon.stream.read_worker"], stdin=subprocess.PIPE,
+            [sys.executable, "-P", "-m", "coastmon.stream.read_worker"], stdin=subprocess.PIPE,
             stdout=subprocess.PIPE, stderr=self.log, pass_fds=fds, close_fds=True, env=env)
         self.thread: threading.Thread | None = None
 
