@@ -201,12 +201,23 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     ranked, gates_df, boot = rank_sources(found, feed)
     axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km)
     ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
-    if len(ranked) and np.nanmin(ranked["rank_stability"].values[:3]) < 0.8:
+    stability = np.asarray(ranked["rank_stability"].values[:3], dtype=float) if len(ranked) \
+        else np.zeros(0)
+    stability = stability[np.isfinite(stability)]
+    if stability.size and stability.min() < 0.8:
         warnings.append(
             "The ranking is not stable under resampling of the record: some of the top "
-            f"sources keep their rank in only {100 * np.nanmin(ranked['rank_stability'].values[:3]):.0f} % "
+            f"sources keep their rank in only {100 * stability.min():.0f} % "
             "of bootstrap resamples. A longer record would settle it."
         )
+    unmeasured = int((~np.isfinite(np.asarray(ranked["feed_w_per_m"], dtype=float))).sum()) \
+        if len(ranked) else 0
+    if unmeasured:
+        warnings.append(
+            f"The offshore feed of {unmeasured} of {len(ranked)} source(s) could not be "
+            "measured: the series at their gates "
+            f"({settings.sources.gate_offset_km:g} km offshore) miss more than a tenth of the "
+            "time steps, or their rays leave the grid. Their rank is last.")
     lat_mid = float(np.nanmedian(frame.stations["lat"]))
     c_rossby = float(long_rossby_speed(float(beta_parameter(lat_mid)), ld_km * 1000.0))
 
@@ -440,9 +451,10 @@ class AnalyzeResult:
         lines = [f"coastmon: {len(src)} source(s) found; results in {self.out}"]
         for _, r in src.head(10).iterrows():
             cape = r["cape_id"] or "unanchored"
+            feed = (f"feed {r['feed_w_per_m']:.3g} W/m [{r['feed_lo']:.3g}, {r['feed_hi']:.3g}]"
+                    if np.isfinite(r["feed_w_per_m"]) else "feed not measurable (see notes)")
             lines.append(
-                f"  rank {int(r['rank'])}: {position_text(r['lon'], r['lat'])}  "
-                f"feed {r['feed_w_per_m']:.3g} W/m [{r['feed_lo']:.3g}, {r['feed_hi']:.3g}]  "
+                f"  rank {int(r['rank'])}: {position_text(r['lon'], r['lat'])}  {feed}  "
                 f"persistence {r['persistence']:.2f}  cape {cape}")
         for w in self.products.warnings:
             lines.append(f"  note: {w}")

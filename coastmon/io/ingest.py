@@ -30,11 +30,12 @@ from xarray.backends import ZarrBackendEntrypoint
 
 from coastmon.compiled import compiled
 from coastmon.config import IngestSettings
-from coastmon.errors import InputError, RecordError
+from coastmon.errors import DataWarning, InputError, RecordError
 from coastmon.grid.metrics import GridMetrics
 from coastmon.grid.operators import geostrophic_velocity
 from coastmon.io import chunks as chunk_reader
 from coastmon.io import sgrid, vertical
+from coastmon.io.damage import decode_failure
 from coastmon.io.gridcheck import calendar_of, grid_differences
 from coastmon.io.units import scale_factor
 
@@ -748,9 +749,18 @@ def probe_steps(n_time: int) -> list[int]:
                    .round()})
 
 
-def _steps_of(da: xr.DataArray, tdim: str) -> np.ndarray:
+def _steps_of(da: xr.DataArray, tdim: str, where: str) -> np.ndarray:
     """The values as (steps, y, x) float64 (one step when there is no time dimension)."""
-    values = np.asarray(da.values, dtype=np.float64)
+    try:
+        values = np.asarray(da.values, dtype=np.float64)
+    except Exception as exc:
+        if not decode_failure(exc):
+            raise
+        raise InputError(f"A stored chunk of the input cannot be decoded ({type(exc).__name__}: "
+                         f"{exc}); the file is damaged or truncated",
+                         where=f"{where}, the time steps read for the land/sea mask "
+                               "(first, middle and last)",
+                         todo="Check the file with a NetCDF or Zarr tool, or copy it again") from None
     return values if tdim in da.dims else values[None]
 
 
@@ -791,6 +801,31 @@ def _check_values(values: np.ndarray, limit: float, what: str, where: str,
             where=where,
             todo="Check the units and the _FillValue/missing_value attributes of the variable, "
                  "or mask the bad points")
+
+
+TYPICAL_SPEED_LIMIT_M_S = 3.0
+"""Ocean currents above about 2.5 m s-1 are rare (the fastest western boundary currents and
+straits); when the 90th percentile of the speed at sea exceeds this, the velocity is most
+likely in cm s-1 labelled (or left) as m s-1."""
+
+
+def _check_speed_scale(u0: np.ndarray, v0: np.ndarray, sea: np.ndarray, u_name: str,
+                       v_name: str, raw: xr.Dataset, where: str) -> None:
+    """Warn (DataWarning) when typical speeds at the first step look like cm/s read as m/s."""
+    speed = np.hypot(u0, v0)[sea]
+    speed = speed[np.isfinite(speed)]
+    if speed.size < 10:
+        return
+    p90 = float(np.percentile(speed, 90))
+    if p90 > TYPICAL_SPEED_LIMIT_M_S:
+        units = [f"'{n}' in '{raw[n].attrs.get('units', '(none)')}'" for n in (u_name, v_name)]
+        warnings.warn(DataWarning(
+            f"The speeds look like centimetres per second read as metres per second: at the "
+            f"first time step the 90th percentile of the speed at sea is {p90:.3g} m/s, above "
+            f"the {TYPICAL_SPEED_LIMIT_M_S:g} m/s that ocean currents rarely exceed (units "
+            f"attributes {' and '.join(units)}; {where}). If the data are in cm/s, set their "
+            "units attribute to 'cm s-1' (every result scales with the speed squared)"),
+            stacklevel=2)
 
 
 @compiled()
@@ -1235,10 +1270,13 @@ class _Builder:
 
         # The probed time steps (first, middle, last) are taken before any other operation,
         # so only they are read.
-        steps = probe_steps(self.raw.sizes[p.tdim]) if p.tdim else []
-        head = self.raw.isel({p.tdim: steps}) if p.tdim else self.raw
-        probes = [None if da is None else _steps_of(reorder(da), "time")
-                  for da in self._fields(head)]
+        # Each is read as a slice of its own (a list of steps would read every chunk).
+        heads = ([self.raw.isel({p.tdim: slice(k, k + 1)})
+                  for k in probe_steps(self.raw.sizes[p.tdim])] if p.tdim else [self.raw])
+        read = [[None if da is None else _steps_of(reorder(da), "time", self.where)
+                 for da in self._fields(head)] for head in heads]
+        probes = [None if read[0][i] is None else np.concatenate([r[i] for r in read])
+                  for i in range(len(read[0]))]
         first = [None if a is None else a[0] for a in probes]
         u, v, ssh = (reorder(da) for da in self._fields(self.raw)) if have_time else (None,) * 3
         mask = self._mask(*probes) if p.mask is None else self._reorder_np(
@@ -1265,6 +1303,7 @@ class _Builder:
                 for arr, what in ((first[0], "u (m s-1)"), (first[1], "v (m s-1)")):
                     _check_values(np.where(mask == 1, arr, np.nan), MAX_SPEED_M_S, what,
                                   self.where, "at the first time step")
+                _check_speed_scale(first[0], first[1], mask == 1, p.u, p.v, self.raw, self.where)
             # Land is set to NaN by the guard that open_dataset puts on u and v.
             data["u"] = self._finish(u, "eastward_sea_water_velocity", "m s-1")
             data["v"] = self._finish(v, "northward_sea_water_velocity", "m s-1")

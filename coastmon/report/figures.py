@@ -609,7 +609,10 @@ def ranking_figure(path: str | os.PathLike[str], sources: pd.DataFrame) -> Path:
         labels.append(f"#{rank}  {where}")
     ax.set_yticks(y, labels)
     ax.set_ylim(n - 0.5, -0.5)
-    ax.set_xlim(left=min(0.0, float(np.nanmin(lo))))
+    finite_lo = lo[np.isfinite(lo)]
+    ax.set_xlim(left=min(0.0, float(finite_lo.min())) if finite_lo.size else 0.0)
+    for k in np.flatnonzero(~np.isfinite(feed)):
+        ax.text(0.0, k, "  not measurable", va="center", ha="left", color="0.3", fontsize=8)
     ax.grid(axis="x", color="0.9", linewidth=0.6)
     ax.set_axisbelow(True)
     ax.legend(handles=[Patch(facecolor=SKY, edgecolor=BLUE, label="estimate"),

@@ -21,6 +21,7 @@ reproducible to the last bit whatever the scheduler.
 
 from __future__ import annotations
 
+import json
 import os
 import queue
 import sys
@@ -43,6 +44,7 @@ from coastmon.config import StreamSettings
 from coastmon.errors import InputError, SettingsError
 from coastmon.grid.metrics import GridMetrics
 from coastmon.grid.operators import gradient
+from coastmon.io.damage import ChunkDecodeError
 from coastmon.stream import kernels, readers
 from coastmon.stream.moments import MomentState, grid_signature, time_text
 from coastmon.stream.readers import ProcessReader, read_chunk
@@ -510,7 +512,10 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             done = 0
             while pending:
                 t0, t1, future = pending.popleft()
-                out = collect(future)
+                try:
+                    out = collect(future)
+                except ChunkDecodeError as exc:
+                    raise _damaged(ds, t0, t1, str(exc)) from None
                 nxt = next(todo, None)
                 if nxt is not None:
                     pending.append((*nxt, submit(*nxt)))
@@ -545,6 +550,23 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
         timings.pop("read_s")
     return PassResult(stats=stats, series=series, state=state, timings=timings, n_time=nt,
                       valid_steps=valid_steps)
+
+
+def _damaged(ds: xr.Dataset, t0: int, t1: int, detail: str) -> InputError:
+    """The error for a stored chunk of time steps [t0, t1) that cannot be decoded."""
+    files = json.loads(ds.attrs.get("source_files", "[]"))
+    steps = json.loads(ds.attrs.get("source_steps", "[]"))
+    if files and len(steps) == len(files):
+        edges = np.cumsum(steps)
+        which = np.unique(np.searchsorted(edges, np.arange(t0, t1), side="right"))
+        files = [files[int(k)] for k in which if k < len(files)]
+    times = ds["time"].values if "time" in ds.coords else None
+    span = (f"{time_text(times[t0])} to {time_text(times[t1 - 1])}" if times is not None
+            else f"steps {t0} to {t1 - 1}")
+    return InputError(
+        f"A stored chunk of the input cannot be decoded ({detail}); the file is damaged or "
+        "truncated", where=f"{', '.join(files) or 'the input'}, time {span}",
+        todo="Check the file with a NetCDF or Zarr tool, or copy it again")
 
 
 def _distributed_submitter(client, ds, names, bounds, consts, groups):

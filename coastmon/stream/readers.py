@@ -43,6 +43,7 @@ import xarray as xr
 
 from coastmon.errors import InputError
 from coastmon.io import chunks
+from coastmon.io.damage import ChunkDecodeError, decode_failure
 
 MAX_READ_PROCESSES = 4
 """Most reader processes used by default (decompression scales with them until the cores
@@ -77,11 +78,16 @@ def read_chunk(arrays, t0: int, t1: int) -> tuple[list, float]:
     start = time.perf_counter()
     blocks = [None if a is None else a[t0:t1] for a in arrays]
     lazy = [one_block(b) for b in blocks if isinstance(b, da.Array)]
-    if lazy:
-        computed = iter(dask.compute(*lazy, scheduler="synchronous"))
-        blocks = [next(computed) if isinstance(b, da.Array) else b for b in blocks]
-    blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray) else b)
-              for b in blocks]
+    try:
+        if lazy:
+            computed = iter(dask.compute(*lazy, scheduler="synchronous"))
+            blocks = [next(computed) if isinstance(b, da.Array) else b for b in blocks]
+        blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray)
+                                                     else b) for b in blocks]
+    except Exception as exc:
+        if not decode_failure(exc):
+            raise
+        raise ChunkDecodeError(f"{type(exc).__name__}: {exc}") from None
     return blocks, time.perf_counter() - start
 
 
