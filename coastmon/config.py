@@ -327,7 +327,7 @@ MAX_BOOTSTRAP = 100_000
 """Most bootstrap resamples accepted: the resampled feeds are held in memory (sources x
 resamples x stations), and 10**5 already resolves a 95 % interval far beyond its
 sampling error (1000 to 10000 are usual)."""
-MAX_READ_PROCESSES = 64
+READ_PROCESSES_LIMIT = 64
 """Most reader processes accepted: each holds a chunk in shared memory and its libraries
 (about 150 MB), so thousands exhaust any machine's memory; no disk feeds more."""
 
@@ -366,8 +366,8 @@ def validate(settings: Settings) -> None:
         (settings.ingest.time_chunk is None or settings.ingest.time_chunk >= 1,
          "ingest.time_chunk must be at least 1"),
         (settings.stream.read_processes is None
-         or 0 <= settings.stream.read_processes <= MAX_READ_PROCESSES,
-         f"stream.read_processes must be from 0 to {MAX_READ_PROCESSES}"),
+         or 0 <= settings.stream.read_processes <= READ_PROCESSES_LIMIT,
+         f"stream.read_processes must be from 0 to {READ_PROCESSES_LIMIT}"),
         (settings.ingest.depth_m is None or settings.ingest.depth_m >= 0,
          "ingest.depth_m (--depth) must be 0 or more: metres, positive down"),
         (settings.ingest.u_var is None or settings.ingest.u_var != settings.ingest.v_var,

@@ -49,12 +49,15 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import datetime as _dt
+import hashlib
 import json
 import os
 import secrets
 import shutil
 import tempfile
 import time
+import zipfile
+import zlib
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -187,9 +190,10 @@ def _loadz(path: Path) -> dict[str, np.ndarray]:
     try:
         with np.load(path, allow_pickle=False) as data:
             return {k: np.array(data[k]) for k in data.files}
-    except (OSError, ValueError, KeyError) as exc:
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as exc:
         raise InputError(
-            f"A file of the monitoring state cannot be read ({exc})", where=str(path),
+            f"A file of the monitoring state cannot be read ({type(exc).__name__}: {exc})",
+            where=str(path),
             todo="The state is damaged; start a new state folder from the full record",
         ) from None
 
@@ -228,6 +232,17 @@ def save_geometry(store: Path, lon: np.ndarray, lat: np.ndarray, mask: np.ndarra
 
 def load_geometry(store: Path) -> tuple[dict[str, np.ndarray], Coastline, pd.DataFrame, Frame]:
     """Read what :func:`save_geometry` wrote (grid arrays, coastline, capes, frame)."""
+    try:
+        return _load_geometry(store)
+    except (KeyError, ValueError, TypeError, IndexError) as exc:
+        raise InputError(
+            f"The geometry stored in the monitoring state is incomplete or inconsistent "
+            f"({type(exc).__name__}: {exc})", where=str(store),
+            todo="The state is damaged; start a new state folder from the full record",
+        ) from None
+
+
+def _load_geometry(store: Path) -> tuple[dict[str, np.ndarray], Coastline, pd.DataFrame, Frame]:
     grid = _loadz(store / "grid.npz")
     c = _loadz(store / "coastline.npz")
     lon_ref, lat_ref = float(c["lon_ref"]), float(c["lat_ref"])
@@ -465,13 +480,49 @@ SERIES_BLOCK_STEPS = 512
 """Time steps copied at a time when the stored series parts are stacked on disk."""
 
 
-def _load_series(state_dir: Path, parts: list[str], work: Path) -> xr.Dataset:
+def file_sha256(path: Path) -> str:
+    """sha256 of a file's bytes, read a megabyte at a time."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(2**20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _load_series(state_dir: Path, parts: list[str], work: Path,
+                 checksums: dict[str, str] | None = None) -> xr.Dataset:
     """The stored series parts as one series, in disk-backed files in ``work``.
 
-    The (time, station, k) variables are copied a block of time steps at a time into
-    station-major files (as the streaming pass writes them), so memory does not grow with
-    the length of the monitored record; the small coordinates are kept in memory.
+    Each part is first checked against its sha256 in ``checksums`` (recorded in the
+    manifest when the part was written), so damaged bytes are refused, never analysed.
     """
+    for name in parts:
+        path = state_dir / STORE / name
+        try:
+            ok = name not in (checksums or {}) or file_sha256(path) == checksums[name]
+        except OSError as exc:
+            raise InputError(f"A series file of the monitoring state cannot be read ({exc})",
+                             where=str(path), todo="The state is damaged; start a new state "
+                             "folder from the full record") from None
+        if not ok:
+            raise InputError("A series file of the monitoring state has changed since it was "
+                             "written (its sha256 checksum differs)", where=str(path),
+                             todo="The state is damaged; start a new state folder from the "
+                                  "full record")
+    try:
+        return _stack_series(state_dir, parts, work)
+    except (OSError, ValueError, RuntimeError, KeyError, IndexError) as exc:
+        raise InputError(f"A series file of the monitoring state cannot be read "
+                         f"({type(exc).__name__}: {exc})", where=str(state_dir / STORE),
+                         todo="The state is damaged; start a new state folder from the full "
+                              "record") from None
+
+
+def _stack_series(state_dir: Path, parts: list[str], work: Path) -> xr.Dataset:
+    """The parts stacked along time. The (time, station, k) variables are copied a block
+    of time steps at a time into station-major files (as the streaming pass writes them),
+    so memory does not grow with the length of the monitored record; the small
+    coordinates are kept in memory."""
     work.mkdir(parents=True, exist_ok=True)
     opened = [xr.open_dataset(state_dir / STORE / name, engine="netcdf4") for name in parts]
     try:
@@ -648,14 +699,16 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
         steps = slice(int(steps[0]), int(steps[-1]) + 1)
     passed = run_pass(ds.isel(time=steps), metrics, frame, settings.stream, work / "pass")
     timings["stream_pass_s"] = time.perf_counter() - t
+    notes += pipeline.coverage_notes(ds.isel(time=steps), passed)
     merged = passed.state if moments is None else merge_states(moments, passed.state)
     new_series = _with_fill(passed.series, plan, t_s[plan.new], calendar)
     part = f"series-{number:06d}-{secrets.token_hex(3)}.nc"
     _write_part(new_series, store / part)
     del passed, new_series
     parts.append(part)
+    checksums = {**(manifest or {}).get("series_sha256", {}), part: file_sha256(store / part)}
     stats = stats_from_state(merged, metrics)
-    series = _load_series(state_dir, parts, work / "series")
+    series = _load_series(state_dir, parts, work / "series", checksums)
     seen_all = np.concatenate([seen_s, t_s[plan.new]])
     n_filled = int(sum(plan.fill_before))
 
@@ -700,6 +753,7 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
         "dataset_attrs": {k: light.attrs.get(k) for k in ("velocity_kind", "depth_m")},
         "store_files": store_files,
         "series_parts": parts,
+        "series_sha256": checksums,
         "inputs": inputs_seen,
         "history": history,
     }
