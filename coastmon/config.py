@@ -293,7 +293,7 @@ def settings_from_dict(data: dict[str, Any], where: str = "settings") -> Setting
         values = {k: coerce_setting(cls, k, v, f"{where}, [{name}] {k}") for k, v in table.items()}
         built[name] = cls(**values)
     settings = Settings(**built)
-    validate(settings)
+    validate(settings, where)
     return settings
 
 
@@ -332,8 +332,9 @@ READ_PROCESSES_LIMIT = 64
 (about 150 MB), so thousands exhaust any machine's memory; no disk feeds more."""
 
 
-def validate(settings: Settings) -> None:
-    """Cross-field checks that a type check cannot express."""
+def validate(settings: Settings, where: str = "settings") -> None:
+    """Cross-field checks that a type check cannot express (``where``: the settings file,
+    or the options, named in the message)."""
     c = settings.coast
     checks = [
         (c.resample_km > 0, "coast.resample_km must be positive"),
@@ -377,5 +378,5 @@ def validate(settings: Settings) -> None:
     ]
     for ok, message in checks:
         if not ok:
-            raise SettingsError(message, where="settings",
+            raise SettingsError(message, where=where,
                                 todo="Correct the value (defaults are listed in docs/user-guide.md)")

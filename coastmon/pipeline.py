@@ -153,6 +153,15 @@ def check_record_length(n_t: int, dt_days: float, settings: Settings,
     N dt must be at least ``2 sqrt(2) / (lambda/s)`` (about 2.74 for omega0 = 6) times the
     longest period of ``signals.eddy_period_days``.
     """
+    shortest = float(settings.signals.eddy_period_days[0])
+    if shortest < 2.0 * dt_days:
+        raise RecordError(
+            f"The shortest eddy period, {shortest:g} days, is less than two time steps "
+            f"({2.0 * dt_days:g} days): a record sampled every {dt_days:g} days cannot show "
+            "periods shorter than twice its step (the Nyquist period)",
+            where=f"{where}; signals.eddy_period_days",
+            todo=f"Raise the lower end of signals.eddy_period_days to {2.0 * dt_days:g} days "
+                 "or more, or give data at a shorter time step")
     longest = float(settings.signals.eddy_period_days[1])
     needed = 2.0 * np.sqrt(2.0) * longest / fourier_factor(settings.signals.omega0)
     length = n_t * dt_days
@@ -559,9 +568,17 @@ def demo(out: str | Path, variant: str = "default", progress: bool = True) -> st
               "western": western_boundary_params}[variant]()
     out = Path(out).resolve()
     data_dir = out.parent / f".{out.name}-scenario"
-    data_dir.mkdir(parents=True, exist_ok=True)
     try:
-        nc, truth_path = make_scenario(params, data_dir)
+        data_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise output_error(exc, data_dir, "create the demo's scenario folder beside --out") \
+            from None
+    try:
+        try:
+            nc, truth_path = make_scenario(params, data_dir)
+        except OSError as exc:
+            raise output_error(exc, data_dir, "write the demo's scenario data beside --out") \
+                from None
         settings = Settings()
         if not progress:
             settings = settings.replace("stream", progress=False)
