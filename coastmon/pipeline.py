@@ -112,8 +112,9 @@ def geometry_of(path: str | Path) -> Iterator[None]:
         raise GeometryError(exc.what, where=where, todo=exc.todo) from None
 
 
-def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
-    """Open the inputs lazily and build grid metrics, coastline, capes and frame."""
+def open_with_notes(inputs: list[str | Path], settings: Settings) -> tuple[xr.Dataset, list[str]]:
+    """:func:`open_dataset`, with its :class:`DataWarning` messages returned as notes for
+    the summary and the report (other warnings pass on unchanged)."""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", DataWarning)
         ds = open_dataset([Path(p) for p in inputs], settings.ingest)
@@ -121,6 +122,12 @@ def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
     for w in caught:
         if not issubclass(w.category, DataWarning):
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    return ds, notes
+
+
+def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
+    """Open the inputs lazily and build grid metrics, coastline, capes and frame."""
+    ds, notes = open_with_notes(inputs, settings)
     prestart_readers(ds, settings.stream)  # they import their libraries meanwhile
     lon = np.asarray(ds["lon"].values, dtype=np.float64)
     lat = np.asarray(ds["lat"].values, dtype=np.float64)

@@ -454,3 +454,22 @@ def test_positions_use_hemisphere_letters():
     assert lon_text(350.0) == "10.00W"
     assert html._position(-17.654, -34.5) == "34.50°S 17.65°W"
     assert figures._lon_text(-10.0) == "10°W" and figures._lat_text(-5.0) == "5°S"
+
+
+def test_update_with_new_data_of_fill_values_is_refused(state, tmp_path, capsys):
+    folder, new, lean = state
+    copy = tmp_path / "st"
+    shutil.copytree(folder, copy)
+    u, v = bi.flow(bi.NT + 20)
+    u, v = u[bi.NT:], v[bi.NT:]
+    u[10:] = np.nan  # the second half of the new steps are fill values
+    v[10:] = np.nan
+    empty = bi.write(bi.dataset(u, v, time=np.arange(bi.NT, bi.NT + 20)),
+                     tmp_path / "new_fill.nc")
+    manifest = (copy / "v000001" / "manifest.json").read_bytes()
+    rc, _, err = _run(["update", copy, empty, "--settings", lean, *QUIET], capsys)
+    # check: planted truth (half of the new steps are fill values: 50 % present, the
+    # last ten of 2001-12-27 + 0..19 days, 2002-01-06 to 2002-01-15)
+    _refused(rc, err, ["new_fill.nc", "Only 50 %", "2002-01-06 to 2002-01-15"])
+    assert (copy / "v000001" / "manifest.json").read_bytes() == manifest
+    assert (copy / "current").read_text().strip() == "v000001"

@@ -75,7 +75,6 @@ from coastmon.geometry import Coastline, Frame, Segment, local_projection
 from coastmon.grid.metrics import GridMetrics, coriolis_parameter
 from coastmon.io.atomic import atomic_write_text, staging_dir
 from coastmon.io.gridcheck import calendar_of, grid_differences
-from coastmon.io.ingest import open_dataset
 from coastmon.monitor.events import shedding_events
 from coastmon.stream import (
     SeriesFile,
@@ -645,6 +644,7 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
         lon, lat = metrics.lon, metrics.lat
         mask = np.asarray(ds["mask"].values)
         ld_km = prep.ld_km
+        notes = list(prep.notes)
         calendar = calendar_of(ds["time"].values)
         seen_s = np.zeros(0)
         dt_s = None
@@ -658,7 +658,7 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
                                                         where="the monitoring state"), settings)
         grid, coastline, capes, frame = load_geometry(store)
         lon, lat, mask = grid["lon"], grid["lat"], grid["mask"]
-        ds = open_dataset(paths, settings.ingest)
+        ds, notes = pipeline.open_with_notes(paths, settings)
         _check_same_grid(ds, lon, lat, mask, manifest, where)
         metrics = GridMetrics.from_lonlat(lon, lat)
         ld_km = float(manifest["deformation_radius_km"])
@@ -692,7 +692,6 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
     else:
         store_files = list(manifest["store_files"])
 
-    notes: list[str] = []
     t = time.perf_counter()
     steps = plan.new
     if np.all(np.diff(steps) == 1):
