@@ -28,7 +28,7 @@ from coastmon.cli import main
 from coastmon.config import IngestSettings, Settings
 from coastmon.errors import RecordError
 from coastmon.io.gridcheck import grid_differences
-from coastmon.io.ingest import open_dataset
+from coastmon.io.ingest import open_dataset, open_mask
 from coastmon.io.position import lat_text, lon_text, position_text
 from coastmon.pipeline import AnalyzeResult, Products, prepare
 
@@ -440,6 +440,14 @@ def test_a_file_stored_time_lon_lat_is_read_as_time_lat_lon(data, record, tmp_pa
     np.testing.assert_array_equal(ds["u"].values, normal["u"].values)
     np.testing.assert_array_equal(ds["lat"].values, normal["lat"].values)
     np.testing.assert_array_equal(ds["mask"].values, normal["mask"].values)
+    sea = (~bi.land_mask()).astype(np.int8)
+    mask_only = xr.Dataset(
+        {"mask": (("lon", "lat"), sea.T, {"standard_name": "sea_binary_mask"})},
+        coords={"lat": ("lat", bi.LAT, {"units": "degrees_north"}),
+                "lon": ("lon", bi.LON, {"units": "degrees_east"})})
+    static = open_mask([bi.write(mask_only, tmp_path / "mask_lon_lat.nc")], IngestSettings())
+    # check: planted truth (the generator's mask, stored transposed)
+    np.testing.assert_array_equal(static["mask"].values, sea)
 
 
 # --------------------------------------------------------------------------- item 10

@@ -472,6 +472,8 @@ def _plan(ds: xr.Dataset, s: IngestSettings, where: str, need_time: bool) -> _Pl
     else:
         static = next(n for n in [*masks, plan.bathymetry] if n is not None)
         plan.ydim, plan.xdim = _horizontal(ds, static, plan)
+        if _axes_swapped(ds, plan.ydim, plan.xdim):
+            plan.ydim, plan.xdim = plan.xdim, plan.ydim
     centre = {plan.ydim, plan.xdim}
     if plan.ssh is not None and set(ds[plan.ssh].dims[-2:]) != {plan.ydim, plan.xdim}:
         raise InputError(
