@@ -78,6 +78,8 @@ from coastmon.sources import (
 )
 from coastmon.sources.detect import nearshore_anomaly, time_step_days
 from coastmon.stream import prestart_readers, run_pass
+from coastmon.stream.pass_ import closing_spare_readers
+from coastmon.stream.readers import close_spares
 
 
 # --------------------------------------------------------------------------- preparation
@@ -129,15 +131,19 @@ def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
     """Open the inputs lazily and build grid metrics, coastline, capes and frame."""
     ds, notes = open_with_notes(inputs, settings)
     prestart_readers(ds, settings.stream)  # they import their libraries meanwhile
-    lon = np.asarray(ds["lon"].values, dtype=np.float64)
-    lat = np.asarray(ds["lat"].values, dtype=np.float64)
-    mask = np.asarray(ds["mask"].values)
-    metrics = GridMetrics.from_lonlat(lon, lat)
-    bathy = np.asarray(ds["bathymetry"].values) if "bathymetry" in ds else None
-    with geometry_of(inputs[0]):
-        coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
-        capes = find_capes(coastline, settings.coast)
-        frame = build_frame(coastline, lon, lat, mask, settings.coast)
+    try:
+        lon = np.asarray(ds["lon"].values, dtype=np.float64)
+        lat = np.asarray(ds["lat"].values, dtype=np.float64)
+        mask = np.asarray(ds["mask"].values)
+        metrics = GridMetrics.from_lonlat(lon, lat)
+        bathy = np.asarray(ds["bathymetry"].values) if "bathymetry" in ds else None
+        with geometry_of(inputs[0]):
+            coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
+            capes = find_capes(coastline, settings.coast)
+            frame = build_frame(coastline, lon, lat, mask, settings.coast)
+    except BaseException:
+        close_spares()  # no pass will take the readers started above
+        raise
     return Prepared(ds, metrics, coastline, capes, frame, deformation_radius_km(settings, frame),
                     [Path(p) for p in inputs], notes)
 
@@ -478,6 +484,7 @@ class AnalyzeResult:
         return "\n".join(lines)
 
 
+@closing_spare_readers
 def analyze(inputs: list[str | Path], out: str | Path, settings: Settings) -> AnalyzeResult:
     """The whole job: see the module docstring."""
     timings: dict[str, float] = {}

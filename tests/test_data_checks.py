@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import errno
 import json
+import os
 import re
 import shutil
 import warnings
@@ -481,3 +482,53 @@ def test_update_with_new_data_of_fill_values_is_refused(state, tmp_path, capsys)
     _refused(rc, err, ["new_fill.nc", "Only 50 %", "2002-01-06 to 2002-01-15"])
     assert (copy / "v000001" / "manifest.json").read_bytes() == manifest
     assert (copy / "current").read_text().strip() == "v000001"
+
+
+# --------------------------------------------------------------------------- reader processes
+
+
+def _reader_children() -> list[int]:
+    """Process ids of this process's children that run a coastmon reader (Linux /proc)."""
+    me, found = os.getpid(), []
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            stat = (entry / "stat").read_text()
+            cmd = (entry / "cmdline").read_bytes().replace(b"\0", b" ").decode(errors="replace")
+        except OSError:
+            continue
+        ppid = int(stat.rsplit(")", 1)[1].split()[1])
+        if ppid == me and "read_worker" in cmd:
+            found.append(int(entry.name))
+    return found
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs Linux /proc")
+@pytest.mark.parametrize("case", ["record_too_short", "geometry", "damaged_in_pass"])
+def test_a_failing_analyze_leaves_no_reader_process(case, data, record, tmp_path, capsys):
+    folder, files = data
+    u, v = record
+    toml = tmp_path / "readers.toml"
+    toml.write_text(LEAN + "[stream]\nread_processes = 2\n", encoding="utf-8")
+    if case == "record_too_short":
+        store = tmp_path / "short.zarr"
+        bi.dataset(u[:60], v[:60]).chunk({"time": 30}).to_zarr(
+            store, mode="w", consolidated=True, zarr_format=2)
+        names = ["short.zarr", "60 days"]
+    elif case == "geometry":
+        store = tmp_path / "all_sea.zarr"
+        bi.dataset(np.nan_to_num(u, nan=0.1) + 0.05, np.nan_to_num(v, nan=0.1) + 0.05).chunk(
+            {"time": 30}).to_zarr(store, mode="w", consolidated=True, zarr_format=2)
+        names = ["all_sea.zarr", "no land"]
+    else:
+        store = _zarr(tmp_path, "cut_pass.zarr", {"time": 30})
+        chunk = store / "u" / "4.0.0"
+        chunk.write_bytes(chunk.read_bytes()[: chunk.stat().st_size // 2])
+        names = ["cut_pass.zarr", "cannot be decoded"]
+    assert _reader_children() == []
+    rc, _, err = _run(["analyze", store, "--out", tmp_path / "out", "--settings", toml,
+                       *QUIET], capsys)
+    _refused(rc, err, names, tmp_path / "out")
+    # check: common practice, no source (a failed command leaves no child process behind)
+    assert _reader_children() == []

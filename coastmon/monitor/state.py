@@ -85,6 +85,7 @@ from coastmon.stream import (
     stats_from_state,
 )
 from coastmon.stream.moments import grid_signature
+from coastmon.stream.pass_ import closing_spare_readers
 
 STATE_FORMAT_VERSION = 1
 """Layout version of a monitoring state; a state with another version is refused."""
@@ -629,6 +630,7 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
     return result
 
 
+@closing_spare_readers
 def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: bool,
             manifest: dict[str, Any] | None, current: str | None,
             timings: dict[str, float], work: Path) -> UpdateResult:

@@ -21,6 +21,7 @@ reproducible to the last bit whatever the scheduler.
 
 from __future__ import annotations
 
+import functools
 import json
 import os
 import queue
@@ -32,7 +33,7 @@ from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import NamedTuple
+from typing import NamedTuple, ParamSpec, TypeVar
 
 import dask
 import dask.array as da
@@ -58,6 +59,9 @@ CHUNK_BUDGET_BYTES = 128 * 2**20
 SCRATCH_BYTES_PER_POINT = 16
 """Kernel scratch per grid point and time step: ζ (for sampling) and Okubo–Weiss W (for
 the eddy-core count), both float64."""
+
+P = ParamSpec("P")
+R = TypeVar("R")
 
 SERIES_BUFFER_BYTES = 4 * 2**20
 """Sampled series gathered per file before they are written (bytes): a few MB per file
@@ -320,6 +324,20 @@ def prestart_readers(ds: xr.Dataset, settings: StreamSettings) -> None:
     readers.prestart(plan.n_readers, plan.window)
 
 
+def closing_spare_readers(run: Callable[P, R]) -> Callable[P, R]:
+    """Decorate a command so that reader processes started ahead by
+    :func:`prestart_readers` and not taken by a pass are closed when it returns or fails
+    (e.g. a record found too short after the readers were started)."""
+    @functools.wraps(run)
+    def wrapper(*args: P.args, **kwargs: P.kwargs) -> R:
+        try:
+            return run(*args, **kwargs)
+        finally:
+            readers.close_spares()
+
+    return wrapper
+
+
 def _groups(ds: xr.Dataset, seasonal: bool) -> np.ndarray:
     nt = ds.sizes["time"]
     if not seasonal:
@@ -441,6 +459,7 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
     grid_size = metrics.shape[0] * metrics.shape[1]
     timings = dict.fromkeys(("read_s", "kernel_s", "sample_s", "merge_s", "write_s"), 0.0)
     client = _client(settings.scheduler) if settings.scheduler else None
+    reader = None
     try:
         if client is not None:
             nthreads = sum(client.nthreads().values()) or 1
@@ -457,7 +476,6 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             step_limit=max(1, CHUNK_BUDGET_BYTES // (SCRATCH_BYTES_PER_POINT * grid_size)),
         )
         bar = _progress_bar(len(bounds), settings.progress)
-        reader = None
         if client is not None:
             window = 2 * nthreads
             submit, collect, pool = _distributed_submitter(client, ds, names, bounds, consts,
@@ -534,6 +552,8 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             elif reader is not None:
                 reader.shutdown(wait=True, cancel_futures=True)
     finally:
+        if isinstance(reader, ProcessReader):
+            reader.close()  # again: also when setting up the pass failed (closing is idempotent)
         if client is not None:
             client.close()
         for writer in files.values():

@@ -400,10 +400,11 @@ _SPARE: dict[tuple[int, int], ProcessReader] = {}
 
 def prestart(n_proc: int, n_slots: int) -> None:
     """Start a reader of ``n_proc`` processes now, for the next :func:`take` that asks for
-    the same; one not taken is closed at exit."""
+    the same. At most one is kept: a spare of other numbers is closed first; one not
+    taken is closed by :func:`close_spares` (the commands call it when they end) or at
+    exit."""
     if n_proc > 0 and (n_proc, n_slots) not in _SPARE:
-        if not _SPARE:
-            atexit.register(_close_spares)
+        close_spares()
         _SPARE[(n_proc, n_slots)] = ProcessReader(n_proc, n_slots)
 
 
@@ -413,6 +414,10 @@ def take(n_proc: int, n_slots: int) -> ProcessReader:
     return reader if reader is not None else ProcessReader(n_proc, n_slots)
 
 
-def _close_spares() -> None:
+def close_spares() -> None:
+    """Close the readers started ahead and not taken by a pass."""
     while _SPARE:
         _SPARE.popitem()[1].close()
+
+
+atexit.register(close_spares)
