@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import math
 import tomllib
 import types
 import typing
@@ -189,7 +190,9 @@ class Settings:
         """A copy with some values of one section changed (values are validated)."""
         current = getattr(self, section)
         checked = {k: coerce_setting(type(current), k, v, f"[{section}] {k}") for k, v in values.items()}
-        return dataclasses.replace(self, **{section: dataclasses.replace(current, **checked)})
+        new = dataclasses.replace(self, **{section: dataclasses.replace(current, **checked)})
+        validate(new)
+        return new
 
 
 def _suggest(name: str, options: list[str]) -> str:
@@ -249,6 +252,9 @@ def _check_type(tp: Any, value: Any, where: str) -> Any:
         if isinstance(value, bool) or not isinstance(value, int | float):
             raise SettingsError(f"Expected a number, got {value!r}", where=where,
                                 todo="Give a number such as 10.0")
+        if not math.isfinite(value):
+            raise SettingsError(f"Expected a finite number, got {value!r}", where=where,
+                                todo="Give an ordinary number such as 10.0 (not inf or nan)")
         return float(value)
     if tp is int:
         if isinstance(value, bool) or not isinstance(value, int):
@@ -287,7 +293,7 @@ def settings_from_dict(data: dict[str, Any], where: str = "settings") -> Setting
         values = {k: coerce_setting(cls, k, v, f"{where}, [{name}] {k}") for k, v in table.items()}
         built[name] = cls(**values)
     settings = Settings(**built)
-    validate(settings)
+    validate(settings, where)
     return settings
 
 
@@ -299,6 +305,12 @@ def read_toml(path: str | Path, what: str, missing_todo: str, format_hint: str) 
     except FileNotFoundError:
         raise SettingsError(f"The {what} does not exist", where=str(path),
                             todo=missing_todo) from None
+    except IsADirectoryError:
+        raise SettingsError(f"The {what} is a folder, not a file", where=str(path),
+                            todo=f"{missing_todo}: it must name a TOML file") from None
+    except OSError as exc:
+        raise SettingsError(f"The {what} cannot be read ({exc.strerror or exc})",
+                            where=str(path), todo=f"{missing_todo} and its permissions") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise SettingsError(f"The {what} is not valid TOML ({exc})", where=str(path),
                             todo=f"Fix the line named above; {format_hint}") from None
@@ -311,8 +323,18 @@ def load_settings(path: str | Path) -> Settings:
     return settings_from_dict(data, where=str(path))
 
 
-def validate(settings: Settings) -> None:
-    """Cross-field checks that a type check cannot express."""
+MAX_BOOTSTRAP = 100_000
+"""Most bootstrap resamples accepted: the resampled feeds are held in memory (sources x
+resamples x stations), and 10**5 already resolves a 95 % interval far beyond its
+sampling error (1000 to 10000 are usual)."""
+READ_PROCESSES_LIMIT = 64
+"""Most reader processes accepted: each holds a chunk in shared memory and its libraries
+(about 150 MB), so thousands exhaust any machine's memory; no disk feeds more."""
+
+
+def validate(settings: Settings, where: str = "settings") -> None:
+    """Cross-field checks that a type check cannot express (``where``: the settings file,
+    or the options, named in the message)."""
     c = settings.coast
     checks = [
         (c.resample_km > 0, "coast.resample_km must be positive"),
@@ -331,7 +353,10 @@ def validate(settings: Settings) -> None:
         (0 < settings.signals.significance < 1, "signals.significance must be in (0, 1)"),
         (settings.signals.eddy_period_days[0] < settings.signals.eddy_period_days[1],
          "signals.eddy_period_days must be (shortest, longest)"),
-        (settings.sources.n_bootstrap >= 20, "sources.n_bootstrap must be at least 20"),
+        (settings.signals.eddy_period_days[0] > 0,
+         "signals.eddy_period_days must be positive (shortest > 0)"),
+        (20 <= settings.sources.n_bootstrap <= MAX_BOOTSTRAP,
+         f"sources.n_bootstrap must be from 20 to {MAX_BOOTSTRAP}"),
         (0 <= settings.sources.min_persistence <= 1, "sources.min_persistence must be in [0, 1]"),
         (settings.monitor.event_threshold_sd > 0 and settings.monitor.event_min_days >= 0
          and settings.monitor.probe_km > 0 and 0 < settings.monitor.min_lag_correlation < 1,
@@ -341,11 +366,17 @@ def validate(settings: Settings) -> None:
          "output.gis may contain only gpkg, geojson, shp, csv"),
         (settings.ingest.time_chunk is None or settings.ingest.time_chunk >= 1,
          "ingest.time_chunk must be at least 1"),
-        (settings.stream.read_processes is None or settings.stream.read_processes >= 0,
-         "stream.read_processes must be 0 or more"),
-        (settings.ingest.ssh_smooth_km >= 0, "ingest.ssh_smooth_km must be 0 or more"),
+        (settings.stream.read_processes is None
+         or 0 <= settings.stream.read_processes <= READ_PROCESSES_LIMIT,
+         f"stream.read_processes must be from 0 to {READ_PROCESSES_LIMIT}"),
+        (settings.ingest.depth_m is None or settings.ingest.depth_m >= 0,
+         "ingest.depth_m (--depth) must be 0 or more: metres, positive down"),
+        (settings.ingest.u_var is None or settings.ingest.u_var != settings.ingest.v_var,
+         "ingest.u_var and ingest.v_var (--u-var, --v-var) name the same variable"),
+        (settings.ingest.ssh_smooth_km >= 0,
+         "ingest.ssh_smooth_km (--ssh-smooth) must be 0 or more"),
     ]
     for ok, message in checks:
         if not ok:
-            raise SettingsError(message, where="settings",
+            raise SettingsError(message, where=where,
                                 todo="Correct the value (defaults are listed in docs/user-guide.md)")

@@ -49,3 +49,8 @@ class RecordError(CoastmonError):
 
 class OutputError(CoastmonError):
     """The output location cannot be written safely."""
+
+
+class DataWarning(UserWarning):
+    """Data that look implausible but can still be analysed (e.g. speeds that look like
+    cm/s); the pipeline lists these as notes in the summary and the report."""

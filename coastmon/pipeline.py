@@ -21,6 +21,7 @@ import json
 import platform
 import shutil
 import time
+import warnings
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -37,7 +38,14 @@ from xarray.backends import NetCDF4BackendEntrypoint, ZarrBackendEntrypoint
 from coastmon import __version__
 from coastmon.assess.spinup import SpinupCurve, spinup_curve
 from coastmon.config import Settings
-from coastmon.errors import CoastmonError, GeometryError, InputError, OutputError, RecordError
+from coastmon.errors import (
+    CoastmonError,
+    DataWarning,
+    GeometryError,
+    InputError,
+    OutputError,
+    RecordError,
+)
 from coastmon.geometry import (
     build_frame,
     capes_layer,
@@ -50,6 +58,7 @@ from coastmon.io.atomic import atomic_write_text, output_error, staging_dir
 from coastmon.io.gis import write_layers
 from coastmon.io.ingest import open_dataset
 from coastmon.io.owned import owned_dir
+from coastmon.io.position import position_text
 from coastmon.io.results import CAUTIONS, write_results
 from coastmon.signals import (
     cwt_morlet,
@@ -69,6 +78,8 @@ from coastmon.sources import (
 )
 from coastmon.sources.detect import nearshore_anomaly, time_step_days
 from coastmon.stream import prestart_readers, run_pass
+from coastmon.stream.pass_ import closing_spare_readers
+from coastmon.stream.readers import close_spares
 
 
 # --------------------------------------------------------------------------- preparation
@@ -83,6 +94,7 @@ class Prepared:
     frame: Any
     ld_km: float
     inputs: list[Path]
+    notes: list[str] = field(default_factory=list)
 
 
 def deformation_radius_km(settings: Settings, frame) -> float:
@@ -102,21 +114,38 @@ def geometry_of(path: str | Path) -> Iterator[None]:
         raise GeometryError(exc.what, where=where, todo=exc.todo) from None
 
 
+def open_with_notes(inputs: list[str | Path], settings: Settings) -> tuple[xr.Dataset, list[str]]:
+    """:func:`open_dataset`, with its :class:`DataWarning` messages returned as notes for
+    the summary and the report (other warnings pass on unchanged)."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", DataWarning)
+        ds = open_dataset([Path(p) for p in inputs], settings.ingest)
+    notes = [str(w.message) for w in caught if issubclass(w.category, DataWarning)]
+    for w in caught:
+        if not issubclass(w.category, DataWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    return ds, notes
+
+
 def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
     """Open the inputs lazily and build grid metrics, coastline, capes and frame."""
-    ds = open_dataset([Path(p) for p in inputs], settings.ingest)
+    ds, notes = open_with_notes(inputs, settings)
     prestart_readers(ds, settings.stream)  # they import their libraries meanwhile
-    lon = np.asarray(ds["lon"].values, dtype=np.float64)
-    lat = np.asarray(ds["lat"].values, dtype=np.float64)
-    mask = np.asarray(ds["mask"].values)
-    metrics = GridMetrics.from_lonlat(lon, lat)
-    bathy = np.asarray(ds["bathymetry"].values) if "bathymetry" in ds else None
-    with geometry_of(inputs[0]):
-        coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
-        capes = find_capes(coastline, settings.coast)
-        frame = build_frame(coastline, lon, lat, mask, settings.coast)
+    try:
+        lon = np.asarray(ds["lon"].values, dtype=np.float64)
+        lat = np.asarray(ds["lat"].values, dtype=np.float64)
+        mask = np.asarray(ds["mask"].values)
+        metrics = GridMetrics.from_lonlat(lon, lat)
+        bathy = np.asarray(ds["bathymetry"].values) if "bathymetry" in ds else None
+        with geometry_of(inputs[0]):
+            coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
+            capes = find_capes(coastline, settings.coast)
+            frame = build_frame(coastline, lon, lat, mask, settings.coast)
+    except BaseException:
+        close_spares()  # no pass will take the readers started above
+        raise
     return Prepared(ds, metrics, coastline, capes, frame, deformation_radius_km(settings, frame),
-                    [Path(p) for p in inputs])
+                    [Path(p) for p in inputs], notes)
 
 
 # --------------------------------------------------------------------------- small data
@@ -137,6 +166,15 @@ def check_record_length(n_t: int, dt_days: float, settings: Settings,
     N dt must be at least ``2 sqrt(2) / (lambda/s)`` (about 2.74 for omega0 = 6) times the
     longest period of ``signals.eddy_period_days``.
     """
+    shortest = float(settings.signals.eddy_period_days[0])
+    if shortest < 2.0 * dt_days:
+        raise RecordError(
+            f"The shortest eddy period, {shortest:g} days, is less than two time steps "
+            f"({2.0 * dt_days:g} days): a record sampled every {dt_days:g} days cannot show "
+            "periods shorter than twice its step (the Nyquist period)",
+            where=f"{where}; signals.eddy_period_days",
+            todo=f"Raise the lower end of signals.eddy_period_days to {2.0 * dt_days:g} days "
+                 "or more, or give data at a shorter time step")
     longest = float(settings.signals.eddy_period_days[1])
     needed = 2.0 * np.sqrt(2.0) * longest / fourier_factor(settings.signals.omega0)
     length = n_t * dt_days
@@ -185,12 +223,23 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     ranked, gates_df, boot = rank_sources(found, feed)
     axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km)
     ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
-    if len(ranked) and np.nanmin(ranked["rank_stability"].values[:3]) < 0.8:
+    stability = np.asarray(ranked["rank_stability"].values[:3], dtype=float) if len(ranked) \
+        else np.zeros(0)
+    stability = stability[np.isfinite(stability)]
+    if stability.size and stability.min() < 0.8:
         warnings.append(
             "The ranking is not stable under resampling of the record: some of the top "
-            f"sources keep their rank in only {100 * np.nanmin(ranked['rank_stability'].values[:3]):.0f} % "
+            f"sources keep their rank in only {100 * stability.min():.0f} % "
             "of bootstrap resamples. A longer record would settle it."
         )
+    unmeasured = int((~np.isfinite(np.asarray(ranked["feed_w_per_m"], dtype=float))).sum()) \
+        if len(ranked) else 0
+    if unmeasured:
+        warnings.append(
+            f"The offshore feed of {unmeasured} of {len(ranked)} source(s) could not be "
+            "measured: the series at their gates "
+            f"({settings.sources.gate_offset_km:g} km offshore) miss more than a tenth of the "
+            "time steps, or their rays leave the grid. Their rank is last.")
     lat_mid = float(np.nanmedian(frame.stations["lat"]))
     c_rossby = float(long_rossby_speed(float(beta_parameter(lat_mid)), ld_km * 1000.0))
 
@@ -402,6 +451,17 @@ def pass_error(exc: OSError, work: Path, inputs: list[Path]) -> CoastmonError:
                       todo="Check the files with a NetCDF or Zarr tool, or copy them again")
 
 
+def coverage_notes(ds: xr.Dataset, result) -> list[str]:
+    """Notes on the data missing in the record read by the pass (raises when too little
+    is left; see :mod:`coastmon.assess.coverage`)."""
+    from coastmon.assess.coverage import check_coverage
+
+    return check_coverage(result.valid_steps, result.stats["n_valid"].values,
+                          ds["mask"].values, ds["time"].values if "time" in ds.coords else None,
+                          json.loads(ds.attrs.get("source_files", "[]")),
+                          json.loads(ds.attrs.get("source_steps", "[]")))
+
+
 @dataclass
 class AnalyzeResult:
     out: Path
@@ -413,9 +473,10 @@ class AnalyzeResult:
         lines = [f"coastmon: {len(src)} source(s) found; results in {self.out}"]
         for _, r in src.head(10).iterrows():
             cape = r["cape_id"] or "unanchored"
+            feed = (f"feed {r['feed_w_per_m']:.3g} W/m [{r['feed_lo']:.3g}, {r['feed_hi']:.3g}]"
+                    if np.isfinite(r["feed_w_per_m"]) else "feed not measurable (see notes)")
             lines.append(
-                f"  rank {int(r['rank'])}: {r['lat']:.2f}N {r['lon']:.2f}E  "
-                f"feed {r['feed_w_per_m']:.3g} W/m [{r['feed_lo']:.3g}, {r['feed_hi']:.3g}]  "
+                f"  rank {int(r['rank'])}: {position_text(r['lon'], r['lat'])}  {feed}  "
                 f"persistence {r['persistence']:.2f}  cape {cape}")
         for w in self.products.warnings:
             lines.append(f"  note: {w}")
@@ -423,6 +484,7 @@ class AnalyzeResult:
         return "\n".join(lines)
 
 
+@closing_spare_readers
 def analyze(inputs: list[str | Path], out: str | Path, settings: Settings,
             add_to_stage: Callable[[Path], None] | None = None) -> AnalyzeResult:
     """The whole job: see the module docstring.
@@ -447,8 +509,10 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings,
             raise pass_error(exc, Path(work), inputs) from None
         timings["stream_pass_s"] = time.perf_counter() - t
         t = time.perf_counter()
+        notes = prep.notes + coverage_notes(prep.ds, result)
         products = analyse_series(result.stats, result.series, prep.frame, prep.capes,
                                   settings, prep.ld_km)
+        products.warnings[:0] = notes
         timings["analyses_s"] = time.perf_counter() - t
         t = time.perf_counter()
         provenance = {
@@ -527,7 +591,10 @@ def demo(out: str | Path, variant: str = "default", progress: bool = True) -> st
                       "western": "western_boundary_params"}
     out = Path(out).resolve()
     with owned_dir("coastmon-demo-") as data_dir:
-        nc, truth_path = make_scenario(params, data_dir)
+        try:
+            nc, truth_path = make_scenario(params, data_dir)
+        except OSError as exc:
+            raise output_error(exc, data_dir, "write the demo's scenario data") from None
         settings = Settings()
         if not progress:
             settings = settings.replace("stream", progress=False)

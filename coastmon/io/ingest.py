@@ -30,11 +30,13 @@ from xarray.backends import ZarrBackendEntrypoint
 
 from coastmon.compiled import compiled
 from coastmon.config import IngestSettings
-from coastmon.errors import InputError, RecordError
+from coastmon.errors import DataWarning, InputError, RecordError
 from coastmon.grid.metrics import GridMetrics
 from coastmon.grid.operators import geostrophic_velocity
 from coastmon.io import chunks as chunk_reader
 from coastmon.io import sgrid, vertical
+from coastmon.io.damage import decode_failure
+from coastmon.io.gridcheck import calendar_of, grid_differences
 from coastmon.io.units import scale_factor
 
 CHUNK_BUDGET_BYTES = 24 * 2**20
@@ -284,6 +286,16 @@ def _is_lon(var: xr.DataArray, name: str) -> bool:
             or name.lower() in ("lon", "longitude", "nav_lon") or name.lower().startswith("lon_"))
 
 
+def _axes_swapped(ds: xr.Dataset, ydim: str, xdim: str) -> bool:
+    """Whether the last two dims are (longitude, latitude): 1-D latitude on the last dim
+    and 1-D longitude on the one before (CF allows any order; canonical is (y, x))."""
+    def on(test, dim: str) -> bool:
+        return any(test(v, str(n)) and v.dims == (dim,) for n, v in ds.variables.items())
+
+    return (on(_is_lat, xdim) and on(_is_lon, ydim)
+            and not on(_is_lat, ydim) and not on(_is_lon, xdim))
+
+
 def _find_latlon(ds: xr.Dataset, ydim: str, xdim: str, where: str) -> tuple[str, str]:
     def pick(test) -> str | None:
         found = [str(n) for n, v in ds.variables.items() if test(v, str(n))]
@@ -435,12 +447,21 @@ def _plan(ds: xr.Dataset, s: IngestSettings, where: str, need_time: bool) -> _Pl
             _centre_dims(ds, plan)
         else:
             plan.ydim, plan.xdim = _horizontal(ds, main, plan)
+        if not plan.staggered and _axes_swapped(ds, plan.ydim, plan.xdim):
+            plan.ydim, plan.xdim = plan.xdim, plan.ydim  # stored (..., lon, lat): transposed
         middle = [str(d) for d in dims if d != plan.tdim and d not in dims[-2:]]
         if len(middle) > 1:
             raise InputError(f"The variable '{main}' has more dimensions than (time, depth, y, x): "
                              f"{dims}", where=where,
                              todo="Select a single value of the extra dimensions before coastmon")
         plan.zdim = middle[0] if middle else None
+        if need_time and s.depth_m is not None and plan.zdim is None:
+            raise InputError(
+                f"A depth of {s.depth_m:g} m was asked for, but '{main}' has no depth "
+                f"dimension (its dimensions are {dims}): the file holds a single level",
+                where=f"{where}; --depth (ingest.depth_m)",
+                todo="Leave --depth unset for single-level data, or give files that keep "
+                     "their depth levels")
         zname = _vertical_std(ds, plan.zdim) if plan.zdim else None
         if zname is not None:
             terms = vertical.parse_formula_terms(str(ds[zname].attrs.get("formula_terms", "")))
@@ -451,8 +472,10 @@ def _plan(ds: xr.Dataset, s: IngestSettings, where: str, need_time: bool) -> _Pl
     else:
         static = next(n for n in [*masks, plan.bathymetry] if n is not None)
         plan.ydim, plan.xdim = _horizontal(ds, static, plan)
+        if _axes_swapped(ds, plan.ydim, plan.xdim):
+            plan.ydim, plan.xdim = plan.xdim, plan.ydim
     centre = {plan.ydim, plan.xdim}
-    if plan.ssh is not None and tuple(ds[plan.ssh].dims[-2:]) != (plan.ydim, plan.xdim):
+    if plan.ssh is not None and set(ds[plan.ssh].dims[-2:]) != {plan.ydim, plan.xdim}:
         raise InputError(
             f"The sea surface height '{plan.ssh}' has dimensions {ds[plan.ssh].dims}, not the "
             f"cell-centre grid ({plan.ydim}, {plan.xdim}) of the velocity", where=where,
@@ -538,6 +561,8 @@ def _combine(files: list[Path], kinds: list[str], first: xr.Dataset, plan: _Plan
                                  "from this file", where=str(path),
                                  todo="Give files of one series with the same variables")
         _probe_last(ds, main, plan.tdim, path)
+        if path != files[0]:
+            _check_same_grid(ds, first, plan, path, files[0])
         start = ds[plan.tdim].values[:1] if plan.tdim in ds.variables else np.array([])
         step = _aligned_chunk(tc, ds[main], plan.tdim, s)
         ds.close()
@@ -559,6 +584,46 @@ def _combine(files: list[Path], kinds: list[str], first: xr.Dataset, plan: _Plan
     combined.attrs["_files"] = json.dumps([str(p.resolve()) for _, p, _ in opened])
     combined.attrs["_lengths"] = json.dumps([int(ds.sizes[plan.tdim]) for _, _, ds in opened])
     return combined
+
+
+def _grid_of(ds: xr.Dataset, plan: _Plan) -> tuple[np.ndarray, np.ndarray]:
+    """The file's own latitudes and longitudes as (y, x) arrays (1-D ones broadcast)."""
+    lat = ds[plan.lat].transpose(*[d for d in (plan.ydim, plan.xdim) if d in ds[plan.lat].dims])
+    lon = ds[plan.lon].transpose(*[d for d in (plan.ydim, plan.xdim) if d in ds[plan.lon].dims])
+    lat_v, lon_v = np.asarray(lat.values, np.float64), np.asarray(lon.values, np.float64)
+    if lat_v.ndim == 1 and lon_v.ndim == 1:
+        lon_v, lat_v = np.meshgrid(lon_v, lat_v)
+    return lon_v, lat_v
+
+
+def _check_same_grid(ds: xr.Dataset, first: xr.Dataset, plan: _Plan, path: Path,
+                     first_path: Path) -> None:
+    """Refuse to join files on different grids, with other level counts or calendars."""
+    problems = []
+    if plan.tdim in ds.variables and plan.tdim in first.variables:
+        cal, cal_first = calendar_of(ds[plan.tdim].values), calendar_of(first[plan.tdim].values)
+        if cal != cal_first:
+            problems.append(f"the '{cal}' calendar instead of '{cal_first}'")
+    try:
+        problems += grid_differences(*_grid_of(ds, plan), *_grid_of(first, plan))
+    except (KeyError, ValueError):
+        problems.append(f"no coordinates '{plan.lat}'/'{plan.lon}' on the dimensions "
+                        f"({plan.ydim}, {plan.xdim})")
+    main = plan.u or plan.ssh
+    if not problems and main is not None:
+        sizes = {d: n for d, n in zip(ds[main].dims, ds[main].shape, strict=True)
+                 if d != plan.tdim}
+        sizes_first = {d: n for d, n in zip(first[main].dims, first[main].shape, strict=True)
+                       if d != plan.tdim}
+        if sizes != sizes_first:
+            problems.append(f"'{main}' of sizes {sizes} instead of {sizes_first}")
+    if problems:
+        raise InputError(
+            f"The input files cannot be joined into one record: {path.name} has "
+            + "; ".join(problems) + f" compared with {first_path.name}",
+            where=f"{first_path}, {path}",
+            todo="Give files of one model run or product on one grid (regrid or convert them "
+                 "first), or analyse them separately")
 
 
 _FILTER_KEYS = ("zlib", "szip", "zstd", "bzip2", "blosc", "compression", "compressor",
@@ -673,9 +738,32 @@ def _zeta_block(u: np.ndarray, v: np.ndarray, cells: sgrid.CornerCells, wall_u: 
     return sgrid.native_vorticity(u, v, cells).astype(np.float32)
 
 
-def _first_step(da: xr.DataArray, tdim: str | None) -> np.ndarray:
-    return np.asarray((da.isel({tdim: 0}) if tdim and tdim in da.dims else da).values,
-                      dtype=np.float64)
+MASK_PROBE_STEPS = 3
+"""Time steps read before the pass to tell land from sea when no mask variable is given:
+the first, the middle and the last of the record. Land is where every one of them is
+missing, so a time step that is itself missing (a lost chunk, a file of fill values)
+cannot draw a coast."""
+
+
+def probe_steps(n_time: int) -> list[int]:
+    """Indices of the time steps read to find the land/sea mask (first, middle, last)."""
+    return sorted({int(k) for k in np.linspace(0, max(n_time - 1, 0), MASK_PROBE_STEPS)
+                   .round()})
+
+
+def _steps_of(da: xr.DataArray, tdim: str, where: str) -> np.ndarray:
+    """The values as (steps, y, x) float64 (one step when there is no time dimension)."""
+    try:
+        values = np.asarray(da.values, dtype=np.float64)
+    except Exception as exc:
+        if not decode_failure(exc):
+            raise
+        raise InputError(f"A stored chunk of the input cannot be decoded ({type(exc).__name__}: "
+                         f"{exc}); the file is damaged or truncated",
+                         where=f"{where}, the time steps read for the land/sea mask "
+                               "(first, middle and last)",
+                         todo="Check the file with a NetCDF or Zarr tool, or copy it again") from None
+    return values if tdim in da.dims else values[None]
 
 
 def _mask_from_variable(ds: xr.Dataset, name: str, plan: _Plan) -> np.ndarray:
@@ -715,6 +803,31 @@ def _check_values(values: np.ndarray, limit: float, what: str, where: str,
             where=where,
             todo="Check the units and the _FillValue/missing_value attributes of the variable, "
                  "or mask the bad points")
+
+
+TYPICAL_SPEED_LIMIT_M_S = 3.0
+"""Ocean currents above about 2.5 m s-1 are rare (the fastest western boundary currents and
+straits); when the 90th percentile of the speed at sea exceeds this, the velocity is most
+likely in cm s-1 labelled (or left) as m s-1."""
+
+
+def _check_speed_scale(u0: np.ndarray, v0: np.ndarray, sea: np.ndarray, u_name: str,
+                       v_name: str, raw: xr.Dataset, where: str) -> None:
+    """Warn (DataWarning) when typical speeds at the first step look like cm/s read as m/s."""
+    speed = np.hypot(u0, v0)[sea]
+    speed = speed[np.isfinite(speed)]
+    if speed.size < 10:
+        return
+    p90 = float(np.percentile(speed, 90))
+    if p90 > TYPICAL_SPEED_LIMIT_M_S:
+        units = [f"'{n}' in '{raw[n].attrs.get('units', '(none)')}'" for n in (u_name, v_name)]
+        warnings.warn(DataWarning(
+            f"The speeds look like centimetres per second read as metres per second: at the "
+            f"first time step the 90th percentile of the speed at sea is {p90:.3g} m/s, above "
+            f"the {TYPICAL_SPEED_LIMIT_M_S:g} m/s that ocean currents rarely exceed (units "
+            f"attributes {' and '.join(units)}; {where}). If the data are in cm/s, set their "
+            "units attribute to 'cm s-1' (every result scales with the speed squared)"),
+            stacklevel=2)
 
 
 @compiled()
@@ -871,6 +984,7 @@ def open_dataset(paths: list[str | Path], settings: IngestSettings,
     builder = _Builder(raw, plan, settings, where, need_time)
     out = builder.build()
     out.attrs["source_files"] = json.dumps(file_list)
+    out.attrs["source_steps"] = json.dumps(lengths)
     out.attrs["compressed_input"] = int(raw.attrs.get("_compressed", 0))
     out.attrs["direct_read"] = int(raw.attrs.get("_direct_read", 0))
     if "u" in out:
@@ -1088,6 +1202,8 @@ class _Builder:
 
     def _mask(self, u0: np.ndarray | None, v0: np.ndarray | None,
               ssh0: np.ndarray | None) -> np.ndarray:
+        """Sea where the data are present at one or more of the probed steps (the fields
+        are (steps, y, x)); all present: the first step's exact zeros of u and v, if any."""
         fields = [f for f in (u0, v0) if f is not None] or [f for f in (ssh0,) if f is not None]
         if not fields:
             bathy = self._bathymetry()
@@ -1095,16 +1211,17 @@ class _Builder:
                 raise InputError("No land/sea mask, velocity or bathymetry to tell land from sea",
                                  where=self.where, todo="Name a mask variable in ingest.mask_var")
             return (np.isfinite(bathy) & (bathy > 0)).astype(np.int8)
-        finite = np.all([np.isfinite(f) for f in fields], axis=0)
+        finite = np.all([np.isfinite(f) for f in fields], axis=0).any(axis=0)
         if not finite.any():
-            raise InputError("Every value of the data is missing in the first time step",
+            raise InputError("Every value of the data is missing in the time steps read to "
+                             "find the land/sea mask (the first, middle and last)",
                              where=self.where,
                              todo="Check the file (and its _FillValue attribute) or the variable "
                                   "names in the settings")
         if not finite.all():
             return finite.astype(np.int8)
         if u0 is not None and v0 is not None:
-            zero = (u0 == 0) & (v0 == 0)
+            zero = (u0[0] == 0) & (v0[0] == 0)
             if zero.any() and not zero.all():
                 warnings.warn(f"{self.where}: no mask and no missing values; points where u and "
                               "v are exactly 0 at the first time step are taken as land",
@@ -1153,12 +1270,18 @@ class _Builder:
                 return da
             return da.isel(y=y_order, x=x_order)
 
-        # The first time step is taken before any other operation, so only it is read.
-        head = self.raw.isel({p.tdim: slice(0, 1)}) if p.tdim else self.raw
-        first = [None if da is None else _first_step(reorder(da), "time")
-                 for da in self._fields(head)]
+        # The probed time steps (first, middle, last) are taken before any other operation,
+        # so only they are read.
+        # Each is read as a slice of its own (a list of steps would read every chunk).
+        heads = ([self.raw.isel({p.tdim: slice(k, k + 1)})
+                  for k in probe_steps(self.raw.sizes[p.tdim])] if p.tdim else [self.raw])
+        read = [[None if da is None else _steps_of(reorder(da), "time", self.where)
+                 for da in self._fields(head)] for head in heads]
+        probes = [None if read[0][i] is None else np.concatenate([r[i] for r in read])
+                  for i in range(len(read[0]))]
+        first = [None if a is None else a[0] for a in probes]
         u, v, ssh = (reorder(da) for da in self._fields(self.raw)) if have_time else (None,) * 3
-        mask = self._mask(*first) if p.mask is None else self._reorder_np(
+        mask = self._mask(*probes) if p.mask is None else self._reorder_np(
             _mask_from_variable(self.raw, p.mask, p), y_order, x_order)
         bathy = self._reorder_np(self._bathymetry(), y_order, x_order)
         if (bathy is not None and s.depth_m is not None and p.zdim
@@ -1182,6 +1305,7 @@ class _Builder:
                 for arr, what in ((first[0], "u (m s-1)"), (first[1], "v (m s-1)")):
                     _check_values(np.where(mask == 1, arr, np.nan), MAX_SPEED_M_S, what,
                                   self.where, "at the first time step")
+                _check_speed_scale(first[0], first[1], mask == 1, p.u, p.v, self.raw, self.where)
             # Land is set to NaN by the guard that open_dataset puts on u and v.
             data["u"] = self._finish(u, "eastward_sea_water_velocity", "m s-1")
             data["v"] = self._finish(v, "northward_sea_water_velocity", "m s-1")

@@ -63,6 +63,8 @@ import re
 import secrets
 import shutil
 import time
+import zipfile
+import zlib
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -79,7 +81,7 @@ from coastmon.errors import InputError, OutputError, RecordError, SettingsError
 from coastmon.geometry import Coastline, Frame, Segment, local_projection
 from coastmon.grid.metrics import GridMetrics, coriolis_parameter
 from coastmon.io.atomic import RESULT_MANIFEST, atomic_write_text, output_error, staging_dir
-from coastmon.io.ingest import open_dataset
+from coastmon.io.gridcheck import calendar_of, grid_differences
 from coastmon.io.owned import (
     MARKER,
     critical,
@@ -98,6 +100,7 @@ from coastmon.stream import (
     stats_from_state,
 )
 from coastmon.stream.moments import grid_signature
+from coastmon.stream.pass_ import closing_spare_readers
 
 STATE_FORMAT_VERSION = 1
 """Layout version of a monitoring state; a state with another version is refused."""
@@ -146,13 +149,6 @@ class UpdateResult:
 
 
 # --------------------------------------------------------------------------- time
-def _calendar(values: np.ndarray) -> str:
-    values = np.asarray(values)
-    if np.issubdtype(values.dtype, np.datetime64):
-        return "proleptic_gregorian"
-    return str(getattr(values.flat[0], "calendar", "standard") or "standard")
-
-
 def time_seconds(values: np.ndarray) -> np.ndarray:
     """Seconds since 1970-01-01 of datetime64 or cftime values (in their own calendar)."""
     values = np.asarray(values)
@@ -161,7 +157,7 @@ def time_seconds(values: np.ndarray) -> np.ndarray:
     import cftime
 
     return np.asarray(cftime.date2num(list(values.ravel()), _TIME_UNITS,
-                                      calendar=_calendar(values)), dtype=np.float64)
+                                      calendar=calendar_of(values)), dtype=np.float64)
 
 
 def _times_from_seconds(seconds: np.ndarray, calendar: str, like: np.ndarray) -> np.ndarray:
@@ -211,9 +207,10 @@ def _loadz(path: Path) -> dict[str, np.ndarray]:
     try:
         with np.load(path, allow_pickle=False) as data:
             return {k: np.array(data[k]) for k in data.files}
-    except (OSError, ValueError, KeyError) as exc:
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, zlib.error) as exc:
         raise InputError(
-            f"A file of the monitoring state cannot be read ({exc})", where=str(path),
+            f"A file of the monitoring state cannot be read ({type(exc).__name__}: {exc})",
+            where=str(path),
             todo="The state is damaged; start a new state folder from the full record",
         ) from None
 
@@ -252,6 +249,17 @@ def save_geometry(store: Path, lon: np.ndarray, lat: np.ndarray, mask: np.ndarra
 
 def load_geometry(store: Path) -> tuple[dict[str, np.ndarray], Coastline, pd.DataFrame, Frame]:
     """Read what :func:`save_geometry` wrote (grid arrays, coastline, capes, frame)."""
+    try:
+        return _load_geometry(store)
+    except (KeyError, ValueError, TypeError, IndexError) as exc:
+        raise InputError(
+            f"The geometry stored in the monitoring state is incomplete or inconsistent "
+            f"({type(exc).__name__}: {exc})", where=str(store),
+            todo="The state is damaged; start a new state folder from the full record",
+        ) from None
+
+
+def _load_geometry(store: Path) -> tuple[dict[str, np.ndarray], Coastline, pd.DataFrame, Frame]:
     grid = _loadz(store / "grid.npz")
     c = _loadz(store / "coastline.npz")
     lon_ref, lat_ref = float(c["lon_ref"]), float(c["lat_ref"])
@@ -729,10 +737,23 @@ SERIES_BLOCK_STEPS = 512
 def _load_series(state_dir: Path, parts: list[str], work: Path) -> xr.Dataset:
     """The stored series parts as one series, in disk-backed files in ``work``.
 
-    The (time, station, k) variables are copied a block of time steps at a time into
-    station-major files (as the streaming pass writes them), so memory does not grow with
-    the length of the monitored record; the small coordinates are kept in memory.
+    Every part was checked against its sha256 in the manifest before use
+    (:func:`_verify_files`), so damaged bytes are refused, never analysed.
     """
+    try:
+        return _stack_series(state_dir, parts, work)
+    except (OSError, ValueError, RuntimeError, KeyError, IndexError) as exc:
+        raise InputError(f"A series file of the monitoring state cannot be read "
+                         f"({type(exc).__name__}: {exc})", where=str(state_dir / STORE),
+                         todo="The state is damaged; start a new state folder from the full "
+                              "record") from None
+
+
+def _stack_series(state_dir: Path, parts: list[str], work: Path) -> xr.Dataset:
+    """The parts stacked along time. The (time, station, k) variables are copied a block
+    of time steps at a time into station-major files (as the streaming pass writes them),
+    so memory does not grow with the length of the monitored record; the small
+    coordinates are kept in memory."""
     work.mkdir(parents=True, exist_ok=True)
     opened = [xr.open_dataset(state_dir / STORE / name, engine="netcdf4") for name in parts]
     try:
@@ -854,6 +875,7 @@ def update(state_dir: str | os.PathLike[str], inputs: list[str | os.PathLike[str
     return result
 
 
+@closing_spare_readers
 def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: bool,
             manifest: dict[str, Any] | None, current: str | None,
             timings: dict[str, float], work: Path, state_id: str) -> UpdateResult:
@@ -869,7 +891,8 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
         lon, lat = metrics.lon, metrics.lat
         mask = np.asarray(ds["mask"].values)
         ld_km = prep.ld_km
-        calendar = _calendar(ds["time"].values)
+        notes = list(prep.notes)
+        calendar = calendar_of(ds["time"].values)
         seen_s = np.zeros(0)
         dt_s = None
         moments = None
@@ -882,14 +905,14 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
                                                         where="the monitoring state"), settings)
         grid, coastline, capes, frame = load_geometry(store)
         lon, lat, mask = grid["lon"], grid["lat"], grid["mask"]
-        ds = open_dataset(paths, settings.ingest)
+        ds, notes = pipeline.open_with_notes(paths, settings)
         _check_same_grid(ds, lon, lat, mask, manifest, where)
         metrics = GridMetrics.from_lonlat(lon, lat)
         ld_km = float(manifest["deformation_radius_km"])
         calendar = manifest["calendar"]
-        if _calendar(ds["time"].values) != calendar:
+        if calendar_of(ds["time"].values) != calendar:
             raise InputError(
-                f"The new data use the '{_calendar(ds['time'].values)}' calendar, the "
+                f"The new data use the '{calendar_of(ds['time'].values)}' calendar, the "
                 f"monitoring state '{calendar}'", where=where,
                 todo="Give data of the same model run or product, in the same calendar")
         seen_s = _loadz(state_dir / current / "times.npz")["seen_s"]
@@ -919,13 +942,13 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
     else:
         store_files = list(manifest["store_files"])
 
-    notes: list[str] = []
     t = time.perf_counter()
     steps = plan.new
     if np.all(np.diff(steps) == 1):
         steps = slice(int(steps[0]), int(steps[-1]) + 1)
     passed = run_pass(ds.isel(time=steps), metrics, frame, settings.stream, work / "pass")
     timings["stream_pass_s"] = time.perf_counter() - t
+    notes += pipeline.coverage_notes(ds.isel(time=steps), passed)
     merged = passed.state if moments is None else merge_states(moments, passed.state)
     new_series = _with_fill(passed.series, plan, t_s[plan.new], calendar)
     part = _part_name(state_id, number)
@@ -1020,13 +1043,7 @@ def _check_same_grid(ds: xr.Dataset, lon: np.ndarray, lat: np.ndarray, mask: np.
                      manifest: dict[str, Any], where: str) -> None:
     new_lon = np.asarray(ds["lon"].values, np.float64)
     new_lat = np.asarray(ds["lat"].values, np.float64)
-    problems = []
-    if new_lon.shape != lon.shape:
-        problems.append(f"grid shape {new_lon.shape} instead of {lon.shape}")
-    elif grid_signature(new_lon, new_lat) != manifest["grid_id"]:
-        problems.append("other longitudes or latitudes")
-    elif not np.array_equal(np.asarray(ds["mask"].values), mask):
-        problems.append("another land/sea mask")
+    problems = grid_differences(new_lon, new_lat, lon, lat, np.asarray(ds["mask"].values), mask)
     kind = ds.attrs.get("velocity_kind")
     stored_kind = manifest["dataset_attrs"].get("velocity_kind")
     if kind and stored_kind and kind != stored_kind:

@@ -36,6 +36,7 @@ from matplotlib.patches import Patch
 from matplotlib.ticker import FuncFormatter
 
 from coastmon.io.atomic import atomic_path
+from coastmon.io.position import lat_text, lon_text
 
 P = ParamSpec("P")
 R = TypeVar("R")
@@ -130,16 +131,11 @@ def _panel_letter(ax: Axes, index: int) -> None:
 
 
 def _lon_text(x: float, _pos: object = None) -> str:
-    x = (x + 180.0) % 360.0 - 180.0
-    if abs(x) < 1e-9 or abs(abs(x) - 180.0) < 1e-9:
-        return f"{abs(x):g}°"
-    return f"{abs(x):g}°{'W' if x < 0 else 'E'}"
+    return lon_text(round(x, 9), "g", "°")
 
 
 def _lat_text(y: float, _pos: object = None) -> str:
-    if abs(y) < 1e-9:
-        return "0°"
-    return f"{abs(y):g}°{'S' if y < 0 else 'N'}"
+    return lat_text(round(y, 9), "g", "°")
 
 
 def _geo_axes(ax: Axes, lat2d: np.ndarray) -> None:
@@ -613,7 +609,10 @@ def ranking_figure(path: str | os.PathLike[str], sources: pd.DataFrame) -> Path:
         labels.append(f"#{rank}  {where}")
     ax.set_yticks(y, labels)
     ax.set_ylim(n - 0.5, -0.5)
-    ax.set_xlim(left=min(0.0, float(np.nanmin(lo))))
+    finite_lo = lo[np.isfinite(lo)]
+    ax.set_xlim(left=min(0.0, float(finite_lo.min())) if finite_lo.size else 0.0)
+    for k in np.flatnonzero(~np.isfinite(feed)):
+        ax.text(0.0, k, "  not measurable", va="center", ha="left", color="0.3", fontsize=8)
     ax.grid(axis="x", color="0.9", linewidth=0.6)
     ax.set_axisbelow(True)
     ax.legend(handles=[Patch(facecolor=SKY, edgecolor=BLUE, label="estimate"),

@@ -30,6 +30,7 @@ from typing import Any
 import pandas as pd
 
 from coastmon.io.atomic import atomic_write_text
+from coastmon.io.position import position_text
 from coastmon.io.results import CAUTIONS
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
@@ -87,10 +88,7 @@ def _fmt(value: Any, spec: str | None) -> str:
 def _position(lon: Any, lat: Any) -> str:
     if _missing(lon) or _missing(lat):
         return "–"
-    lon = (float(lon) + 180.0) % 360.0 - 180.0
-    ew = "W" if lon < 0 else "E"
-    ns = "S" if float(lat) < 0 else "N"
-    return f"{abs(float(lat)):.2f}°{ns} {abs(lon):.2f}°{ew}"
+    return position_text(lon, lat, ".2f", "°")
 
 
 def _cell(row: Mapping[str, Any], key: str, spec: str | None) -> str:

@@ -25,6 +25,8 @@ from __future__ import annotations
 
 import hashlib
 import os
+import zipfile
+import zlib
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -330,8 +332,9 @@ def load_state(path: str | Path) -> MomentState:
             "The saved statistics file does not exist", where=str(path),
             todo="Check the path, or run a full analysis first to create it",
         ) from None
-    except (KeyError, ValueError, OSError) as exc:
+    except (KeyError, ValueError, OSError, EOFError, zipfile.BadZipFile, zlib.error) as exc:
         raise InputError(
-            f"The saved statistics file cannot be read ({exc})", where=str(path),
+            f"The saved statistics file cannot be read ({type(exc).__name__}: {exc})",
+            where=str(path),
             todo="The file is damaged or not a coastmon statistics file; rebuild it",
         ) from None

@@ -21,6 +21,8 @@ reproducible to the last bit whatever the scheduler.
 
 from __future__ import annotations
 
+import functools
+import json
 import os
 import queue
 import sys
@@ -31,7 +33,7 @@ from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import NamedTuple
+from typing import NamedTuple, ParamSpec, TypeVar
 
 import dask
 import dask.array as da
@@ -43,6 +45,7 @@ from coastmon.config import StreamSettings
 from coastmon.errors import InputError, SettingsError
 from coastmon.grid.metrics import GridMetrics
 from coastmon.grid.operators import gradient
+from coastmon.io.damage import ChunkDecodeError
 from coastmon.stream import kernels, readers
 from coastmon.stream.moments import MomentState, grid_signature, time_text
 from coastmon.stream.readers import ProcessReader, read_chunk
@@ -56,6 +59,9 @@ CHUNK_BUDGET_BYTES = 128 * 2**20
 SCRATCH_BYTES_PER_POINT = 16
 """Kernel scratch per grid point and time step: ζ (for sampling) and Okubo–Weiss W (for
 the eddy-core count), both float64."""
+
+P = ParamSpec("P")
+R = TypeVar("R")
 
 SERIES_BUFFER_BYTES = 4 * 2**20
 """Sampled series gathered per file before they are written (bytes): a few MB per file
@@ -88,6 +94,9 @@ class PassResult:
     timings : seconds spent per stage (``read_s``, ``kernel_s``, ``sample_s`` summed over
         chunks and workers; ``merge_s``, ``write_s``, ``stats_s``, ``total_s`` wall time).
     n_time : number of time steps read.
+    valid_steps : (time,) int64, the number of grid points with both u and v present at
+        each time step (land is missing at every step), for the missing-data checks of
+        :mod:`coastmon.assess.coverage`.
     """
 
     stats: xr.Dataset
@@ -95,6 +104,7 @@ class PassResult:
     state: MomentState
     timings: dict[str, float] = field(default_factory=dict)
     n_time: int = 0
+    valid_steps: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -127,6 +137,7 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
     nt = u.shape[0]
     parts: dict[int, tuple] = {}
     samples: dict[str, list] = {}
+    valid = np.zeros(nt, dtype=np.int64)
     kernel_s = sample_s = 0.0
     for s0 in range(0, nt, consts.step_limit):
         s1 = min(nt, s0 + consts.step_limit)
@@ -142,6 +153,7 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
             else:
                 parts[g] = part
         t1 = time.perf_counter()
+        valid[s0:s1] = np.count_nonzero(np.isfinite(ub + vb).reshape(s1 - s0, -1), axis=1)
         for name, arr in (("u", ub), ("v", vb), ("zeta", zeta), ("ssh", hb)):
             if arr is not None:
                 samples.setdefault(name, []).append(consts.sampler(arr.reshape(s1 - s0, -1)))
@@ -151,6 +163,7 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
     return {
         "parts": parts,
         "samples": {k: np.concatenate(val) for k, val in samples.items()},
+        "valid_steps": valid,
         "kernel_s": kernel_s,
         "sample_s": sample_s,
     }
@@ -311,6 +324,20 @@ def prestart_readers(ds: xr.Dataset, settings: StreamSettings) -> None:
     readers.prestart(plan.n_readers, plan.window)
 
 
+def closing_spare_readers(run: Callable[P, R]) -> Callable[P, R]:
+    """Decorate a command so that reader processes started ahead by
+    :func:`prestart_readers` and not taken by a pass are closed when it returns or fails
+    (e.g. a record found too short after the readers were started)."""
+    @functools.wraps(run)
+    def wrapper(*args: P.args, **kwargs: P.kwargs) -> R:
+        try:
+            return run(*args, **kwargs)
+        finally:
+            readers.close_spares()
+
+    return wrapper
+
+
 def _groups(ds: xr.Dataset, seasonal: bool) -> np.ndarray:
     nt = ds.sizes["time"]
     if not seasonal:
@@ -425,12 +452,14 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
         for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
             files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy", (nt, *shape))
 
+    valid_steps = np.zeros(nt, dtype=np.int64)
     state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
                               grid_signature(metrics.lon, metrics.lat))
     ncpu = os.cpu_count() or 1
     grid_size = metrics.shape[0] * metrics.shape[1]
     timings = dict.fromkeys(("read_s", "kernel_s", "sample_s", "merge_s", "write_s"), 0.0)
     client = _client(settings.scheduler) if settings.scheduler else None
+    reader = None
     try:
         if client is not None:
             nthreads = sum(client.nthreads().values()) or 1
@@ -447,7 +476,6 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             step_limit=max(1, CHUNK_BUDGET_BYTES // (SCRATCH_BYTES_PER_POINT * grid_size)),
         )
         bar = _progress_bar(len(bounds), settings.progress)
-        reader = None
         if client is not None:
             window = 2 * nthreads
             submit, collect, pool = _distributed_submitter(client, ds, names, bounds, consts,
@@ -502,11 +530,15 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             done = 0
             while pending:
                 t0, t1, future = pending.popleft()
-                out = collect(future)
+                try:
+                    out = collect(future)
+                except ChunkDecodeError as exc:
+                    raise _damaged(ds, t0, t1, str(exc)) from None
                 nxt = next(todo, None)
                 if nxt is not None:
                     pending.append((*nxt, submit(*nxt)))
                 _consume(out, t0, t1, state, files, frame, times, timings)
+                valid_steps[t0:t1] = out["valid_steps"]
                 done += 1
                 bar.update(1)
                 if progress is not None:
@@ -520,6 +552,8 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             elif reader is not None:
                 reader.shutdown(wait=True, cancel_futures=True)
     finally:
+        if isinstance(reader, ProcessReader):
+            reader.close()  # again: also when setting up the pass failed (closing is idempotent)
         if client is not None:
             client.close()
         for writer in files.values():
@@ -534,7 +568,25 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
     timings["total_s"] = time.perf_counter() - wall0
     if client is not None:
         timings.pop("read_s")
-    return PassResult(stats=stats, series=series, state=state, timings=timings, n_time=nt)
+    return PassResult(stats=stats, series=series, state=state, timings=timings, n_time=nt,
+                      valid_steps=valid_steps)
+
+
+def _damaged(ds: xr.Dataset, t0: int, t1: int, detail: str) -> InputError:
+    """The error for a stored chunk of time steps [t0, t1) that cannot be decoded."""
+    files = json.loads(ds.attrs.get("source_files", "[]"))
+    steps = json.loads(ds.attrs.get("source_steps", "[]"))
+    if files and len(steps) == len(files):
+        edges = np.cumsum(steps)
+        which = np.unique(np.searchsorted(edges, np.arange(t0, t1), side="right"))
+        files = [files[int(k)] for k in which if k < len(files)]
+    times = ds["time"].values if "time" in ds.coords else None
+    span = (f"{time_text(times[t0])} to {time_text(times[t1 - 1])}" if times is not None
+            else f"steps {t0} to {t1 - 1}")
+    return InputError(
+        f"A stored chunk of the input cannot be decoded ({detail}); the file is damaged or "
+        "truncated", where=f"{', '.join(files) or 'the input'}, time {span}",
+        todo="Check the file with a NetCDF or Zarr tool, or copy it again")
 
 
 def _distributed_submitter(client, ds, names, bounds, consts, groups):

@@ -43,6 +43,7 @@ import xarray as xr
 
 from coastmon.errors import InputError
 from coastmon.io import chunks
+from coastmon.io.damage import ChunkDecodeError, decode_failure
 
 MAX_READ_PROCESSES = 4
 """Most reader processes used by default (decompression scales with them until the cores
@@ -77,11 +78,16 @@ def read_chunk(arrays, t0: int, t1: int) -> tuple[list, float]:
     start = time.perf_counter()
     blocks = [None if a is None else a[t0:t1] for a in arrays]
     lazy = [one_block(b) for b in blocks if isinstance(b, da.Array)]
-    if lazy:
-        computed = iter(dask.compute(*lazy, scheduler="synchronous"))
-        blocks = [next(computed) if isinstance(b, da.Array) else b for b in blocks]
-    blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray) else b)
-              for b in blocks]
+    try:
+        if lazy:
+            computed = iter(dask.compute(*lazy, scheduler="synchronous"))
+            blocks = [next(computed) if isinstance(b, da.Array) else b for b in blocks]
+        blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray)
+                                                     else b) for b in blocks]
+    except Exception as exc:
+        if not decode_failure(exc):
+            raise
+        raise ChunkDecodeError(f"{type(exc).__name__}: {exc}") from None
     return blocks, time.perf_counter() - start
 
 
@@ -230,8 +236,10 @@ class _Worker:
         # The reader must import this very coastmon, wherever it was imported from.
         here = str(Path(__file__).resolve().parents[2])
         env["PYTHONPATH"] = os.pathsep.join(p for p in (here, env.get("PYTHONPATH")) if p)
+        # -P: the current folder is not put on the module path, so a file there named like
+        # a library module (mmap.py, numpy.py ...) is never imported by the reader.
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "coastmon.stream.read_worker"], stdin=subprocess.PIPE,
+            [sys.executable, "-P", "-m", "coastmon.stream.read_worker"], stdin=subprocess.PIPE,
             stdout=subprocess.PIPE, stderr=self.log, pass_fds=fds, close_fds=True, env=env)
         self.thread: threading.Thread | None = None
 
@@ -392,10 +400,11 @@ _SPARE: dict[tuple[int, int], ProcessReader] = {}
 
 def prestart(n_proc: int, n_slots: int) -> None:
     """Start a reader of ``n_proc`` processes now, for the next :func:`take` that asks for
-    the same; one not taken is closed at exit."""
+    the same. At most one is kept: a spare of other numbers is closed first; one not
+    taken is closed by :func:`close_spares` (the commands call it when they end) or at
+    exit."""
     if n_proc > 0 and (n_proc, n_slots) not in _SPARE:
-        if not _SPARE:
-            atexit.register(_close_spares)
+        close_spares()
         _SPARE[(n_proc, n_slots)] = ProcessReader(n_proc, n_slots)
 
 
@@ -405,6 +414,10 @@ def take(n_proc: int, n_slots: int) -> ProcessReader:
     return reader if reader is not None else ProcessReader(n_proc, n_slots)
 
 
-def _close_spares() -> None:
+def close_spares() -> None:
+    """Close the readers started ahead and not taken by a pass."""
     while _SPARE:
         _SPARE.popitem()[1].close()
+
+
+atexit.register(close_spares)
