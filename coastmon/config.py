@@ -137,7 +137,9 @@ class SourceSettings:
     max_cape_distance_km: float = 50.0
     """A source farther than this from every cape is reported unanchored."""
     min_persistence: float = 0.5
-    """Fraction of time with significant eddy-band power needed to call a source persistent."""
+    """Fraction of independent windows (one longest eddy period each) in which a source's
+    eddy-band activity must be in the upper quarter of the coast's spread about the local
+    background (a quarter of the windows under the null)."""
     max_speed_cm_s: float = 100.0
     """Propagation speeds beyond this are taken as "not measurable" on that ray."""
     rho0: float = 1025.0

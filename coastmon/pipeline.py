@@ -179,7 +179,7 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     check_record_length(series.sizes["time"], dt, settings)
     warnings: list[str] = []
     profiles = alongshore_profiles(series, frame, settings, ld_km)
-    found = find_sources(profiles, frame, capes, settings, ld_km)
+    found = find_sources(profiles, frame, capes, settings, ld_km, series=series)
     gates = gate_set(series, frame, settings, dt, ld_km)
     feed = offshore_feed(found, gates, frame, settings)
     ranked, gates_df, boot = rank_sources(found, feed)
