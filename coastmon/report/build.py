@@ -53,8 +53,10 @@ def _top_source_figures(figdir: Path, prep, products, settings: Settings, series
                                  speed_m_s=float(speed) if np.isfinite(speed) else None,
                                  rossby_speed_m_s=float(rossby))
             out.append((f"Hovmöller diagram of relative vorticity along the zonal ray from "
-                        f"source {rank}; distance increases offshore. Solid line: measured "
-                        f"propagation speed; dashed: long baroclinic Rossby-wave speed.", p))
+                        f"source {rank}; distance increases away from the coast along the "
+                        f"parallel. Solid line: measured speed of the westward-travelling "
+                        f"eddy-band energy at the gate (the feed's speed); dashed: long "
+                        f"baroclinic Rossby-wave speed.", p))
         x = np.nan_to_num(zeta_ns[:, s])
         wt = cwt_morlet(x, dt, dj=settings.signals.dj, omega0=settings.signals.omega0)
         sig = red_noise_significance(bg_var, bg_alpha, wt.periods, dt,
