@@ -117,8 +117,8 @@ VARIABLES: dict[str, dict[str, str]] = {
                           "units": "cm s-1"},
     "deformation_radius_km": {"long_name": "first baroclinic deformation radius",
                               "units": "km"},
-    "feed_w_per_m": {"long_name": "westward eddy energy feed across the gate, per metre of "
-                                  "depth", "units": "W m-1"},
+    "feed_w_per_m": {"long_name": "net westward eddy-band energy flux across the gate minus "
+                                  "the background, per metre of depth", "units": "W m-1"},
     # spectra
     "frequency": {"long_name": "frequency", "units": "d-1"},
     "wavenumber": {"long_name": "zonal wavenumber, positive eastward", "units": "km-1"},

@@ -1,11 +1,11 @@
-"""Find the vorticity sources, measure the eddy energy they feed offshore, rank them."""
+"""Find the vorticity sources, measure the eddy energy they feed westward, rank them."""
 
 from coastmon.sources.detect import alongshore_profiles, find_sources, nearest_cape
 from coastmon.sources.feed import (
     FeedResult,
     GateSet,
+    assign_rays,
     gate_set,
-    gate_stations,
     offshore_feed,
     rank_sources,
 )
@@ -15,9 +15,9 @@ __all__ = [
     "FeedResult",
     "GateSet",
     "alongshore_profiles",
+    "assign_rays",
     "find_sources",
     "gate_set",
-    "gate_stations",
     "jet_spacing_km",
     "mean_zonal_anomaly",
     "nearest_cape",
