@@ -137,7 +137,7 @@ class GateFlux:
     advective_gate_w_per_m: float
 
 
-def _source_fields_on_line(births: list, params: ScenarioParams, gate_lon: float,
+def source_fields_on_line(births: list, params: ScenarioParams, gate_lon: float,
                            line_lat: NDArray[np.float64], times_days: NDArray[np.float64]
                            ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
     """Exact psi, u, v (time, line) of the given eddies on the meridian ``gate_lon``.
@@ -187,7 +187,7 @@ def source_gate_flux(births: list, params: ScenarioParams, gate_lon: float,
     sea = land_mask(np.full(line_lat.shape, gate_lon), line_lat, params).astype(float)
     dy_m = EARTH_RADIUS_M * np.radians(LINE_STEP_DEG)
     in_gate = ((line_lat >= gate_lat[0]) & (line_lat <= gate_lat[1])).astype(float)
-    psi, u, v = _source_fields_on_line(births, params, gate_lon, line_lat, times)
+    psi, u, v = source_fields_on_line(births, params, gate_lon, line_lat, times)
     ld_m = params.deformation_radius_km * 1000.0
     rho0 = params.rho0
     west_c = params.side * params.offshore_speed_m_s
