@@ -303,3 +303,21 @@ def test_ray_cut_before_the_gate_is_reported():
     # check: common practice, no source — the gate window (90-210 km) is not at sea
     assert result.table["gate_status"].iloc[0] == "gate_on_land"
     assert np.isnan(result.table["feed_w_per_m"].iloc[0])
+
+
+def test_close_sources_share_no_ray_and_count_no_flux_twice():
+    n_t, n_r = 200, 40
+    ray_dir = np.full(40, -1)
+    fields = {s: (np.zeros((n_t, n_r)), _wave(n_t, n_r, 0.03, 0.1, s)) for s in range(40)}
+    series, frame = _gate_inputs(fields, ray_dir, n_t)
+    settings = Settings().replace("sources", gate_offset_km=150.0, gate_window_km=60.0,
+                                  gate_halfwidth_km=60.0, n_bootstrap=50)
+    sources = pd.DataFrame({"segment_id": [0, 0], "alongshore_km": [80.0, 160.0],
+                            "lon": -20.0, "lat": 30.0})
+    result = offshore_feed(sources, gate_set(series, frame, settings, DT_DAYS, 30.0),
+                           frame, settings)
+    lat_a, lat_b = (set(np.round(g["lat"], 6)) for g in result.gates)
+    # check: common practice, no source — 80 km apart with 60-km reaches: the rays between
+    # them go to the nearer source only, so the gates are disjoint
+    assert not lat_a & lat_b
+    assert result.table["gate_n_rays"].sum() == len(lat_a) + len(lat_b)
