@@ -321,3 +321,43 @@ def test_close_sources_share_no_ray_and_count_no_flux_twice():
     # them go to the nearer source only, so the gates are disjoint
     assert not lat_a & lat_b
     assert result.table["gate_n_rays"].sum() == len(lat_a) + len(lat_b)
+
+
+def test_south_pointing_cape_on_a_zonal_coast_gets_a_gate_from_its_west_flank():
+    from coastmon.geometry import build_frame, extract_coastline
+
+    settings = Settings()
+    lon1, lat1 = np.arange(-20, -10, 0.05), np.arange(30, 38, 0.05)
+    lon, lat = np.meshgrid(lon1, lat1)
+    coast_lat = 36.0 - 0.8 * np.exp(-(((lon1 + 15) / 0.4) ** 2))   # cape tip at 35.2 N
+    mask = (lat < coast_lat[None, :]).astype(np.int8)
+    frame = build_frame(extract_coastline(lon, lat, mask, settings.coast), lon, lat, mask,
+                        settings.coast)
+    st = frame.stations
+    n_t, n_r = 200, frame.ray_km.size
+    wave = _wave(n_t, n_r, 0.03, 0.1, 0)
+    ok = np.isfinite(frame.ray_lon)
+    v = np.where(ok[None], wave[:, None, :], np.nan)
+    series = xr.Dataset({"ray_u": (("time", "station", "ray"), np.where(np.isnan(v), np.nan, 0.0)),
+                         "ray_v": (("time", "station", "ray"), v)},
+                        coords={"ray_km": ("ray", frame.ray_km)})
+    tip = int(np.argmin(st["lat"].to_numpy()))
+    sources = pd.DataFrame({"segment_id": [int(st["segment_id"][tip])],
+                            "alongshore_km": [float(st["alongshore_km"][tip])],
+                            "lon": [float(st["lon"][tip])], "lat": [float(st["lat"][tip])]})
+    result = offshore_feed(sources, gate_set(series, frame, settings, DT_DAYS, 30.0), frame,
+                           settings)
+    row = result.table.iloc[0]
+    gate_lat = result.gates[0]["lat"]
+    # check: common practice, no source — the westward rays of the cape's west flank run
+    # through open water: a gate of several rays, none from the east flank (eastward rays)
+    assert row["gate_status"] == "ok" and row["gate_n_rays"] >= 5
+    west_flank = st[(st["lon"] < st["lon"][tip] + 1e-9) & (st["ray_dir"] == -1)]
+    assert set(np.round(gate_lat, 6)) <= set(np.round(west_flank["lat"], 6))
+    # check: planted — the westward wave's E c over the gate's meridional span (|Δy|, no
+    # zig-zag): 1/2 <v^2> = 4 * 0.1^2 / 4 per unit mass, c = 3 cm/s ...
+    span = meridional_extents_m(gate_lat).sum()
+    gross = row["feed_w_per_m"] + row["bg_w_per_m"]
+    assert gross == pytest.approx(1025.0 * 4 * 0.1**2 / 4 * 0.03 * span, rel=0.15)
+    # ... and the same wave on every ray of the coast is background, not the cape's feed
+    assert abs(row["feed_w_per_m"]) < 0.05 * gross
