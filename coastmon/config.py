@@ -128,9 +128,11 @@ class SourceSettings:
     """Offsets up to this distance count as near-shore for source detection."""
     gate_offset_km: float = 150.0
     """Distance offshore (along the zonal rays) of the gate across which the feed is measured."""
-    gate_halfwidth_km: float = 60.0
+    gate_halfwidth_km: float = 90.0
     """Half-length of each gate, across the rays, centred on the source (along-shore reach of
-    the source's rays; each ray belongs to the gate of at most one source, the nearest)."""
+    the source's rays; each ray belongs to the gate of at most one source, the nearest).
+    Wide enough to hold an eddy of radius ~L_d that drifts meridionally by about its radius
+    on its way to the gate (60 km lost about 10 % of the demo's planted flux)."""
     gate_window_km: float = 75.0
     """Half-length of the window along each westward ray, centred on the gate point, over
     which the eddy energy and its speed are averaged (independent of ``gate_offset_km``)."""

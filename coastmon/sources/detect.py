@@ -11,12 +11,13 @@ Method
    Compo 1998, eq. 24): its time mean is the station's eddy-band variance, its means over
    consecutive windows of one longest eddy period the band variance of each window.
 2. *Local background.* A source stands out from the coast on *both* sides. The local
-   background of a station is the larger of two medians: that of the stations between
-   ``2 L_d`` and ``8 L_d`` along the coast on one side, and the same on the other side.
+   background of a station is the larger of two lower quartiles: that of the stations
+   between ``2 L_d`` and ``8 L_d`` along the coast on one side, and the same on the other
+   side (a low quantile, so a neighbouring source inside a ring does not lift it).
    A station needs at least a third of both rings on the coast to be assessed, so a
    station within about ``4 L_d`` of the end of a segment (an open domain edge) is never
    tested and coast ends do not make sources by themselves; neither does a step between a
-   quiet and a noisier stretch (the noisier side's median is the background at the step).
+   quiet and a noisier stretch (the noisier side's level is the background at the step).
 3. *Localized.* The test statistic is the log of the station's band variance over its
    local background. Its null distribution is estimated from the coast itself — the
    empirical null of Efron (2004): centre the median, scale 1.4826 times the median
@@ -62,6 +63,7 @@ import warnings
 
 import numpy as np
 import pandas as pd
+import scipy.special
 import xarray as xr
 
 from coastmon.config import Settings
@@ -77,13 +79,8 @@ RING_OUTER_LD = 8.0
 """Outer edge of the background rings, in deformation radii."""
 RING_MIN_COVER = 1.0 / 3.0
 """Smallest share of a ring that must lie on the coast for a station to be assessed."""
-MIN_NULL_STATIONS = 10
-"""Fewest assessed stations from which the empirical null is estimated."""
-ACTIVE_QUANTILE = 0.75
-"""A window is active where the station's statistic exceeds this quantile of the window's
-empirical null (so a quarter of the windows are active under the null)."""
-MAD_TO_SD = 1.4826
-"""Median absolute deviation to standard deviation for a normal distribution."""
+MIN_WINDOWS = 3
+"""Fewest assessed windows for a station to be tested."""
 
 
 def time_step_days(series: xr.Dataset) -> float:
@@ -126,43 +123,9 @@ def _fill_gaps(x: np.ndarray) -> np.ndarray:
 
 # --------------------------------------------------------------------------- statistics
 def normal_sf(z: np.ndarray) -> np.ndarray:
-    r"""Upper tail of the standard normal distribution, :math:`P(Z > z) = \tfrac12
-    \operatorname{erfc}(z/\sqrt2)` (Abramowitz & Stegun 1964, 26.2.29); NaN stays NaN."""
-    z = np.asarray(z, dtype=float)
-    flat = [0.5 * math.erfc(v / math.sqrt(2.0)) if np.isfinite(v) else np.nan for v in z.ravel()]
-    return np.asarray(flat, dtype=float).reshape(z.shape)
-
-
-def normal_isf(p: float) -> float:
-    """The z with ``normal_sf(z) = p`` (0 < p < 1), by bisection on ``math.erfc``."""
-    lo, hi = -40.0, 40.0
-    for _ in range(200):
-        mid = 0.5 * (lo + hi)
-        if 0.5 * math.erfc(mid / math.sqrt(2.0)) > p:
-            lo = mid
-        else:
-            hi = mid
-    return 0.5 * (lo + hi)
-
-
-def empirical_null_z(x: np.ndarray, axis: int = -1) -> np.ndarray:
-    r"""Standardise a statistic by its empirical null (Efron 2004).
-
-    .. math:: z = \frac{x - \operatorname{median}(x)}{1.4826\,\operatorname{MAD}(x)}
-
-    Median and median absolute deviation are taken over the finite values along ``axis``
-    (most of which are null, so the few true effects barely move them); fewer than
-    ``MIN_NULL_STATIONS`` finite values or a zero spread give NaN.
-    """
-    x = np.asarray(x, dtype=float)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN slices stay NaN
-        centre = np.nanmedian(x, axis=axis, keepdims=True)
-        scale = MAD_TO_SD * np.nanmedian(np.abs(x - centre), axis=axis, keepdims=True)
-    count = np.isfinite(x).sum(axis=axis, keepdims=True)
-    ok = (count >= MIN_NULL_STATIONS) & (scale > 0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(ok, (x - centre) / np.where(ok, scale, 1.0), np.nan)
+    r"""Upper tail :math:`P(Z > z)` of the standard normal distribution
+    (``scipy.special.ndtr(-z)``, the function ``scipy.stats.norm.sf`` uses)."""
+    return scipy.special.ndtr(-np.asarray(z, dtype=float))
 
 
 def benjamini_hochberg(p: np.ndarray, q: float) -> tuple[np.ndarray, np.ndarray]:
@@ -203,14 +166,18 @@ def binomial_sf(k: np.ndarray, n: np.ndarray, p: float) -> np.ndarray:
     return out
 
 
-def _nanmedian_last(a: np.ndarray) -> np.ndarray:
-    """Median over the last axis ignoring NaN (NaN where none is finite), by one sort."""
+def _nanquantile_last(a: np.ndarray, q: float) -> np.ndarray:
+    """Quantile ``q`` over the last axis ignoring NaN, linear between order statistics
+    (numpy's default), by one sort; NaN where no value is finite."""
     a = np.sort(a, axis=-1)  # NaN sort last
     n = np.isfinite(a).sum(axis=-1, keepdims=True)
-    lo = np.clip((n - 1) // 2, 0, None)
-    hi = np.clip(n // 2, 0, None)
-    mid = 0.5 * (np.take_along_axis(a, lo, axis=-1) + np.take_along_axis(a, hi, axis=-1))
-    return np.where(n > 0, mid, np.nan)[..., 0]
+    pos = q * np.clip(n - 1, 0, None)
+    lo = np.floor(pos).astype(int)
+    hi = np.minimum(lo + 1, np.clip(n - 1, 0, None))
+    frac = pos - lo
+    a_lo = np.take_along_axis(a, lo, axis=-1)
+    a_hi = np.take_along_axis(a, hi, axis=-1)
+    return np.where(n > 0, a_lo + frac * (a_hi - a_lo), np.nan)[..., 0]
 
 
 def local_background(values: np.ndarray, s_km: np.ndarray, segment_id: np.ndarray,
@@ -251,7 +218,8 @@ def local_background(values: np.ndarray, s_km: np.ndarray, segment_id: np.ndarra
                     or np.isfinite(left).sum(axis=-1).min() < need
                     or np.isfinite(right).sum(axis=-1).min() < need):
                 continue
-            out[..., idx[i]] = np.maximum(_nanmedian_last(left), _nanmedian_last(right))
+            out[..., idx[i]] = np.maximum(_nanquantile_last(left, 0.5),
+                                          _nanquantile_last(right, 0.5))
     return out
 
 
@@ -297,9 +265,33 @@ def band_activity(x: np.ndarray, dt: float, settings: Settings
     return full, windows, period
 
 
+def window_autocorrelation(dev: np.ndarray, assessed: np.ndarray, stations: np.ndarray
+                           ) -> float:
+    r"""Lag-1 autocorrelation between consecutive windows, typical of the coast.
+
+    ``dev`` (window, station) are the deviations of each station's window values from
+    its own mean. Each station's :math:`r_1` is corrected for its bias with a short series
+    of n windows, :math:`E[r_1] \approx \rho - (1+3\rho)/n` (Marriott & Pope 1954), so
+    :math:`\rho = (n r_1 + 1)/(n - 3)`; the median over the ``stations`` (robust to the
+    few where one burst spans two windows) is clipped to [0, 0.9]. Wavelet power at the
+    longest periods of the band spreads over neighbouring windows; this is how much.
+    """
+    n = dev.shape[0]
+    if n <= 3 or not stations.any():
+        return 0.0
+    both = assessed[1:] & assessed[:-1]
+    num = np.where(both, dev[1:] * dev[:-1], 0.0).sum(axis=0)
+    den = np.where(assessed, dev**2, 0.0).sum(axis=0)
+    use = stations & (den > 0)
+    if not use.any():
+        return 0.0
+    r1 = float(np.median(num[use] / den[use]))
+    return float(np.clip((n * r1 + 1.0) / (n - 3.0), 0.0, 0.9))
+
+
 def detection_tests(full: np.ndarray, windows: np.ndarray, s_km: np.ndarray,
                     segment_id: np.ndarray, ld_km: float, significance: float) -> dict:
-    """Localization and recurrence tests of the band variance against the local background.
+    """Recurrent excess of eddy-band variance over the local background, station by station.
 
     Parameters
     ----------
@@ -307,35 +299,45 @@ def detection_tests(full: np.ndarray, windows: np.ndarray, s_km: np.ndarray,
     windows : (window, station) band variance per window
     s_km, segment_id : (station,)
     ld_km : deformation radius (km)
-    significance : confidence level; ``alpha = 1 - significance`` is both the
-        false-discovery rate of the localization test and the per-window level
+    significance : confidence level; ``1 - significance`` is the false-discovery rate
 
     Returns
     -------
-    dict of (station,) arrays: ``ratio`` (band variance over local background), ``z``,
-    ``p`` (one-sided, per station), ``q`` (Benjamini–Hochberg adjusted), ``localized``,
-    ``persistence`` (fraction of active windows), ``n_windows``, ``recurrence_p``; NaN
-    (False) where the station cannot be assessed.
+    dict of (station,) arrays: ``ratio`` (record band variance over its local
+    background), ``t`` and ``p`` (one-sided t-test of the windows' log ratios), ``q``
+    (Benjamini–Hochberg adjusted), ``localized`` (q <= 1 - significance), ``persistence``
+    (fraction of windows above the local background), ``n_windows``, ``recurrence_p``
+    (binomial upper tail of that count at 1/2); NaN (False) where not assessed.
     """
-    alpha = 1.0 - significance
     full = np.where(np.asarray(full, float) > 0, full, np.nan)
     windows = np.where(np.asarray(windows, float) > 0, windows, np.nan)
-    bg = local_background(np.vstack([full[None, :], windows]), s_km, segment_id, ld_km)
+    stack = np.vstack([full[None, :], windows])
+    bg = local_background(stack, s_km, segment_id, ld_km)
     with np.errstate(invalid="ignore", divide="ignore"):
-        log_ratio = np.log(np.vstack([full[None, :], windows]) / bg)
-    z = empirical_null_z(log_ratio, axis=-1)
-    p = normal_sf(z[0])
-    localized, q = benjamini_hochberg(p, alpha)
-    z_win = z[1:]
-    assessed = np.isfinite(z_win)
+        log_ratio = np.log(stack / bg)
+    lw = log_ratio[1:]
+    assessed = np.isfinite(lw)
     n_win = assessed.sum(axis=0).astype(float)
-    threshold = normal_isf(1.0 - ACTIVE_QUANTILE)
-    active = (np.where(assessed, z_win, -np.inf) > threshold).sum(axis=0).astype(float)
-    ok = np.isfinite(z[0]) & (n_win > 0)
+    ok = np.isfinite(log_ratio[0]) & (n_win >= MIN_WINDOWS)
+    x = np.where(assessed, lw, 0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        persistence = np.where(ok, active / np.where(n_win > 0, n_win, 1.0), np.nan)
-    recurrence = binomial_sf(np.where(ok, active, np.nan), n_win, 1.0 - ACTIVE_QUANTILE)
-    return {"ratio": np.exp(log_ratio[0]), "z": z[0], "p": p, "q": q,
+        mean = x.sum(axis=0) / n_win
+        dev = np.where(assessed, lw - mean, 0.0)
+        sd = np.sqrt((dev**2).sum(axis=0) / (n_win - 1))
+        rho = window_autocorrelation(dev, assessed, ok)
+        n_eff = n_win * (1.0 - rho) / (1.0 + rho)
+        # The spread of the windows is about the same at every station where nothing
+        # happens; the coast's median spread is a stable estimate of it, and a station
+        # whose own windows spread more (a burst) keeps its own, larger one.
+        typical = float(np.median(sd[ok])) if ok.any() else np.nan
+        spread = np.fmax(sd, typical)
+        t_stat = np.where(ok, mean / (spread / np.sqrt(n_eff)), np.nan)
+        above = np.where(assessed, lw > 0, False).sum(axis=0).astype(float)
+        persistence = np.where(ok, above / n_win, np.nan)
+    p = normal_sf(t_stat)
+    localized, q = benjamini_hochberg(p, 1.0 - significance)
+    recurrence = binomial_sf(np.where(ok, above, np.nan), n_win, 0.5)
+    return {"ratio": np.exp(log_ratio[0]), "t": t_stat, "p": p, "q": q,
             "localized": localized & ok, "persistence": persistence,
             "n_windows": np.where(ok, n_win, np.nan), "recurrence_p": recurrence}
 
@@ -444,7 +446,7 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
                              "(binomial upper tail)", "units": "1"}),
             "localization": ("station", tests["ratio"], {
                 "long_name": "eddy-band near-shore vorticity variance over the local "
-                             "background (larger of the two neighbouring-coast medians)",
+                             "background (larger of the two neighbouring-coast lower quartiles)",
                 "units": "1"}),
             "localization_q": ("station", tests["q"], {
                 "long_name": "false-discovery-rate adjusted p-value of the localization "
@@ -475,14 +477,12 @@ def _local_maxima(values: np.ndarray) -> np.ndarray:
 def source_maxima(profiles: xr.Dataset, frame, settings: Settings, ld_km: float
                   ) -> list[int]:
     """Stations of the local maxima of the band-variance ratio among the stations that
-    are localized, persistent and recurrent; maxima within ``2 L_d`` merge into the
-    stronger."""
-    alpha = 1.0 - settings.signals.significance
+    are localized and at least ``min_persistence`` persistent; maxima within ``2 L_d``
+    merge into the stronger."""
     st = frame.stations
     ratio = profiles["localization"].values
     passed = ((profiles["localized"].values > 0)
-              & (profiles["persistence"].values >= settings.sources.min_persistence)
-              & (profiles["recurrence_p"].values <= alpha))
+              & (profiles["persistence"].values >= settings.sources.min_persistence))
     chosen: list[int] = []
     for _, idx in st.groupby("segment_id").indices.items():
         idx = np.asarray(idx)
