@@ -28,8 +28,8 @@ meridian per unit time is exactly the kinematic flux
 
 (s = +1 westward off an eastern boundary), the zonal part of the translation velocity
 times the energy on the line: the meridional drift carries nothing across a meridian.
-The record mean of ``F`` divided by nothing else is a power per metre of depth (W m-1),
-the unit of ``feed_w_per_m``. Integrated over the whole record, ``F`` counts the energy of
+The record mean of ``F`` is a power per metre of depth (W m-1), the unit of
+``feed_w_per_m``. Integrated over the whole record, ``F`` counts the energy of
 each eddy that crosses the meridian: for one eddy of constant amplitude it is exactly the
 Gaussian-eddy energy :math:`\\tfrac12\\rho_0\\pi\\psi_0^2(1 + R^2/2L_d^2)`
 (:func:`gaussian_eddy_total_energy`), the check in ``tests/test_feed_validation.py``.
