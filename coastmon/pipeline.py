@@ -542,7 +542,7 @@ def demo(out: str | Path, variant: str = "default", progress: bool = True) -> st
     data_dir.mkdir(parents=True, exist_ok=True)
     try:
         nc, truth_path = make_scenario(params, data_dir)
-        settings = Settings()
+        settings = Settings().replace("signals", deformation_radius_km=params.deformation_radius_km)
         if not progress:
             settings = settings.replace("stream", progress=False)
         result = analyze([nc], out, settings)
@@ -573,9 +573,13 @@ def truth_comparison(sources: pd.DataFrame, truth: dict[str, Any], tol_km: float
             dist = float(d[k])
             hit = dist <= tol_km
         rank = expected.index(p["name"]) + 1 if p.get("name") in expected else "?"
-        found = (f"found as rank {int(sources['rank'].values[k])}, {dist:.0f} km from the cape, "
-                 f"feed {sources['feed_w_per_m'].values[k]:.3g} W/m"
-                 if hit else "not found")
+        found = "not found"
+        if hit:
+            feed, lo, hi = (float(sources[c].values[k]) for c in ("feed_w_per_m", "feed_lo", "feed_hi"))
+            inside = lo <= float(p.get("feed_w_per_m", float("nan"))) <= hi
+            found = (f"found as rank {int(sources['rank'].values[k])}, {dist:.0f} km from the cape, "
+                     f"feed {feed:.3g} W/m [{lo:.3g}, {hi:.3g}], planted feed "
+                     f"{'inside' if inside else 'outside'} the interval")
         lines.append(f"  planted rank {rank} ({p.get('cape', '?')}, planted feed "
                      f"{p.get('feed_w_per_m', float('nan')):.3g} W/m): {found}")
     return "\n".join(lines)

@@ -28,8 +28,8 @@ meridian per unit time is exactly the kinematic flux
 
 (s = +1 westward off an eastern boundary), the zonal part of the translation velocity
 times the energy on the line: the meridional drift carries nothing across a meridian.
-The record mean of ``F`` divided by nothing else is a power per metre of depth (W m-1),
-the unit of ``feed_w_per_m``. Integrated over the whole record, ``F`` counts the energy of
+The record mean of ``F`` is a power per metre of depth (W m-1), the unit of
+``feed_w_per_m``. Integrated over the whole record, ``F`` counts the energy of
 each eddy that crosses the meridian: for one eddy of constant amplitude it is exactly the
 Gaussian-eddy energy :math:`\\tfrac12\\rho_0\\pi\\psi_0^2(1 + R^2/2L_d^2)`
 (:func:`gaussian_eddy_total_energy`), the check in ``tests/test_feed_validation.py``.
@@ -86,8 +86,10 @@ def gaussian_eddy_total_energy(psi0_m2_s: ArrayLike, radius_m: ArrayLike, ld_m: 
     """Kinetic and potential energy of a Gaussian eddy per metre of depth (J m-1).
 
     For :math:`\\psi = \\psi_0 e^{-r^2/R^2}`:
-    :math:`E_k = \\tfrac12\\rho_0\\pi\\psi_0^2` (:func:`coastmon.scenario.flow.gaussian_eddy_energy`)
-    and :math:`E_p = \\rho_0\\iint\\psi^2/(2L_d^2)\\,dA = \\rho_0\\pi\\psi_0^2R^2/(4L_d^2)`
+    :math:`E_k = \\rho_0\\iint\\tfrac12|\\nabla\\psi|^2 dA = \\tfrac12\\rho_0\\pi\\psi_0^2`
+    (:math:`|\\nabla\\psi|^2 = 4\\psi_0^2 r^2 R^{-4} e^{-2r^2/R^2}`, whose integral over the
+    plane is :math:`\\pi\\psi_0^2`, independent of R) and
+    :math:`E_p = \\rho_0\\iint\\psi^2/(2L_d^2)\\,dA = \\rho_0\\pi\\psi_0^2R^2/(4L_d^2)`
     (:math:`\\int_0^\\infty e^{-2r^2/R^2}2\\pi r\\,dr = \\pi R^2/2`), so
     :math:`E_p/E_k = R^2/(2L_d^2)`.
     """

@@ -75,19 +75,6 @@ def gaussian_eddy(
     return psi, u, v
 
 
-def gaussian_eddy_energy(psi0_m2_s: ArrayLike, rho0: float) -> NDArray[np.float64]:
-    """Kinetic energy of a Gaussian eddy per metre of depth (J m-1).
-
-    .. math:: E = \\rho_0 \\iint \\tfrac12 |\\nabla\\psi|^2\\,dA = \\tfrac12\\rho_0\\pi\\psi_0^2,
-
-    because :math:`|\\nabla\\psi|^2 = 4\\psi_0^2 r^2 R^{-4} e^{-2r^2/R^2}` and
-    :math:`\\int_0^\\infty 4 r^2 R^{-4} e^{-2r^2/R^2}\\, 2\\pi r\\,dr = \\pi` (substitute
-    :math:`t = r^2`; :math:`\\int_0^\\infty t e^{-2t/R^2} dt = R^4/4`). The result does not
-    depend on R.
-    """
-    return 0.5 * rho0 * np.pi * np.asarray(psi0_m2_s, dtype=float) ** 2
-
-
 def amplitude_factor(age_s: ArrayLike, growth_s: float, decay_s: float) -> NDArray[np.float64]:
     """Amplitude of an eddy of age t relative to full strength: (1 - e^{-t/T_g}) e^{-t/T_d}."""
     age = np.asarray(age_s, dtype=float)

@@ -317,7 +317,7 @@ def _source_truth(params: ScenarioParams, spec, mine: list[Birth], growth_s: flo
         "feed_pe_w_per_m": main.band_pe_w_per_m,
         "gate_feed_w_per_m": main.band_gate_w_per_m,
         "offshore_feed_w_per_m": params.side * main.band_w_per_m,
-        "realized_feed_w_per_m": main.band_w_per_m,
+        "realized_feed_w_per_m": main.band_w_per_m,      # the same, for scripts that read it
         "crossing_feed_w_per_m": main.crossing_w_per_m,
         "crossing_feed_ke_w_per_m": main.crossing_ke_w_per_m,
         "expected_crossing_feed_w_per_m": params.side * float(rate * (ke + pe)),

@@ -4,7 +4,7 @@ All the geography is invented: the coast, its capes, the island and every name b
 real place. Longitudes and latitudes put the invented coast in what is open ocean in reality.
 
 A scenario file is TOML with top-level keys for the scalar parameters and arrays of tables
-for the capes, the islands and the planted sources::
+for the capes, the islands, the planted sources and standing oscillations (optional)::
 
     name = "vell_coast"
     seed = 262
@@ -20,6 +20,11 @@ for the capes, the islands and the planted sources::
     cape = "Tasker Head"
     rate_per_year = 10.0
     psi0_m2_s = 11000.0
+
+    [[standing]]
+    name = "Tasker pulse"
+    cape = "Tasker Head"
+    psi0_m2_s = 8000.0
 
 Unknown keys are rejected with a suggestion of the nearest valid name.
 """
