@@ -237,8 +237,8 @@ def render_report(
         _table(sources, _SOURCE_COLUMNS,
                "Sources ranked by the eddy energy they carry westward across a gate offshore "
                "(feed, per metre of depth) with its 95 % interval from a moving-block bootstrap "
-               "over time; persistence is the fraction of time with eddy-band power significant "
-               "above the coast's red-noise background.",
+               "over time; persistence is the fraction of independent time windows in which the "
+               "near-shore eddy-band variance is above the neighbouring coast's on both sides.",
                "No sources to list."),
         _facts(summary),
         "<h3>Capes</h3>",
