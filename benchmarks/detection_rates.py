@@ -125,7 +125,7 @@ def main() -> None:
                 print(f"| control (straight coast, no cape) | {n_days} | {len(sel)} | – | – | – | "
                       f"{sum(r['n_false'] for r in sel)} |")
                 continue
-            print(f"| {np.mean([r['fraction'] for r in sel]):.2f} | {n_days} | {len(sel)} | "
+            print(f"| {np.mean([r['fraction'] for r in sel]):.3f} | {n_days} | {len(sel)} | "
                   f"{sum(r['strong_found'] for r in sel)}/{len(sel)} | "
                   f"{sum(r['weak_found'] for r in sel)}/{len(sel)} | "
                   f"{sum(r['weak_ranked_last'] for r in sel)}/{len(sel)} | "

@@ -298,10 +298,15 @@ def build_layers(coastline, capes: pd.DataFrame, products: Products, settings: S
             "dist_to_cape_km", "alongshore_km", "west_speed_cm_s", "west_speed_sd_cm_s",
             "feed_struct_lo", "feed_struct_hi", "gate_status", "energy_kind", "west_share",
             "east_speed_cm_s", "bg_w_per_m", "kflux_w_per_m",
-            "pwork_w_per_m", "pwork_rot_w_per_m", "rank_stability", "zonal_extent_km", "segment_id", "localization",
-            "localization_scale_km", "shedding_period_days", "lon", "lat"]
+            "pwork_w_per_m", "pwork_rot_w_per_m", "rank_stability", "zonal_extent_km",
+            "segment_id", "localization",
+            "localization_scale_km", "shedding_period_days", "localization_q", "n_members",
+            "members_km", "attribution", "lon", "lat"]
+    table = src[keep].copy() if len(src) else pd.DataFrame({k: [] for k in keep})
+    # Along-shore km of the maxima a cape-level source combines, as text for GIS tables.
+    table["members_km"] = [";".join(f"{km:.1f}" for km in m) for m in table["members_km"]]
     sources = gpd.GeoDataFrame(
-        src[keep].copy() if len(src) else pd.DataFrame({k: [] for k in keep}),
+        table,
         geometry=[Point(x, y) for x, y in zip(src["lon"], src["lat"], strict=True)]
         if len(src) else gpd.GeoSeries([], crs=crs), crs=crs)
     gate_rows, gate_geoms = [], []

@@ -395,3 +395,44 @@ def test_jet_spacing_recovers_a_planted_spacing():
     # (neighbouring wavelengths 1190/4 = 298 km and 1190/6 = 198 km)
     assert found == pytest.approx(1190.0 / 5.0, rel=0.02)
     assert abs(found - spacing) < 0.5 * (298.0 - 198.0) / 2
+
+
+# ------------------------------------------------------------------------- Okubo–Weiss
+def test_okubo_weiss_of_solid_body_rotation_of_the_sphere():
+    from coastmon.grid.metrics import EARTH_RADIUS_M, GridMetrics
+    from coastmon.grid.operators import okubo_weiss, strain, vorticity
+
+    lon, lat = np.meshgrid(np.arange(-20.0, -10.0, 0.25), np.arange(20.0, 60.0, 0.25))
+    speed = 10.0  # U of u = U cos(lat): the whole ocean turning about the polar axis
+    u = speed * np.cos(np.radians(lat))
+    v = np.zeros_like(u)
+    m = GridMetrics.from_lonlat(lon, lat)
+    sn, ss = strain(u, v, m)
+    zeta = vorticity(u, v, m)
+    inner = (slice(1, -1), slice(1, -1))
+    # check: analytic — rigid rotation has no strain; zeta = 2 U sin(lat) / a
+    # (Batchelor 1967, appendix 2; Vallis 2017 §2.2)
+    np.testing.assert_allclose(zeta[inner], 2 * speed * np.sin(np.radians(lat[inner])) / EARTH_RADIUS_M,
+                               rtol=1e-3)
+    assert np.nanmax(np.abs(ss[inner])) < 1e-3 * np.nanmax(np.abs(zeta[inner]))
+    assert np.nanmax(np.abs(sn[inner])) < 1e-3 * np.nanmax(np.abs(zeta[inner]))
+    w = okubo_weiss(u, v, m)
+    # check: analytic — W / zeta^2 = -1 for solid-body rotation (Okubo 1970; Weiss 1991);
+    # without the metric terms it would be -3/4
+    np.testing.assert_allclose(w[inner] / zeta[inner] ** 2, -1.0, atol=2e-3)
+
+
+def test_fused_kernel_has_the_same_metric_terms():
+    from coastmon.grid.metrics import GridMetrics
+    from coastmon.grid.operators import okubo_weiss
+    from coastmon.stream import kernels
+
+    lon, lat = np.meshgrid(np.linspace(-20.0, -10.0, 21), np.linspace(30.0, 50.0, 25))
+    u = (10.0 * np.cos(np.radians(lat)))[None].repeat(2, axis=0)
+    v = np.zeros_like(u)
+    m = GridMetrics.from_lonlat(lon, lat)
+    zeta, w, _ = kernels.dual_fields(u, v, m.gx, m.gy, 0.2)
+    # check: coastmon.grid.operators.okubo_weiss (numpy reference of the same sums),
+    # and W = -zeta^2 for solid-body rotation (analytic)
+    np.testing.assert_allclose(w, okubo_weiss(u, v, m), rtol=1e-10)
+    np.testing.assert_allclose(w[:, 1:-1, 1:-1] / zeta[:, 1:-1, 1:-1] ** 2, -1.0, atol=2e-3)

@@ -110,8 +110,8 @@ VARIABLES: dict[str, dict[str, str]] = {
                             "units": "m s-2", "cell_methods": _MEAN},
     "eddy_band_power": {"long_name": "along-shore wavelet power in the eddy band",
                         "units": "s-2"},
-    "persistence": {"long_name": "fraction of time with significant eddy-band power",
-                    "units": "1"},
+    "persistence": {"long_name": "fraction of independent time windows with eddy-band "
+                                 "variance above the local background", "units": "1"},
     "west_speed_cm_s": {"long_name": "measured westward propagation speed", "units": "cm s-1"},
     "rossby_speed_cm_s": {"long_name": "long baroclinic Rossby wave speed, westward positive",
                           "units": "cm s-1"},

@@ -111,10 +111,10 @@ def write_figures_and_report(stage: Path, prep, products, layers: dict, settings
         capes_km=capes_km, sources_km=sources_km)
     figures.append(("Along-shore profiles on the main coast segment: (a) near-shore eddy "
                     "kinetic energy, (b) near-shore relative-vorticity variance, (c) persistence: "
-                    "fraction of time with eddy-band shedding above the coast's red-noise "
-                    "background, (d) along-shore localization: scale-averaged wavelet power over "
-                    "its 95 % red-noise level (above 1 is significant). Capes in grey, sources "
-                    "by rank.", p))
+                    "fraction of independent time windows in which the eddy-band variance is "
+                    "above the local background (the neighbouring coast on both sides), "
+                    "(d) localization: eddy-band variance over that local background (1 = "
+                    "background). Capes in grey, sources by rank.", p))
     if series is not None:
         figures.extend(_top_source_figures(figdir, prep, products, settings, series))
     if len(products.sources):

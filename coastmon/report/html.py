@@ -255,8 +255,8 @@ def render_report(
                "with its 95 % interval from a moving-block bootstrap over time and its range "
                "over gate offsets ±50 km and window widths. A source with no gate in open "
                "water west of it has no feed and ranks last (Gate column). Persistence is the "
-               "fraction of time with eddy-band power significant above the coast's red-noise "
-               "background.",
+               "fraction of independent time windows in which the near-shore eddy-band "
+               "variance is above the neighbouring coast's on both sides.",
                "No sources to list."),
         _facts(summary),
         "<h3>Capes</h3>",

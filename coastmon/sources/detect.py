@@ -11,38 +11,35 @@ Method
    Compo 1998, eq. 24): its time mean is the station's eddy-band variance, its means over
    consecutive windows of one longest eddy period the band variance of each window.
 2. *Local background.* A source stands out from the coast on *both* sides. The local
-   background of a station is the larger of two lower quartiles: that of the stations
-   between ``2 L_d`` and ``8 L_d`` along the coast on one side, and the same on the other
-   side (a low quantile, so a neighbouring source inside a ring does not lift it).
+   background of a station is the larger of two medians: that of the stations between
+   ``2 L_d`` and ``8 L_d`` along the coast on one side, and the same on the other side.
    A station needs at least a third of both rings on the coast to be assessed, so a
    station within about ``4 L_d`` of the end of a segment (an open domain edge) is never
    tested and coast ends do not make sources by themselves; neither does a step between a
-   quiet and a noisier stretch (the noisier side's level is the background at the step).
-3. *Localized.* The test statistic is the log of the station's band variance over its
-   local background. Its null distribution is estimated from the coast itself — the
-   empirical null of Efron (2004): centre the median, scale 1.4826 times the median
-   absolute deviation, so the sampling spread of variance estimates, their along-shore
-   correlation and the background's own noise are all in it without assuming a number
-   of degrees of freedom. A one-sided normal p-value per station is controlled for the
-   hundreds of stations tested at once with the false-discovery rate of Benjamini &
-   Hochberg (1995) at ``q = 1 - significance``; on a coast with no source (every null
-   true) this is also the chance that any station is called localized. Positive
-   along-shore correlation of the p-values keeps the procedure valid (Benjamini &
-   Yekutieli 2001).
-4. *Persistent (recurrent).* The record is cut into windows of one longest eddy period
-   (``eddy_period_days[1]``), long against the decorrelation time of eddy-band activity,
-   so the windows are nearly independent. In each window the same statistic (the
-   window's band variance over the window's local background, with its own empirical
-   null across stations) marks the station *active* where it exceeds the one-sided
-   ``significance`` quantile. Persistence is the fraction of windows in which the station
-   is active. Under the null each window is active with probability
-   ``alpha = 1 - significance``, independently, so the number of active windows is
-   Binomial(n_windows, alpha); ``recurrence_p`` is its upper tail. A stretch that is only
-   noisier everywhere is not above its local background, and one burst makes one active
-   window, so neither passes.
-5. *Sources* are the local maxima of the band-variance ratio among stations that are
-   localized, at least ``min_persistence`` persistent and recurrent (``recurrence_p`` at
-   most ``alpha``); maxima closer than ``2 L_d`` merge into the stronger.
+   quiet and a noisier stretch (the noisier side's median is the background at the step).
+3. *Recurrent excess (the test).* The record is cut into consecutive windows of one
+   longest eddy period (``eddy_period_days[1]``). In each window the statistic is the log
+   of the station's band variance over the window's local background. Under the null of
+   a homogeneous coast the larger of two ring medians is at least the typical level, so
+   the windows' mean log ratio is at most zero; a station where the coast sheds eddies
+   again and again has a mean well above zero. The test is one-sided on that mean with
+   standard error ``s / sqrt(n')``: ``s`` the larger of the station's own spread of the
+   window values and the coast's median spread (stable where nothing happens; a burst
+   keeps its own, larger spread), ``n' = n (1 - rho)/(1 + rho)`` the effective number
+   of windows (von Storch & Zwiers 1999, §6.6) with ``rho`` the coast's median lag-1
+   autocorrelation between windows, bias-corrected (Marriott & Pope 1954). The p-values
+   of all stations are controlled with the false-discovery rate of Benjamini & Hochberg
+   (1995) at ``q = 1 - significance``; on a coast with no source (every null true) this
+   is the chance that any station is called localized. Positive along-shore correlation
+   of the p-values keeps the procedure valid (Benjamini & Yekutieli 2001). A stretch that
+   is only noisier everywhere is not above its local background; one burst makes one
+   large window value and a large spread, not a recurrent excess.
+4. *Persistence* is the fraction of windows in which the station is above its local
+   background (at most 1/2 on average under the null); ``recurrence_p`` is the binomial
+   upper tail of that count at 1/2, for reading.
+5. *Sources* are the local maxima of the record's band-variance ratio among stations that
+   pass the test (``localized``) and are at least ``min_persistence`` persistent; maxima
+   closer than ``2 L_d`` merge into the stronger.
 6. *Attribution along the current.* The direction of the mean along-shore flow comes from
    the record's own near-shore mean velocity around the maximum (taken only when it
    differs from zero by more than twice its standard error, with the effective sample
@@ -438,22 +435,24 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
                 "long_name": "eddy-band variance of near-shore relative vorticity "
                              "(time-mean scale-averaged wavelet power)", "units": "s-2"}),
             "persistence": ("station", tests["persistence"], {
-                "long_name": "fraction of independent windows in which the eddy-band "
-                             "vorticity variance is significantly above the local background",
+                "long_name": "fraction of time windows in which the eddy-band "
+                             "vorticity variance is above the local background",
                 "units": "1"}),
             "recurrence_p": ("station", tests["recurrence_p"], {
-                "long_name": "chance of at least as many active windows under the null "
-                             "(binomial upper tail)", "units": "1"}),
+                "long_name": "chance of at least as many windows above the local "
+                             "background under the null (binomial upper tail at 1/2)",
+                "units": "1"}),
             "localization": ("station", tests["ratio"], {
                 "long_name": "eddy-band near-shore vorticity variance over the local "
                              "background (larger of the two neighbouring-coast lower quartiles)",
                 "units": "1"}),
             "localization_q": ("station", tests["q"], {
-                "long_name": "false-discovery-rate adjusted p-value of the localization "
-                             "test (Benjamini-Hochberg over the stations)", "units": "1"}),
+                "long_name": "false-discovery-rate adjusted p-value of the test of a "
+                             "recurrent excess over the local background "
+                             "(Benjamini-Hochberg over the stations)", "units": "1"}),
             "localized": ("station", tests["localized"].astype(np.int8), {
-                "long_name": "localization significant at the false-discovery rate "
-                             "1 - significance", "units": "1"}),
+                "long_name": "recurrent excess over the local background significant at "
+                             "the false-discovery rate 1 - significance", "units": "1"}),
             "shedding_period_days": ("station", period, {
                 "long_name": "period of largest time-averaged eddy-band wavelet power",
                 "units": "days"}),
