@@ -304,7 +304,8 @@ def build_layers(coastline, capes: pd.DataFrame, products: Products, settings: S
             "members_km", "attribution", "lon", "lat"]
     table = src[keep].copy() if len(src) else pd.DataFrame({k: [] for k in keep})
     # Along-shore km of the maxima a cape-level source combines, as text for GIS tables.
-    table["members_km"] = [";".join(f"{km:.1f}" for km in m) for m in table["members_km"]]
+    table["members_km"] = [";".join(f"{km:.1f}" for km in np.atleast_1d(m) if np.isfinite(km))
+                           for m in table["members_km"]]
     sources = gpd.GeoDataFrame(
         table,
         geometry=[Point(x, y) for x, y in zip(src["lon"], src["lat"], strict=True)]

@@ -194,6 +194,11 @@ def test_rays_are_partitioned_to_the_nearest_member():
     assert (owner[21:] == -1).all()
     no_members = assign_rays(sources.drop(columns="members_km"), stations, 60.0)
     assert no_members[16] == 1 and no_members[19] == -1   # 160 km is 40 km from 120
+    ring = stations.assign(ring_length_km=[210.0] * 21 + [np.nan] * 3)
+    island = pd.DataFrame({"segment_id": [0], "alongshore_km": [5.0]})
+    # check: arithmetic on a 210-km ring — 200 km along is 15 km from 5 km the short way
+    assert assign_rays(island, ring, 30.0)[20] == 0
+    assert assign_rays(island, stations, 30.0)[20] == -1
 
 
 def test_rotational_pressure_work_of_a_geostrophic_field():

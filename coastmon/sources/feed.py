@@ -494,7 +494,9 @@ def assign_rays(sources: pd.DataFrame, stations: pd.DataFrame, reach_km: float
 
     A station belongs to the source owning the nearest along-shore member on its own coast
     segment (``members_km`` when the sources table has it, else ``[alongshore_km]``),
-    provided that member is within ``reach_km``; so gates never share a ray.
+    provided that member is within ``reach_km``; so gates never share a ray. On a closed
+    ring (an island: ``ring_length_km`` of the stations) distances go the shorter way
+    round.
 
     Returns
     -------
@@ -503,6 +505,8 @@ def assign_rays(sources: pd.DataFrame, stations: pd.DataFrame, reach_km: float
     """
     seg = stations["segment_id"].to_numpy()
     along = stations["alongshore_km"].to_numpy(float)
+    ring = stations["ring_length_km"].to_numpy(float) if "ring_length_km" in stations \
+        else np.full(len(stations), np.nan)
     best = np.full(len(stations), np.inf)
     owner = np.full(len(stations), -1)
     has_members = "members_km" in sources.columns
@@ -512,7 +516,10 @@ def assign_rays(sources: pd.DataFrame, stations: pd.DataFrame, reach_km: float
                 or len(np.atleast_1d(members)) == 0:
             members = [row["alongshore_km"]]
         members = np.asarray(members, dtype=float)
-        dist = np.min(np.abs(along[:, None] - members[None, :]), axis=1)
+        gap = np.abs(along[:, None] - members[None, :])
+        gap = np.where(np.isfinite(ring)[:, None],
+                       np.minimum(gap, np.nan_to_num(ring)[:, None] - gap), gap)
+        dist = np.min(gap, axis=1)
         dist = np.where(seg == row["segment_id"], dist, np.inf)
         take = (dist <= reach_km) & (dist < best)
         best[take] = dist[take]
