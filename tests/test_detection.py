@@ -367,6 +367,14 @@ def test_plume_axis_ends_at_the_e_folding_length_of_a_planted_plume():
     axis = trace_plume(flat, frame, 40, ray_km, error)
     # check: planted significance — the last significant point is 290 km
     assert axis["extent_km"] == pytest.approx(290.0)
+    # A strong coastal-current anomaly in the first 20 km does not end the plume: the end
+    # tests start beyond the near-shore band (30 km); the plume decays from 30 km on.
+    coastal = np.where(ray_km[None, :] < 25.0, 0.5, 0.0) * np.exp(-0.5 * (y / 2.0) ** 2)
+    plume = 0.05 * np.exp(-np.maximum(ray_km[None, :] - 30.0, 0.0) / length) * \
+        np.exp(-0.5 * (y / 2.0) ** 2)
+    axis = trace_plume(coastal + plume, frame, 40, ray_km, 1e-6, start_km=30.0)
+    # check: analytic — e^-1 of the value at 30 km is reached at 30 + 205 km: last kept 230
+    assert axis["extent_km"] == pytest.approx(230.0)
 
 
 def test_time_mean_error_matches_the_ar1_standard_error():
