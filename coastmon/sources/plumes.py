@@ -36,21 +36,6 @@ from coastmon.grid.metrics import haversine_m
 from coastmon.io.pages import release
 
 
-def time_nanmean(values: np.ndarray, block: int = 256) -> np.ndarray:
-    """Mean over the first (time) axis ignoring NaN, in float64, a block of steps at a time
-    (memory does not grow with the record); NaN where no step is finite."""
-    total = np.zeros(values.shape[1:])
-    count = np.zeros(values.shape[1:])
-    for start in range(0, values.shape[0], block):
-        part = np.asarray(values[start:start + block], dtype=np.float64)
-        ok = np.isfinite(part)
-        total += np.where(ok, part, 0.0).sum(axis=0)
-        count += ok.sum(axis=0)
-        release(values)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(count > 0, total / count, np.nan)
-
-
 def time_mean_error(values: np.ndarray, block: int = 256) -> tuple[np.ndarray, np.ndarray]:
     r"""Time mean and its standard error over the first axis, a block of steps at a time.
 
@@ -115,11 +100,6 @@ def along_shore_anomaly(ubar: np.ndarray, frame, smooth_stations: float = 4.0) -
             trend = num / den
         out[idx] = np.where(ok, block - trend, np.nan)
     return out
-
-
-def mean_zonal_anomaly(series: xr.Dataset, frame, smooth_stations: float = 4.0) -> np.ndarray:
-    """Time-mean zonal velocity on the rays minus its along-shore running mean (m s-1)."""
-    return along_shore_anomaly(time_nanmean(series["ray_u"].values), frame, smooth_stations)
 
 
 PLUME_Z = 1.96
