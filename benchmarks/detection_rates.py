@@ -12,7 +12,7 @@ per run and a Markdown table at the end.
 Usage::
 
     python benchmarks/detection_rates.py --dir /tmp/coastmon-rates \\
-        --fractions 0.33 0.1 0.05 --days 730 1461 --seeds 1 2
+        --fractions 0.33 0.1 0.05 --days 730 1461 --seeds 1 2 [--background 4]
 """
 
 from __future__ import annotations
@@ -36,13 +36,17 @@ MATCH_KM = 40.0
 """A found source within this distance of a planted cape is that source."""
 
 
-def small_domain(params, seed: int, n_days: int):
-    """The small test domain of the end-to-end tests: 33-38 N, 0.1 degree."""
+def small_domain(params, seed: int, n_days: int, background: float = 1.0):
+    """The small test domain of the end-to-end tests: 33-38 N, 0.1 degree; ``background``
+    multiplies the amplitudes of the background Rossby waves and of the white noise."""
     return dataclasses.replace(params, seed=seed, n_days=n_days, lon_min=-42.0, lat_min=33.0,
-                               lat_max=38.0, resolution_deg=0.1, compress=False, islands=())
+                               lat_max=38.0, resolution_deg=0.1, compress=False, islands=(),
+                               wave_velocity_m_s=params.wave_velocity_m_s * background,
+                               noise_velocity_m_s=params.noise_velocity_m_s * background,
+                               noise_ssh_m=params.noise_ssh_m * background)
 
 
-def with_weak_source(fraction: float, seed: int, n_days: int):
+def with_weak_source(fraction: float, seed: int, n_days: int, background: float = 1.0):
     """Strong source at Tasker Head (as in the demo), weak one at Cape Orrin whose planted
     feed (rate x psi0^2; scenario.flow.planted_feed_w_per_m) is ``fraction`` of it."""
     base = default_params()
@@ -54,7 +58,7 @@ def with_weak_source(fraction: float, seed: int, n_days: int):
     keep = {"Tasker Head", "Cape Orrin"}
     params = dataclasses.replace(base, capes=tuple(c for c in base.capes if c.name in keep),
                                  sources=(strong, weak))
-    return small_domain(params, seed, n_days)
+    return small_domain(params, seed, n_days, background)
 
 
 def run_one(params, where: Path) -> dict:
@@ -98,15 +102,18 @@ def main() -> None:
     ap.add_argument("--days", type=int, nargs="+", default=[730, 1461])
     ap.add_argument("--seeds", type=int, nargs="+", default=[1, 2])
     ap.add_argument("--no-control", action="store_true")
+    ap.add_argument("--background", type=float, default=1.0,
+                    help="factor on the background waves and noise (default 1: as the demo)")
     args = ap.parse_args()
     rows = []
     for n_days in args.days:
         for seed in args.seeds:
-            cases = [(f, with_weak_source(f, seed, n_days)) for f in args.fractions]
+            cases = [(f, with_weak_source(f, seed, n_days, args.background))
+                     for f in args.fractions]
             if not args.no_control:
                 control = dataclasses.replace(straight_coast_params(), uniform_lat_min=33.5,
                                               uniform_lat_max=37.5)
-                cases.append((0.0, small_domain(control, seed, n_days)))
+                cases.append((0.0, small_domain(control, seed, n_days, args.background)))
             for fraction, params in cases:
                 tag = f"f{fraction:g}_d{n_days}_s{seed}"
                 r = run_one(params, args.dir / tag)

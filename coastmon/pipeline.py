@@ -183,7 +183,8 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     gates = gate_set(series, frame, settings, dt, ld_km)
     feed = offshore_feed(found, gates, frame, settings)
     ranked, gates_df, boot = rank_sources(found, feed)
-    axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km)
+    axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km,
+                               start_km=settings.sources.nearshore_km)
     ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
     if len(ranked) and np.nanmin(ranked["rank_stability"].values[:3]) < 0.8:
         warnings.append(

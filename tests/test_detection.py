@@ -367,6 +367,14 @@ def test_plume_axis_ends_at_the_e_folding_length_of_a_planted_plume():
     axis = trace_plume(flat, frame, 40, ray_km, error)
     # check: planted significance — the last significant point is 290 km
     assert axis["extent_km"] == pytest.approx(290.0)
+    # A strong coastal-current anomaly in the first 20 km does not end the plume: the end
+    # tests start beyond the near-shore band (30 km); the plume decays from 30 km on.
+    coastal = np.where(ray_km[None, :] < 25.0, 0.5, 0.0) * np.exp(-0.5 * (y / 2.0) ** 2)
+    plume = 0.05 * np.exp(-np.maximum(ray_km[None, :] - 30.0, 0.0) / length) * \
+        np.exp(-0.5 * (y / 2.0) ** 2)
+    axis = trace_plume(coastal + plume, frame, 40, ray_km, 1e-6, start_km=30.0)
+    # check: analytic — e^-1 of the value at 30 km is reached at 30 + 205 km: last kept 230
+    assert axis["extent_km"] == pytest.approx(230.0)
 
 
 def test_time_mean_error_matches_the_ar1_standard_error():
@@ -436,3 +444,51 @@ def test_fused_kernel_has_the_same_metric_terms():
     # and W = -zeta^2 for solid-body rotation (analytic)
     np.testing.assert_allclose(w, okubo_weiss(u, v, m), rtol=1e-10)
     np.testing.assert_allclose(w[:, 1:-1, 1:-1] / zeta[:, 1:-1, 1:-1] ** 2, -1.0, atol=2e-3)
+
+
+# ------------------------------------------------------------------ planted scenario
+@pytest.mark.slow
+def test_weak_regular_shedding_is_found_and_ranked_last_in_a_scenario(tmp_path):
+    """A 4-year daily record: a strong source at one cape and, at another, an eddy a month
+    whose planted feed is a tenth of the strong one's (the generator's own formula)."""
+    import dataclasses
+    import json
+
+    from planted import nearest_source
+
+    from coastmon.pipeline import analyse_series, prepare
+    from coastmon.scenario import SourceSpec, default_params, make_scenario
+    from coastmon.stream import run_pass
+
+    base = default_params()
+    strong = next(s for s in base.sources if s.cape == "Tasker Head")
+    # planted feed = rate x psi0^2 x (same factor): a tenth with 12 eddies a year
+    psi_weak = strong.psi0_m2_s * np.sqrt(0.1 * strong.rate_per_year / 12.0)
+    weak = SourceSpec(name="Weak source", cape="Cape Orrin", rate_per_year=12.0,
+                      psi0_m2_s=float(psi_weak), radius_km=30.0, birth_offset_km=30.0)
+    params = dataclasses.replace(
+        base, seed=3, n_days=1461, lon_min=-42.0, lat_min=33.0, lat_max=38.0,
+        resolution_deg=0.1, compress=False, islands=(),
+        capes=tuple(c for c in base.capes if c.name in {"Tasker Head", "Cape Orrin"}),
+        sources=(strong, weak))
+    settings = SETTINGS.replace("stream", progress=False)
+    nc, truth_path = make_scenario(params, tmp_path / "data")
+    truth = json.loads(truth_path.read_text())
+    prep = prepare([nc], settings)
+    res = run_pass(prep.ds, prep.metrics, prep.frame, settings.stream, tmp_path / "work")
+    src = analyse_series(res.stats, res.series, prep.frame, prep.capes, settings,
+                         prep.ld_km).sources
+    planted = {p["name"]: p for p in truth["sources"]}
+    # check: planted truth — the generator's own feed formula gives about a tenth
+    ratio = planted["Weak source"]["feed_w_per_m"] / planted[strong.name]["feed_w_per_m"]
+    assert ratio == pytest.approx(0.1, rel=1e-6)
+    ranks = {}
+    for name, p in planted.items():
+        k, dist = nearest_source(src, p["cape_lon"], p["cape_lat"])
+        # check: planted truth (the generator's birth sites at the capes)
+        assert dist < 40.0, f"{name}: nearest source {dist:.0f} km away"
+        assert src["cape_id"].values[k] != ""
+        ranks[name] = int(src["rank"].values[k])
+    # check: planted truth — two sources, the weak one ranked last
+    assert len(src) == 2
+    assert ranks == {strong.name: 1, "Weak source": 2}

@@ -650,19 +650,3 @@ def find_sources(
     df = pd.DataFrame(rows)
     return df.sort_values("localization", ascending=False).reset_index(drop=True)[_COLUMNS]
 
-
-def nearest_cape(row, capes: pd.DataFrame, max_km: float) -> tuple[str, float]:
-    """Nearest cape on the same segment by along-shore distance (km); '' if beyond max_km.
-
-    The distance is returned even when the source is unanchored (NaN if the segment has no
-    cape), so users can see how far the nearest cape was.
-    """
-    if capes is None or len(capes) == 0:
-        return "", float("nan")
-    same = capes[capes["segment_id"] == row["segment_id"]]
-    if len(same) == 0:
-        return "", float("nan")
-    d = np.abs(same["alongshore_km"].values - row["alongshore_km"])
-    k = int(np.argmin(d))
-    dist = float(d[k])
-    return (str(same["cape_id"].values[k]) if dist <= max_km else ""), dist

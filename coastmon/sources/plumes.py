@@ -11,8 +11,9 @@ Method
   stations' worth of latitude, so broad currents do not count as jets.
 * The plume axis of a source follows the largest |anomaly| within a band of stations
   around the source's own ray, stepping offshore point by point and moving at most one
-  station per step. It ends at the first point where the plume has ended by either of two
-  tests: |anomaly| is no longer significant — below 1.96 standard errors of the time
+  station per step. Beyond the near-shore band (``nearshore_km``, where the source and the
+  coastal current are), it ends at the first point where the plume has ended by either of
+  two tests: |anomaly| is no longer significant — below 1.96 standard errors of the time
   mean, the standard error taken with the effective sample size of a lag-1
   autoregressive series, n' = n (1 - r1)/(1 + r1) (von Storch & Zwiers 1999, §6.6) — or
   it has decayed below e^-1 of the largest |anomaly| met so far on the axis (the e-folding
@@ -33,21 +34,6 @@ from scipy.ndimage import gaussian_filter1d
 
 from coastmon.grid.metrics import haversine_m
 from coastmon.io.pages import release
-
-
-def time_nanmean(values: np.ndarray, block: int = 256) -> np.ndarray:
-    """Mean over the first (time) axis ignoring NaN, in float64, a block of steps at a time
-    (memory does not grow with the record); NaN where no step is finite."""
-    total = np.zeros(values.shape[1:])
-    count = np.zeros(values.shape[1:])
-    for start in range(0, values.shape[0], block):
-        part = np.asarray(values[start:start + block], dtype=np.float64)
-        ok = np.isfinite(part)
-        total += np.where(ok, part, 0.0).sum(axis=0)
-        count += ok.sum(axis=0)
-        release(values)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(count > 0, total / count, np.nan)
 
 
 def time_mean_error(values: np.ndarray, block: int = 256) -> tuple[np.ndarray, np.ndarray]:
@@ -116,11 +102,6 @@ def along_shore_anomaly(ubar: np.ndarray, frame, smooth_stations: float = 4.0) -
     return out
 
 
-def mean_zonal_anomaly(series: xr.Dataset, frame, smooth_stations: float = 4.0) -> np.ndarray:
-    """Time-mean zonal velocity on the rays minus its along-shore running mean (m s-1)."""
-    return along_shore_anomaly(time_nanmean(series["ray_u"].values), frame, smooth_stations)
-
-
 PLUME_Z = 1.96
 """Standard errors of the time mean below which the plume's anomaly is not significant
 (two-sided 95 %)."""
@@ -129,12 +110,14 @@ PLUME_DECAY = float(np.exp(-1.0))
 
 
 def trace_plume(anomaly: np.ndarray, frame, station: int, ray_km: np.ndarray,
-                error: np.ndarray | float, band: int = 3) -> dict:
+                error: np.ndarray | float, band: int = 3, start_km: float = 0.0) -> dict:
     """Follow the strongest mean zonal-velocity anomaly offshore from one station's ray.
 
-    ``error`` is the standard error of the anomaly, (station, ray) or one number. The axis
-    ends before the first point where |anomaly| < ``PLUME_Z`` x error or < ``PLUME_DECAY``
-    x the largest |anomaly| met so far on it.
+    ``error`` is the standard error of the anomaly, (station, ray) or one number. Points
+    closer to the coast than ``start_km`` (the near-shore band where the source and the
+    coastal current are) are kept as they are; beyond, the axis ends before the first
+    point where |anomaly| < ``PLUME_Z`` x error or < ``PLUME_DECAY`` x the largest
+    |anomaly| met so far beyond ``start_km``.
     """
     seg = frame.stations["segment_id"].values
     same = np.flatnonzero(seg == seg[station])
@@ -150,9 +133,10 @@ def trace_plume(anomaly: np.ndarray, frame, station: int, ray_km: np.ndarray,
             break
         k = int(np.nanargmax(vals))
         s = same[lo + k]
-        if not vals[k] >= PLUME_Z * err[s, r] or vals[k] < PLUME_DECAY * peak:
-            break
-        peak = max(peak, float(vals[k]))
+        if ray_km[r] >= start_km:
+            if not vals[k] >= PLUME_Z * err[s, r] or vals[k] < PLUME_DECAY * peak:
+                break
+            peak = max(peak, float(vals[k]))
         pos = lo + k
         lons.append(frame.ray_lon[s, r])
         lats.append(frame.ray_lat[s, r])
@@ -201,12 +185,13 @@ def jet_spacing_km(anomaly: np.ndarray, frame, ray_km: np.ndarray, min_km: float
     return float(np.median(spacing)) if spacing else float("nan")
 
 
-def plume_axes(series: xr.Dataset, frame, sources: pd.DataFrame, gate_offset_km: float
-               ) -> tuple[list[dict], float]:
-    """Plume axis for every source (in rank order) and the coast-wide jet spacing (km)."""
+def plume_axes(series: xr.Dataset, frame, sources: pd.DataFrame, gate_offset_km: float,
+               start_km: float = 0.0) -> tuple[list[dict], float]:
+    """Plume axis for every source (in rank order) and the coast-wide jet spacing (km);
+    the axes' end tests apply from ``start_km`` offshore (see :func:`trace_plume`)."""
     ray_km = np.asarray(series["ray_km"].values, dtype=float)
     ubar, error = time_mean_error(series["ray_u"].values)
     anomaly = along_shore_anomaly(ubar, frame)
-    axes = [trace_plume(anomaly, frame, int(row["station"]), ray_km, error)
+    axes = [trace_plume(anomaly, frame, int(row["station"]), ray_km, error, start_km=start_km)
             for _, row in sources.iterrows()]
     return axes, jet_spacing_km(anomaly, frame, ray_km, gate_offset_km)
