@@ -537,12 +537,13 @@ class FeedResult:
 
 def _median_background(flux: np.ndarray, quiet: np.ndarray) -> np.ndarray:
     """Median over the quiet rays (last axis) of a flux density; 0 with fewer than 3."""
-    f = flux[..., quiet]
+    f = np.where(np.isfinite(flux[..., quiet]), flux[..., quiet], np.nan)
     n = np.isfinite(f).sum(axis=-1)
-    with np.errstate(all="ignore"):
-        med = np.nanmedian(np.where(np.isfinite(f), f, np.nan), axis=-1) if f.shape[-1] \
-            else np.zeros(f.shape[:-1])
-    return np.where(n >= 3, med, 0.0)
+    med = np.zeros(f.shape[:-1])
+    enough = n >= 3
+    if enough.any():
+        med[enough] = np.nanmedian(f[enough], axis=-1)
+    return med
 
 
 def _gate_feed(flux: np.ndarray, dy: np.ndarray, bg: np.ndarray) -> np.ndarray:
