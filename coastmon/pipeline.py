@@ -71,12 +71,12 @@ from coastmon.sources import (
     alongshore_profiles,
     find_sources,
     gate_set,
-    gate_stations,
     offshore_feed,
     plume_axes,
     rank_sources,
 )
 from coastmon.sources.detect import nearshore_anomaly, time_step_days
+from coastmon.sources.feed import least_squares_speed, net_flux_density
 from coastmon.stream import prestart_readers, run_pass
 from coastmon.stream.pass_ import closing_spare_readers
 from coastmon.stream.readers import close_spares
@@ -217,11 +217,12 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     check_record_length(series.sizes["time"], dt, settings)
     warnings: list[str] = []
     profiles = alongshore_profiles(series, frame, settings, ld_km)
-    found = find_sources(profiles, frame, capes, settings, ld_km)
-    gates = gate_set(series, frame, settings, dt, precise=gate_stations(found, frame, settings))
+    found = find_sources(profiles, frame, capes, settings, ld_km, series=series)
+    gates = gate_set(series, frame, settings, dt, ld_km)
     feed = offshore_feed(found, gates, frame, settings)
     ranked, gates_df, boot = rank_sources(found, feed)
-    axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km)
+    axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km,
+                               start_km=settings.sources.nearshore_km)
     ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
     stability = np.asarray(ranked["rank_stability"].values[:3], dtype=float) if len(ranked) \
         else np.zeros(0)
@@ -264,19 +265,38 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     profiles["segment_id"] = ("station", st["segment_id"].values.astype(np.int32),
                               {"long_name": "coast segment id", "units": "1"})
     speed = np.full(len(st), np.nan)
-    fraction = np.full(len(st), np.nan)
-    speed[gates.station] = 100.0 * gates.speed
-    fraction[gates.station] = gates.offshore_fraction
-    profiles["offshore_speed_cm_s"] = ("station", speed, {
-        "long_name": "propagation speed of relative vorticity along the zonal ray at the gate, "
-                     "positive offshore (Radon transform at source gates, spectral centroid "
-                     "elsewhere)", "units": "cm s-1"})
-    profiles["offshore_energy_fraction"] = ("station", fraction, {
-        "long_name": "share of eddy kinetic energy at the gate propagating offshore "
-                     "(wavenumber-frequency spectrum)", "units": "1"})
+    flux = np.full(len(st), np.nan)
+    if gates.station.size:
+        nominal = gates.means[0]
+        speed[gates.station] = 100.0 * least_squares_speed(nominal[:, 1], nominal[:, 2])
+        flux[gates.station] = settings.sources.rho0 * net_flux_density(
+            nominal, settings.sources.max_speed_cm_s / 100.0)
+    energy = "kinetic plus potential" if gates.has_ssh else "kinetic"
+    profiles["gate_west_speed_cm_s"] = ("station", speed, {
+        "long_name": "speed of the westward-travelling eddy-band energy at the gate on the "
+                     "station's westward ray (least-squares fit)", "units": "cm s-1"})
+    profiles["gate_flux_w_per_m2"] = ("station", flux, {
+        "long_name": f"net westward eddy-band {energy} energy flux density at the gate on "
+                     "the station's westward ray, per metre of depth", "units": "W m-2"})
     spectra = source_spectra(series, frame, ranked, settings, dt)
+    if len(ranked):
+        spectra = spectra.assign(source_feed_table(ranked))
     return Products(stats, profiles, ranked, gates_df, axes, spacing, spectra, spin,
                     100.0 * c_rossby, series, boot, warnings)
+
+
+def source_feed_table(ranked: pd.DataFrame) -> dict[str, xr.DataArray]:
+    """The feed of each source with its bootstrap and structural intervals, on ``source``
+    (the sources in rank order, as ``source_spectra`` lays them out)."""
+    names = {"feed_w_per_m": "net westward eddy-band energy flux across the source's gate "
+                             "minus the coast's background, per metre of depth",
+             "feed_lo": "2.5 % moving-block bootstrap bound of the feed",
+             "feed_hi": "97.5 % moving-block bootstrap bound of the feed",
+             "feed_struct_lo": "smallest feed over gate offsets +/-50 km and window widths",
+             "feed_struct_hi": "largest feed over gate offsets +/-50 km and window widths"}
+    return {f"source_{k}": xr.DataArray(ranked[k].to_numpy(float), dims=("source",),
+                                        attrs={"long_name": v, "units": "W m-1"})
+            for k, v in names.items() if k in ranked.columns}
 
 
 def source_spectra(series: xr.Dataset, frame, ranked: pd.DataFrame, settings: Settings,
@@ -326,10 +346,18 @@ def build_layers(coastline, capes: pd.DataFrame, products: Products, settings: S
     src = products.sources
     keep = ["rank", "feed_w_per_m", "feed_lo", "feed_hi", "persistence", "cape_id",
             "dist_to_cape_km", "alongshore_km", "west_speed_cm_s", "west_speed_sd_cm_s",
-            "pwork_w_per_m", "rank_stability", "zonal_extent_km", "segment_id", "localization",
-            "localization_scale_km", "shedding_period_days", "lon", "lat"]
+            "feed_struct_lo", "feed_struct_hi", "gate_status", "energy_kind", "west_share",
+            "east_speed_cm_s", "bg_w_per_m", "kflux_w_per_m",
+            "pwork_w_per_m", "pwork_rot_w_per_m", "rank_stability", "zonal_extent_km",
+            "segment_id", "localization",
+            "localization_scale_km", "shedding_period_days", "localization_q", "n_members",
+            "members_km", "attribution", "lon", "lat"]
+    table = src[keep].copy() if len(src) else pd.DataFrame({k: [] for k in keep})
+    # Along-shore km of the maxima a cape-level source combines, as text for GIS tables.
+    table["members_km"] = [";".join(f"{km:.1f}" for km in np.atleast_1d(m) if np.isfinite(km))
+                           for m in table["members_km"]]
     sources = gpd.GeoDataFrame(
-        src[keep].copy() if len(src) else pd.DataFrame({k: [] for k in keep}),
+        table,
         geometry=[Point(x, y) for x, y in zip(src["lon"], src["lat"], strict=True)]
         if len(src) else gpd.GeoSeries([], crs=crs), crs=crs)
     gate_rows, gate_geoms = [], []
@@ -595,7 +623,8 @@ def demo(out: str | Path, variant: str = "default", progress: bool = True) -> st
             nc, truth_path = make_scenario(params, data_dir)
         except OSError as exc:
             raise output_error(exc, data_dir, "write the demo's scenario data") from None
-        settings = Settings()
+        settings = Settings().replace("signals",
+                                      deformation_radius_km=params.deformation_radius_km)
         if not progress:
             settings = settings.replace("stream", progress=False)
 
@@ -640,9 +669,13 @@ def truth_comparison(sources: pd.DataFrame, truth: dict[str, Any], tol_km: float
             dist = float(d[k])
             hit = dist <= tol_km
         rank = expected.index(p["name"]) + 1 if p.get("name") in expected else "?"
-        found = (f"found as rank {int(sources['rank'].values[k])}, {dist:.0f} km from the cape, "
-                 f"feed {sources['feed_w_per_m'].values[k]:.3g} W/m"
-                 if hit else "not found")
+        found = "not found"
+        if hit:
+            feed, lo, hi = (float(sources[c].values[k]) for c in ("feed_w_per_m", "feed_lo", "feed_hi"))
+            inside = lo <= float(p.get("feed_w_per_m", float("nan"))) <= hi
+            found = (f"found as rank {int(sources['rank'].values[k])}, {dist:.0f} km from the cape, "
+                     f"feed {feed:.3g} W/m [{lo:.3g}, {hi:.3g}], planted feed "
+                     f"{'inside' if inside else 'outside'} the interval")
         lines.append(f"  planted rank {rank} ({p.get('cape', '?')}, planted feed "
                      f"{p.get('feed_w_per_m', float('nan')):.3g} W/m): {found}")
     return "\n".join(lines)

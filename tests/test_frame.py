@@ -117,7 +117,8 @@ def test_frame_layout_follows_the_contract(straight_coast):
     assert frame.valid.shape == (s * o + s * r,)
     assert frame.section_lon.shape == (s, o) and frame.ray_lon.shape == (s, r)
     assert list(frame.stations.columns) == ["station_id", "segment_id", "alongshore_km", "lon",
-                                            "lat", "normal_az_deg", "ray_dir"]
+                                            "lat", "normal_az_deg", "ray_dir",
+                                            "ring_length_km"]
     # check: common practice, no source (split inverts the station-major row layout)
     field = np.arange(lon.size, dtype=float) % 7
     samples = frame.sampler @ field

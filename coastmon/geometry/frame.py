@@ -259,7 +259,9 @@ class Frame:
         One row per station: ``station_id`` (0..S-1, the row of the section and ray
         arrays), ``segment_id``, ``alongshore_km``, ``lon``, ``lat``, ``normal_az_deg``
         (offshore normal, degrees clockwise from north), ``ray_dir`` (-1 west, +1 east,
-        0 no ray).
+        0 no ray; the feed uses only westward rays), ``ring_length_km`` (length of the
+        station's segment when it is a closed ring, an island; NaN on open segments, so
+        along-shore distances wrap on rings).
     offsets_km : numpy.ndarray
         (O,) offshore distances of the section points.
     ray_km : numpy.ndarray
@@ -421,7 +423,7 @@ def build_frame(
     n_ray = int(np.floor(settings.ray_length_km / settings.ray_spacing_km + 1e-9))
     ray_km = settings.ray_spacing_km * np.arange(1, n_ray + 1)
 
-    px, py, tx, ty, seg_of, along = [], [], [], [], [], []
+    px, py, tx, ty, seg_of, along, ring = [], [], [], [], [], [], []
     for seg in coastline.segments:
         s_st = _station_positions(seg.length_km, settings.station_spacing_km, seg.closed)
         _, _, dx, dy, _, _ = smoothed_derivatives(seg.x_km, seg.y_km, settings.min_scale_km,
@@ -432,6 +434,7 @@ def build_frame(
         ty.append(_along_interp(seg, s_st, dy))
         seg_of.append(np.full(s_st.size, seg.segment_id))
         along.append(s_st)
+        ring.append(np.full(s_st.size, seg.length_km if seg.closed else np.nan))
     px, py = np.concatenate(px), np.concatenate(py)
     tx, ty = np.concatenate(tx), np.concatenate(ty)
     seg_of = np.concatenate(seg_of)
@@ -510,6 +513,7 @@ def build_frame(
             "lat": st_lat,
             "normal_az_deg": az,
             "ray_dir": ray_dir,
+            "ring_length_km": np.concatenate(ring),
         }
     )
     return Frame(

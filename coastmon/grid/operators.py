@@ -89,16 +89,38 @@ def divergence(u: np.ndarray, v: np.ndarray, metrics: GridMetrics) -> np.ndarray
     return _to_points(_dual_sum(u, metrics.gx) + _dual_sum(v, metrics.gy))
 
 
-def strain(u: np.ndarray, v: np.ndarray, metrics: GridMetrics) -> tuple[np.ndarray, np.ndarray]:
-    r"""Normal and shear strain (s-1) at the grid points.
+def _strain_dual(u: np.ndarray, v: np.ndarray, metrics: GridMetrics
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """Normal and shear strain on the dual cells, with the spherical metric terms."""
+    # tan(lat)/a of each dual cell: minus the divergence-form northward derivative of a
+    # constant, (a cos lat)^-1 d(cos lat)/d lat = -tan(lat)/a, which is the sum of the
+    # northward weights (the same discrete operator, so a constant gives exactly 0).
+    tan_over_a = -metrics.gy.sum(axis=0)
+    sn = _grad_dual(u, metrics.gx) - _grad_dual(v, metrics.gy) - _cell_mean(v) * tan_over_a
+    ss = _grad_dual(v, metrics.gx) + _grad_dual(u, metrics.gy) + _cell_mean(u) * tan_over_a
+    return sn, ss
 
-    :math:`s_n = \partial u/\partial x - \partial v/\partial y`,
-    :math:`s_s = \partial v/\partial x + \partial u/\partial y`.
+
+def strain(u: np.ndarray, v: np.ndarray, metrics: GridMetrics) -> tuple[np.ndarray, np.ndarray]:
+    r"""Normal and shear strain (s-1) at the grid points, on the sphere.
+
+    .. math::
+
+        s_n = \frac{\partial u}{\partial x} - \frac{\partial v}{\partial y}
+              - \frac{v\tan\varphi}{a},\qquad
+        s_s = \frac{\partial v}{\partial x} + \frac{\partial u}{\partial y}
+              + \frac{u\tan\varphi}{a}
+
+    with u, v the eastward and northward components: the rate-of-strain tensor in
+    spherical coordinates (Batchelor 1967, appendix 2, with colatitude
+    :math:`\theta = \pi/2 - \varphi`). The metric terms make the strain of a
+    solid-body rotation of the sphere, :math:`u = U\cos\varphi`, exactly zero; without
+    them it would be :math:`U\sin\varphi/a`, a quarter of ζ² in W (small at the
+    mesoscale, where the velocity gradients are much larger than u/a).
     """
     u = np.asarray(u, dtype=np.float64)
     v = np.asarray(v, dtype=np.float64)
-    sn = _grad_dual(u, metrics.gx) - _grad_dual(v, metrics.gy)
-    ss = _grad_dual(v, metrics.gx) + _grad_dual(u, metrics.gy)
+    sn, ss = _strain_dual(u, v, metrics)
     return _to_points(sn), _to_points(ss)
 
 
@@ -106,15 +128,14 @@ def okubo_weiss(u: np.ndarray, v: np.ndarray, metrics: GridMetrics) -> np.ndarra
     r"""Okubo–Weiss parameter :math:`W = s_n^2 + s_s^2 - \zeta^2` (s-2).
 
     Negative W marks rotation-dominated eddy cores (Okubo 1970; Weiss 1991). Computed on
-    the dual cells (strain from :func:`gradient_dual`, vorticity from the circulation), then
-    averaged to the points.
+    the dual cells (strain with its spherical metric terms as in :func:`strain`,
+    vorticity from the circulation), then averaged to the points.
     """
     u = np.asarray(u, dtype=np.float64)
     v = np.asarray(v, dtype=np.float64)
-    ux, uy = _grad_dual(u, metrics.gx), _grad_dual(u, metrics.gy)
-    vx, vy = _grad_dual(v, metrics.gx), _grad_dual(v, metrics.gy)
+    sn, ss = _strain_dual(u, v, metrics)
     zeta = vorticity_dual(u, v, metrics)
-    return _to_points((ux - vy) ** 2 + (vx + uy) ** 2 - zeta**2)
+    return _to_points(sn**2 + ss**2 - zeta**2)
 
 
 def rossby_number(zeta: np.ndarray, metrics: GridMetrics) -> np.ndarray:

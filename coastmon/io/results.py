@@ -110,15 +110,15 @@ VARIABLES: dict[str, dict[str, str]] = {
                             "units": "m s-2", "cell_methods": _MEAN},
     "eddy_band_power": {"long_name": "along-shore wavelet power in the eddy band",
                         "units": "s-2"},
-    "persistence": {"long_name": "fraction of time with significant eddy-band power",
-                    "units": "1"},
+    "persistence": {"long_name": "fraction of independent time windows with eddy-band "
+                                 "variance above the local background", "units": "1"},
     "west_speed_cm_s": {"long_name": "measured westward propagation speed", "units": "cm s-1"},
     "rossby_speed_cm_s": {"long_name": "long baroclinic Rossby wave speed, westward positive",
                           "units": "cm s-1"},
     "deformation_radius_km": {"long_name": "first baroclinic deformation radius",
                               "units": "km"},
-    "feed_w_per_m": {"long_name": "westward eddy energy feed across the gate, per metre of "
-                                  "depth", "units": "W m-1"},
+    "feed_w_per_m": {"long_name": "net westward eddy-band energy flux across the gate minus "
+                                  "the background, per metre of depth", "units": "W m-1"},
     # spectra
     "frequency": {"long_name": "frequency", "units": "d-1"},
     "wavenumber": {"long_name": "zonal wavenumber, positive eastward", "units": "km-1"},

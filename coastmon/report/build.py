@@ -53,8 +53,10 @@ def _top_source_figures(figdir: Path, prep, products, settings: Settings, series
                                  speed_m_s=float(speed) if np.isfinite(speed) else None,
                                  rossby_speed_m_s=float(rossby))
             out.append((f"Hovmöller diagram of relative vorticity along the zonal ray from "
-                        f"source {rank}; distance increases offshore. Solid line: measured "
-                        f"propagation speed; dashed: long baroclinic Rossby-wave speed.", p))
+                        f"source {rank}; distance increases away from the coast along the "
+                        f"parallel. Solid line: measured speed of the westward-travelling "
+                        f"eddy-band energy at the gate (the feed's speed); dashed: long "
+                        f"baroclinic Rossby-wave speed.", p))
         x = np.nan_to_num(zeta_ns[:, s])
         wt = cwt_morlet(x, dt, dj=settings.signals.dj, omega0=settings.signals.omega0)
         sig = red_noise_significance(bg_var, bg_alpha, wt.periods, dt,
@@ -109,16 +111,17 @@ def write_figures_and_report(stage: Path, prep, products, layers: dict, settings
         capes_km=capes_km, sources_km=sources_km)
     figures.append(("Along-shore profiles on the main coast segment: (a) near-shore eddy "
                     "kinetic energy, (b) near-shore relative-vorticity variance, (c) persistence: "
-                    "fraction of time with eddy-band shedding above the coast's red-noise "
-                    "background, (d) along-shore localization: scale-averaged wavelet power over "
-                    "its 95 % red-noise level (above 1 is significant). Capes in grey, sources "
-                    "by rank.", p))
+                    "fraction of independent time windows in which the eddy-band variance is "
+                    "above the local background (the neighbouring coast on both sides), "
+                    "(d) localization: eddy-band variance over that local background (1 = "
+                    "background). Capes in grey, sources by rank.", p))
     if series is not None:
         figures.extend(_top_source_figures(figdir, prep, products, settings, series))
     if len(products.sources):
         p = ranking_figure(figdir / "ranking.png", products.sources)
-        figures.append(("Offshore eddy-energy feed of each source with its 95 % moving-block "
-                        "bootstrap interval.", p))
+        figures.append(("Net westward eddy-band energy feed of each source across its "
+                        "meridional gate, with its 95 % moving-block bootstrap interval and "
+                        "(grey) its range over gate offsets ±50 km and window widths.", p))
     sp = products.spinup
     p = spinup_figure(figdir / "spinup.png", sp.length_days, sp.correlation, sp.threshold,
                       sp.length_needed_days if sp.settled else None)
@@ -139,10 +142,12 @@ def write_figures_and_report(stage: Path, prep, products, layers: dict, settings
         "time mean settled after": (f"{sp.length_needed_days:.0f} days" if sp.settled
                                     else "not within the record"),
     }
-    table_cols = ["rank", "feed_w_per_m", "feed_lo", "feed_hi", "persistence", "cape_id",
+    table_cols = ["rank", "feed_w_per_m", "feed_lo", "feed_hi", "feed_struct_lo",
+                  "feed_struct_hi", "gate_status", "persistence", "cape_id",
                   "dist_to_cape_km", "alongshore_km", "west_speed_cm_s", "rank_stability",
                   "lon", "lat"]
-    write_report(stage / "report.html", title="Coastal vorticity sources and their offshore feed",
-                 summary=summary, sources=src[table_cols] if len(src) else src,
+    write_report(stage / "report.html", title="Coastal vorticity sources and their westward feed",
+                 summary=summary,
+                 sources=src[[c for c in table_cols if c in src.columns]] if len(src) else src,
                  capes=capes, figures=figures, provenance=provenance,
                  warnings=products.warnings)

@@ -575,7 +575,7 @@ def wavelet_figure(
 
 @_styled
 def ranking_figure(path: str | os.PathLike[str], sources: pd.DataFrame) -> Path:
-    """Sources ranked by the eddy energy they feed westward, with 95 % intervals.
+    """Sources ranked by the net westward eddy energy feed, with 95 % intervals.
 
     Parameters
     ----------
@@ -583,13 +583,15 @@ def ranking_figure(path: str | os.PathLike[str], sources: pd.DataFrame) -> Path:
         PNG file to write.
     sources
         Table with ``rank``, ``feed_w_per_m``, ``feed_lo``, ``feed_hi`` and optionally
-        ``cape_id``; rank 1 is drawn at the top.
+        ``cape_id``, ``feed_struct_lo``/``feed_struct_hi`` (drawn as a grey band: the range
+        over gate placements) and ``gate_status`` (sources without a gate are labelled and
+        drawn without a bar); rank 1 is drawn at the top.
     """
     table = pd.DataFrame(sources).sort_values("rank")
     n = len(table)
     fig = _figure(6.0, 1.3 + 0.38 * max(n, 2))
     ax = fig.add_subplot()
-    ax.set_xlabel("westward eddy energy feed (W m⁻¹)")
+    ax.set_xlabel("net westward eddy energy feed (W m⁻¹ per m of depth)")
     if n == 0:
         ax.text(0.5, 0.5, "no sources found", transform=ax.transAxes, ha="center",
                 va="center", color="0.3")
@@ -600,13 +602,24 @@ def ranking_figure(path: str | os.PathLike[str], sources: pd.DataFrame) -> Path:
     hi = table["feed_hi"].to_numpy(float)
     y = np.arange(n)
     err = np.vstack([np.clip(feed - lo, 0, None), np.clip(hi - feed, 0, None)])
-    ax.barh(y, feed, color=SKY, edgecolor=BLUE, height=0.6)
+    handles = [Patch(facecolor=SKY, edgecolor=BLUE, label="estimate"),
+               Line2D([], [], color="black", marker="|", label="95 % interval")]
+    if {"feed_struct_lo", "feed_struct_hi"} <= set(table.columns):
+        s_lo = table["feed_struct_lo"].to_numpy(float)
+        s_hi = table["feed_struct_hi"].to_numpy(float)
+        ax.barh(y, s_hi - s_lo, left=s_lo, color="0.85", height=0.9, zorder=0)
+        handles.append(Patch(facecolor="0.85", label="gate-placement range"))
+    has = np.isfinite(feed)
+    ax.barh(y[has], feed[has], color=SKY, edgecolor=BLUE, height=0.6)
     ax.errorbar(feed, y, xerr=err, fmt="none", ecolor="black", elinewidth=1.1, capsize=3)
+    ax.axvline(0.0, color="0.4", linewidth=0.8)
     capes = table["cape_id"] if "cape_id" in table.columns else pd.Series([""] * n)
+    status = table["gate_status"] if "gate_status" in table.columns else pd.Series([""] * n)
     labels = []
-    for rank, cape in zip(table["rank"], capes, strict=True):
+    for rank, cape, gate in zip(table["rank"], capes, status, strict=True):
         where = str(cape) if isinstance(cape, str) and cape else "no cape"
-        labels.append(f"#{rank}  {where}")
+        no_gate = f" ({str(gate).replace('_', ' ')})" if gate and gate != "ok" else ""
+        labels.append(f"#{rank}  {where}{no_gate}")
     ax.set_yticks(y, labels)
     ax.set_ylim(n - 0.5, -0.5)
     finite_lo = lo[np.isfinite(lo)]
@@ -615,9 +628,7 @@ def ranking_figure(path: str | os.PathLike[str], sources: pd.DataFrame) -> Path:
         ax.text(0.0, k, "  not measurable", va="center", ha="left", color="0.3", fontsize=8)
     ax.grid(axis="x", color="0.9", linewidth=0.6)
     ax.set_axisbelow(True)
-    ax.legend(handles=[Patch(facecolor=SKY, edgecolor=BLUE, label="estimate"),
-                       Line2D([], [], color="black", marker="|", label="95 % interval")],
-              loc="lower right", framealpha=0.9)
+    ax.legend(handles=handles, loc="lower right", framealpha=0.9)
     return _save(fig, path)
 
 

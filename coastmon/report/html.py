@@ -39,6 +39,8 @@ _SOURCE_COLUMNS = (
     ("rank", "Rank", "{:d}"),
     ("feed_w_per_m", "Feed (W m⁻¹)", "{:.3g}"),
     ("interval", "95 % interval", None),
+    ("structural", "Gate-placement range", None),
+    ("gate_status", "Gate", None),
     ("persistence", "Persistence", "{:.2f}"),
     ("cape_id", "Cape", None),
     ("dist_to_cape_km", "To cape (km)", "{:.0f}"),
@@ -54,7 +56,7 @@ _CAPE_COLUMNS = (
     ("alongshore_km", "Along-shore (km)", "{:.0f}"),
     ("position", "Position", None),
 )
-_NUMERIC = {"rank", "feed_w_per_m", "interval", "persistence", "dist_to_cape_km",
+_NUMERIC = {"rank", "feed_w_per_m", "interval", "structural", "persistence", "dist_to_cape_km",
             "alongshore_km", "west_speed_cm_s", "curvature_per_km", "scale_km",
             "protrusion_km"}
 
@@ -97,6 +99,13 @@ def _cell(row: Mapping[str, Any], key: str, spec: str | None) -> str:
         if _missing(lo) or _missing(hi):
             return "–"
         return f"{float(lo):.3g} – {float(hi):.3g}"
+    if key == "structural":
+        lo, hi = row.get("feed_struct_lo"), row.get("feed_struct_hi")
+        if _missing(lo) or _missing(hi):
+            return "–"
+        return f"{float(lo):.3g} – {float(hi):.3g}"
+    if key == "gate_status" and not _missing(row.get(key)):
+        return escape(str(row[key]).replace("_", " "))
     if key == "position":
         return _position(row.get("lon"), row.get("lat"))
     if key == "cape_id" and _missing(row.get(key)):
@@ -108,10 +117,12 @@ def _table(frame: pd.DataFrame, columns: Sequence[tuple[str, str, str | None]],
            caption: str, empty: str) -> str:
     if frame is None or len(frame) == 0:
         return f'<p class="none">{escape(empty)}</p>'
-    present = set(frame.columns) | {"interval", "position"}
+    present = set(frame.columns) | {"interval", "position", "structural"}
     cols = [c for c in columns if c[0] in present
             and (c[0] != "position" or {"lon", "lat"} <= set(frame.columns))
-            and (c[0] != "interval" or {"feed_lo", "feed_hi"} <= set(frame.columns))]
+            and (c[0] != "interval" or {"feed_lo", "feed_hi"} <= set(frame.columns))
+            and (c[0] != "structural"
+                 or {"feed_struct_lo", "feed_struct_hi"} <= set(frame.columns))]
     head = "".join(f'<th scope="col"{_num_class(key)}>{escape(label)}</th>'
                    for key, label, _ in cols)
     rows = []
@@ -136,6 +147,9 @@ def answer_sentence(sources: pd.DataFrame) -> str:
     top = table.iloc[0]
     n = len(table)
     lead = f"{n} coastal vorticity source{'s' if n != 1 else ''} found. "
+    if _missing(top.get("feed_w_per_m")):
+        return (f"{lead}No source has a gate in open water west of it, so none has a "
+                "westward feed (see the Gate column).")
     feed = f"{float(top['feed_w_per_m']):.3g} W m⁻¹"
     if not (_missing(top.get("feed_lo")) or _missing(top.get("feed_hi"))):
         feed += f" (95 % interval {float(top['feed_lo']):.3g} to {float(top['feed_hi']):.3g})"
@@ -233,10 +247,14 @@ def render_report(
         '<section id="answer"><h2>Answer</h2>',
         f'<p class="answer">{escape(answer_sentence(sources))}</p>',
         _table(sources, _SOURCE_COLUMNS,
-               "Sources ranked by the eddy energy they carry westward across a gate offshore "
-               "(feed, per metre of depth) with its 95 % interval from a moving-block bootstrap "
-               "over time; persistence is the fraction of time with eddy-band power significant "
-               "above the coast's red-noise background.",
+               "Sources ranked by their feed: the net westward flux of eddy-band energy "
+               "(kinetic, plus potential where SSH is given) across a meridional gate in open "
+               "water west of the source, per metre of depth, minus the coast's background; "
+               "with its 95 % interval from a moving-block bootstrap over time and its range "
+               "over gate offsets ±50 km and window widths. A source with no gate in open "
+               "water west of it has no feed and ranks last (Gate column). Persistence is the "
+               "fraction of independent time windows in which the near-shore eddy-band "
+               "variance is above the neighbouring coast's on both sides.",
                "No sources to list."),
         _facts(summary),
         "<h3>Capes</h3>",

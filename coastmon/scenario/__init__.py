@@ -5,7 +5,10 @@ surface height and the land/sea mask, and a JSON file with what was planted: the
 their capes, birth rates, eddy amplitudes and the offshore energy feed each one carries
 across a gate. Variants: :func:`default_params` (three sources of different strength and a
 cape that sheds nothing), :func:`straight_coast_params` (control without anchored sources)
-and :func:`western_boundary_params` (land to the west).
+and :func:`western_boundary_params` (land to the west); ``[[standing]]`` tables add
+standing oscillations (zero planted feed). :mod:`coastmon.scenario.bookkeeping` computes the
+planted feed from the planted eddies' own fields; :mod:`coastmon.scenario.rossby` writes an
+analytic linear Rossby-wave train with its group-velocity energy flux.
 """
 
 from coastmon.scenario.generate import make_scenario
@@ -14,6 +17,7 @@ from coastmon.scenario.params import (
     IslandSpec,
     ScenarioParams,
     SourceSpec,
+    StandingSpec,
     default_params,
     straight_coast_params,
     western_boundary_params,
@@ -24,6 +28,7 @@ __all__ = [
     "IslandSpec",
     "ScenarioParams",
     "SourceSpec",
+    "StandingSpec",
     "default_params",
     "make_scenario",
     "straight_coast_params",

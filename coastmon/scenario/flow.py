@@ -75,44 +75,33 @@ def gaussian_eddy(
     return psi, u, v
 
 
-def gaussian_eddy_energy(psi0_m2_s: ArrayLike, rho0: float) -> NDArray[np.float64]:
-    """Kinetic energy of a Gaussian eddy per metre of depth (J m-1).
-
-    .. math:: E = \\rho_0 \\iint \\tfrac12 |\\nabla\\psi|^2\\,dA = \\tfrac12\\rho_0\\pi\\psi_0^2,
-
-    because :math:`|\\nabla\\psi|^2 = 4\\psi_0^2 r^2 R^{-4} e^{-2r^2/R^2}` and
-    :math:`\\int_0^\\infty 4 r^2 R^{-4} e^{-2r^2/R^2}\\, 2\\pi r\\,dr = \\pi` (substitute
-    :math:`t = r^2`; :math:`\\int_0^\\infty t e^{-2t/R^2} dt = R^4/4`). The result does not
-    depend on R.
-    """
-    return 0.5 * rho0 * np.pi * np.asarray(psi0_m2_s, dtype=float) ** 2
-
-
 def amplitude_factor(age_s: ArrayLike, growth_s: float, decay_s: float) -> NDArray[np.float64]:
     """Amplitude of an eddy of age t relative to full strength: (1 - e^{-t/T_g}) e^{-t/T_d}."""
     age = np.asarray(age_s, dtype=float)
     return np.where(age >= 0.0, -np.expm1(-np.maximum(age, 0.0) / growth_s) * np.exp(-age / decay_s), 0.0)
 
 
-def planted_feed_w_per_m(
-    rate_per_s: ArrayLike, psi0_m2_s: ArrayLike, gate_distance_m: float, speed_m_s: float,
-    growth_s: float, decay_s: float, rho0: float,
-) -> NDArray[np.float64]:
-    """Mean eddy energy carried offshore across a meridional gate (W per m of depth).
+def standing_oscillation(
+    lon: ArrayLike, lat: ArrayLike, time_s: float, lon0: float, lat0: float, psi0_m2_s: float,
+    halfwidth_m: float, wavenumber_per_m: float, omega_per_s: float,
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """A pattern pulsating in place: :math:`\\psi = \\psi_0 e^{-y^2/W^2}\\cos(kx)\\cos(\\omega t)`.
 
-    Eddies of one source are born at a mean rate r (s-1), move offshore at speed c and reach
-    a gate at distance D after :math:`t_g = D/c`. Each carries across the whole of its kinetic
-    energy at that age, so the mean energy flux through the gate is
-
-    .. math:: F = r\\,\\rho_0\\,\\frac{\\pi}{2}\\,\\psi_0(t_g)^2, \\qquad
-              \\psi_0(t) = \\psi_0 (1 - e^{-t/T_g})\\,e^{-t/T_d},
-
-    using :func:`gaussian_eddy_energy` for the energy of a Gaussian eddy. The meridional drift
-    does not change the crossing time of a meridional gate.
+    x, y are on the plane tangent at (lon0, lat0) and v is scaled by
+    :math:`\\cos\\phi_0/\\cos\\phi` as in :func:`gaussian_eddy`. Since
+    :math:`\\cos(kx)\\cos(\\omega t) = \\tfrac12[\\cos(kx-\\omega t) + \\cos(kx+\\omega t)]`
+    it is two equal waves running west and east: its energy density only changes in place
+    and no energy crosses any meridian (zero planted feed).
     """
-    t_gate = gate_distance_m / speed_m_s
-    psi_gate = np.asarray(psi0_m2_s, dtype=float) * amplitude_factor(t_gate, growth_s, decay_s)
-    return np.asarray(rate_per_s, dtype=float) * gaussian_eddy_energy(psi_gate, rho0)
+    lon, lat = np.broadcast_arrays(np.asarray(lon, dtype=float), np.asarray(lat, dtype=float))
+    cos0 = np.cos(np.radians(lat0))
+    x = EARTH_RADIUS_M * cos0 * np.radians(lon - lon0)
+    y = EARTH_RADIUS_M * np.radians(lat - lat0)
+    envelope = psi0_m2_s * np.exp(-(y**2) / halfwidth_m**2) * np.cos(omega_per_s * time_s)
+    psi = envelope * np.cos(wavenumber_per_m * x)
+    u = 2.0 * y / halfwidth_m**2 * psi
+    v = -wavenumber_per_m * envelope * np.sin(wavenumber_per_m * x) * (cos0 / np.cos(np.radians(lat)))
+    return psi, u, v
 
 
 def eddy_track(

@@ -1,11 +1,13 @@
 """Write a synthetic scenario: a CF-1.8 NetCDF file of u, v, ssh, mask and its planted truth.
 
 The flow is the sum of a mean coastal current, weak westward background Rossby waves,
-Gaussian eddies shed by the planted sources, and white noise. Eddies are born at Poisson
+Gaussian eddies shed by the planted sources, optional standing oscillations at capes, and
+white noise. Eddies are born at Poisson
 times (or periodically), move offshore at a fixed speed with cyclones drifting poleward and
 anticyclones equatorward, grow and then decay with age, and are removed when their centre
 reaches land or leaves the grid. Nothing is read back from other coastmon stages: the truth
-file holds what was planted.
+file holds what was planted, and the planted feed is the bookkeeping of the planted eddies'
+own energy crossing the gate meridian (:mod:`coastmon.scenario.bookkeeping`).
 """
 
 from __future__ import annotations
@@ -21,14 +23,19 @@ import numpy as np
 from numpy.typing import NDArray
 
 from coastmon.errors import OutputError, SettingsError
+from coastmon.scenario.bookkeeping import (
+    gaussian_eddy_total_energy,
+    meridian_west_of,
+    source_gate_flux,
+)
 from coastmon.scenario.flow import (
     amplitude_factor,
     boundary_current,
     coriolis_parameter,
     eddy_track,
     gaussian_eddy,
-    planted_feed_w_per_m,
     rossby_waves,
+    standing_oscillation,
 )
 from coastmon.scenario.geography import (
     KM_PER_DEG,
@@ -45,6 +52,16 @@ SECONDS_PER_DAY = 86400.0
 SECONDS_PER_YEAR = 365.25 * SECONDS_PER_DAY
 _WINDOW_RADII = 4.0
 _CHUNK_DAYS = 10
+PROFILE_OFFSETS_KM = tuple(range(50, 301, 25))
+"""Gate offsets (km offshore of the cape tip) of the planted feed profile in the truth file."""
+FEED_FORMULA = (
+    "feed = s c <integral over the gate meridian of e dy>, the record mean (daily steps) of "
+    "the energy that the source's planted eddies carry across the meridian gate_offset_km "
+    "offshore of the cape tip; e = rho0 [(u^2 + v^2)/2 + psi^2/(2 Ld^2)] (kinetic plus "
+    "equivalent-barotropic potential energy, psi = g ssh / f, Ld = deformation_radius_km) of "
+    "the eddy-band anomalies (periods in eddy_period_days) of the source's own exact eddy "
+    "fields on the meridian; c = the eddies' offshore translation speed, s = +1 westward off "
+    "an eastern boundary (-1 off a western one); W per m of depth, positive westward")
 
 
 @dataclass(frozen=True)
@@ -157,9 +174,9 @@ def _check_paths_to_gate(params: ScenarioParams) -> None:
     if params.birth_placement != "capes":
         return
     capes = {c.name: c for c in params.capes}
-    t_gate = params.gate_offset_km * 1000.0 / params.offshore_speed_m_s
-    ages = np.linspace(0.0, t_gate, 200)
     for spec in params.sources:
+        t_gate = max(params.gate_offset_km - spec.birth_offset_km, 0.0) * 1000.0 / params.offshore_speed_m_s
+        ages = np.linspace(0.0, t_gate, 200)
         lat_b = capes[spec.cape].lat
         lon_b = _birth_point(lat_b, params, spec.birth_offset_km)
         for cyclone in (True, False):
@@ -178,8 +195,6 @@ def _truth(params: ScenarioParams, births: list[Birth], waves: NDArray[np.float6
            lon: NDArray[np.float64], lat: NDArray[np.float64]) -> dict:
     growth_s = params.growth_days * SECONDS_PER_DAY
     decay_s = params.decay_days * SECONDS_PER_DAY
-    gate_m = params.gate_offset_km * 1000.0
-    t_gate_days = gate_m / params.offshore_speed_m_s / SECONDS_PER_DAY
     capes_out = []
     shedding = {s.cape for s in params.sources} if params.birth_placement == "capes" else set()
     for cape in params.capes:
@@ -194,40 +209,20 @@ def _truth(params: ScenarioParams, births: list[Birth], waves: NDArray[np.float6
         ilon, ilat = island_centre(island, params)
         islands_out.append({"name": island.name, "lon": ilon, "lat": ilat,
                             "diameter_km": island.diameter_km, "offshore_km": island.offshore_km})
-    record_s = params.n_days * SECONDS_PER_DAY
-    sources_out = []
-    for spec in params.sources:
-        feed = float(planted_feed_w_per_m(spec.rate_per_year / SECONDS_PER_YEAR, spec.psi0_m2_s,
-                                          gate_m, params.offshore_speed_m_s, growth_s, decay_s,
-                                          params.rho0))
-        mine = [b for b in births if b.source == spec.name]
-        crossing = [b for b in mine if 0.0 <= b.time_days + t_gate_days < params.n_days
-                    and b.end_days > b.time_days + t_gate_days]
-        per_eddy = feed / (spec.rate_per_year / SECONDS_PER_YEAR)
-        realized = per_eddy * len(crossing) / record_s
-        entry = {"name": spec.name, "birth_rate_per_year": spec.rate_per_year,
-                 "psi0_m2_s": spec.psi0_m2_s, "radius_km": spec.radius_km,
-                 "feed_w_per_m": feed, "realized_feed_w_per_m": realized,
-                 "n_births_in_record": sum(0.0 <= b.time_days < params.n_days for b in mine),
-                 "n_gate_crossings_in_record": len(crossing)}
-        if params.birth_placement == "capes":
-            cape = next(c for c in params.capes if c.name == spec.cape)
-            lon_b = _birth_point(cape.lat, params, spec.birth_offset_km)
-            drift_km = params.meridional_drift_m_s * gate_m / params.offshore_speed_m_s / 1000.0
-            entry.update({
-                "cape": cape.name, "lon": lon_b, "lat": cape.lat,
-                "cape_lon": float(coast_lon(cape.lat, params)), "cape_lat": cape.lat,
-                "alongshore_km": float(alongshore_km(cape.lat, params)),
-                "birth_offset_km": spec.birth_offset_km,
-                "gate_lon": float(eddy_track(lon_b, cape.lat, gate_m / params.offshore_speed_m_s,
-                                             params.offshore_speed_m_s, 0.0, params.side)[0]),
-                "meridional_drift_at_gate_km": drift_km,
-            })
-        sources_out.append(entry)
-    total = sum(s["feed_w_per_m"] for s in sources_out)
     anchored = params.birth_placement == "capes"
-    ranked = sorted(sources_out, key=lambda s: -s["feed_w_per_m"]) if anchored else []
-    top = ranked[0]["feed_w_per_m"] if ranked else 1.0
+    sources_out = [_source_truth(params, spec, [b for b in births if b.source == spec.name],
+                                 growth_s, decay_s) for spec in params.sources]
+    total = sum(s["offshore_feed_w_per_m"] for s in sources_out)
+    ranked = sorted(sources_out, key=lambda s: -s["offshore_feed_w_per_m"]) if anchored else []
+    top = (ranked[0]["offshore_feed_w_per_m"] if ranked else 0.0) or 1.0
+    capes_by_name = {c.name: c for c in params.capes}
+    standing_out = [{
+        "name": o.name, "cape": o.cape, "lon": float(coast_lon(capes_by_name[o.cape].lat, params)),
+        "lat": capes_by_name[o.cape].lat, "psi0_m2_s": o.psi0_m2_s,
+        "halfwidth_km": o.halfwidth_km, "wavelength_km": o.wavelength_km,
+        "period_days": o.period_days, "feed_w_per_m": 0.0,
+        "feed_note": "a standing pattern: its energy changes only in place, none crosses a meridian",
+    } for o in params.standing]
     truth = {
         "variant": params.variant,
         "name": params.name,
@@ -246,15 +241,16 @@ def _truth(params: ScenarioParams, births: list[Birth], waves: NDArray[np.float6
         "decay_days": params.decay_days,
         "growth_days": params.growth_days,
         "gate_offset_km": params.gate_offset_km,
-        "gate_crossing_days": t_gate_days,
+        "gate_halfwidth_km": params.gate_halfwidth_km,
         "rho0": params.rho0,
-        "feed_formula": ("F = rate_per_s * rho0 * pi * psi0(t_gate)**2 / 2, "
-                         "psi0(t) = psi0 * (1 - exp(-t/growth)) * exp(-t/decay), "
-                         "t_gate = gate_offset / offshore_speed; W per m of depth"),
+        "deformation_radius_km": params.deformation_radius_km,
+        "eddy_period_days": list(params.eddy_period_days),
+        "feed_formula": FEED_FORMULA,
         "anchored_sources": anchored,
         "sources": sources_out if anchored else [],
         "expected_rank": [s["name"] for s in ranked],
-        "relative_feed": {s["name"]: s["feed_w_per_m"] / top for s in ranked},
+        "relative_feed": {s["name"]: s["offshore_feed_w_per_m"] / top for s in ranked},
+        "standing": standing_out,
         "capes": capes_out,
         "islands": islands_out,
         "straight_stretch": params.straight_stretch_name if params.capes else params.coast_name,
@@ -280,6 +276,72 @@ def _truth(params: ScenarioParams, births: list[Birth], waves: NDArray[np.float6
             "component_sources": sources_out,
         }
     return truth
+
+
+def _source_truth(params: ScenarioParams, spec, mine: list[Birth], growth_s: float,
+                  decay_s: float) -> dict:
+    """The planted feed of one source by bookkeeping (see :mod:`coastmon.scenario.bookkeeping`)."""
+    record_s = params.n_days * SECONDS_PER_DAY
+    rate = spec.rate_per_year / SECONDS_PER_YEAR
+    entry = {"name": spec.name, "birth_rate_per_year": spec.rate_per_year,
+             "psi0_m2_s": spec.psi0_m2_s, "radius_km": spec.radius_km,
+             "n_births_in_record": sum(0.0 <= b.time_days < params.n_days for b in mine)}
+    if params.birth_placement != "capes":
+        ke, pe = gaussian_eddy_total_energy(spec.psi0_m2_s, spec.radius_km * 1000.0,
+                                            params.deformation_radius_km * 1000.0, params.rho0)
+        entry.update({"offshore_feed_w_per_m": float(rate * (ke + pe)),
+                      "feed_note": "births spread along the coast: the energy each eddy "
+                                   "reaches at full strength times the birth rate"})
+        return entry
+    cape = next(c for c in params.capes if c.name == spec.cape)
+    tip_lon = float(coast_lon(cape.lat, params))
+    half_deg = params.gate_halfwidth_km / KM_PER_DEG
+    gate_lat = (cape.lat - half_deg, cape.lat + half_deg)
+
+    def flux_at(offset_km: float):
+        return source_gate_flux(mine, params, meridian_west_of(tip_lon, cape.lat, offset_km,
+                                                               params.side), gate_lat)
+
+    main = flux_at(params.gate_offset_km)
+    t_gate_s = (params.gate_offset_km - spec.birth_offset_km) * 1000.0 / params.offshore_speed_m_s
+    ke, pe = gaussian_eddy_total_energy(spec.psi0_m2_s * amplitude_factor(t_gate_s, growth_s, decay_s),
+                                        spec.radius_km * 1000.0,
+                                        params.deformation_radius_km * 1000.0, params.rho0)
+    crossing = [b for b in mine if 0.0 <= b.time_days + t_gate_s / SECONDS_PER_DAY < params.n_days
+                and b.end_days > b.time_days + t_gate_s / SECONDS_PER_DAY]
+    profile = [flux_at(d) for d in PROFILE_OFFSETS_KM]
+    lon_b = _birth_point(cape.lat, params, spec.birth_offset_km)
+    entry.update({
+        "feed_w_per_m": main.band_w_per_m,
+        "feed_ke_w_per_m": main.band_ke_w_per_m,
+        "feed_pe_w_per_m": main.band_pe_w_per_m,
+        "gate_feed_w_per_m": main.band_gate_w_per_m,
+        "offshore_feed_w_per_m": params.side * main.band_w_per_m,
+        "realized_feed_w_per_m": main.band_w_per_m,      # the same, for scripts that read it
+        "crossing_feed_w_per_m": main.crossing_w_per_m,
+        "crossing_feed_ke_w_per_m": main.crossing_ke_w_per_m,
+        "expected_crossing_feed_w_per_m": params.side * float(rate * (ke + pe)),
+        "pressure_work_w_per_m": main.pressure_work_w_per_m,
+        "pressure_work_gate_w_per_m": main.pressure_work_gate_w_per_m,
+        "advective_flux_w_per_m": main.advective_w_per_m,
+        "advective_flux_gate_w_per_m": main.advective_gate_w_per_m,
+        "n_gate_crossings_in_record": len(crossing),
+        "record_days": record_s / SECONDS_PER_DAY,
+        "cape": cape.name, "lon": lon_b, "lat": cape.lat,
+        "cape_lon": tip_lon, "cape_lat": cape.lat,
+        "alongshore_km": float(alongshore_km(cape.lat, params)),
+        "birth_offset_km": spec.birth_offset_km,
+        "gate_lon": main.gate_lon, "gate_lat_min": gate_lat[0], "gate_lat_max": gate_lat[1],
+        "gate_crossing_days": t_gate_s / SECONDS_PER_DAY,
+        "meridional_drift_at_gate_km": params.meridional_drift_m_s * t_gate_s / 1000.0,
+        "feed_profile": {
+            "offset_km": list(PROFILE_OFFSETS_KM),
+            "gate_lon": [f.gate_lon for f in profile],
+            "feed_w_per_m": [f.band_w_per_m for f in profile],
+            "gate_feed_w_per_m": [f.band_gate_w_per_m for f in profile],
+        },
+    })
+    return entry
 
 
 def _create_variables(nc: netCDF4.Dataset, params: ScenarioParams, lon: NDArray[np.float64],
@@ -363,6 +425,9 @@ def _fill_fields(params: ScenarioParams, births: list[Birth], waves: NDArray[np.
         amp = b.psi0_m2_s * amplitude_factor(age_s, growth_s, decay_s)
         for k, step in enumerate(steps):
             alive[step].append((float(clon[k]), float(clat[k]), float(amp[k]), b.radius_km * 1000.0))
+    capes = {c.name: c for c in params.capes}
+    standing = [(float(coast_lon(capes[o.cape].lat, params)), capes[o.cape].lat, o)
+                for o in params.standing]
     for start in range(0, n, _CHUNK_DAYS):
         stop = min(start + _CHUNK_DAYS, n)
         block = {k: np.empty((stop - start, ny, nx), dtype=np.float32) for k in ("u", "v", "ssh")}
@@ -386,6 +451,14 @@ def _fill_fields(params: ScenarioParams, births: list[Birth], waves: NDArray[np.
                 psi[i0:i1, j0:j1] += pe
                 u[i0:i1, j0:j1] += ue
                 v[i0:i1, j0:j1] += ve
+            for tip_lon, tip_lat, o in standing:
+                ps, us, vs = standing_oscillation(
+                    lon2, lat2, step * SECONDS_PER_DAY, tip_lon, tip_lat, o.psi0_m2_s,
+                    o.halfwidth_km * 1000.0, 2.0 * np.pi / (o.wavelength_km * 1000.0),
+                    2.0 * np.pi / (o.period_days * SECONDS_PER_DAY))
+                psi = psi + ps
+                u = u + us
+                v = v + vs
             ssh = f_over_g * psi
             if params.noise_velocity_m_s > 0:
                 u = u + rng.normal(0.0, params.noise_velocity_m_s, size=u.shape)

@@ -4,7 +4,7 @@ All the geography is invented: the coast, its capes, the island and every name b
 real place. Longitudes and latitudes put the invented coast in what is open ocean in reality.
 
 A scenario file is TOML with top-level keys for the scalar parameters and arrays of tables
-for the capes, the islands and the planted sources::
+for the capes, the islands, the planted sources and standing oscillations (optional)::
 
     name = "vell_coast"
     seed = 262
@@ -20,6 +20,11 @@ for the capes, the islands and the planted sources::
     cape = "Tasker Head"
     rate_per_year = 10.0
     psi0_m2_s = 11000.0
+
+    [[standing]]
+    name = "Tasker pulse"
+    cape = "Tasker Head"
+    psi0_m2_s = 8000.0
 
 Unknown keys are rejected with a suggestion of the nearest valid name.
 """
@@ -79,6 +84,29 @@ class SourceSpec:
     """Gaussian radius R of the eddy streamfunction psi0 exp(-r2/R2) (km)."""
     birth_offset_km: float = 30.0
     """Eddies are born this far seaward (zonally) of the cape tip (km)."""
+
+
+@dataclass(frozen=True)
+class StandingSpec:
+    """A standing oscillation at a cape: a pattern that pulsates in place and feeds nothing.
+
+    The streamfunction is :math:`\\psi = \\psi_0 e^{-y^2/W^2}\\cos(k x)\\cos(2\\pi t/T)`,
+    x and y (m) zonal and meridional distances from the cape tip, k = 2 pi / wavelength:
+    the sum of two equal waves travelling west and east, so no energy crosses any meridian.
+    """
+
+    name: str = "Unnamed oscillation"
+    """Invented name of the oscillation."""
+    cape: str = ""
+    """Name of the cape it sits at (its latitude and tip longitude)."""
+    psi0_m2_s: float = 8000.0
+    """Streamfunction amplitude (m2 s-1)."""
+    halfwidth_km: float = 40.0
+    """Along-shore (meridional) e-folding half-width W (km)."""
+    wavelength_km: float = 200.0
+    """Zonal wavelength (km)."""
+    period_days: float = 45.0
+    """Period of the pulsation (days)."""
 
 
 @dataclass(frozen=True)
@@ -198,8 +226,20 @@ class ScenarioParams:
     gravity_m_s2: float = 9.81
     """Gravitational acceleration used for ssh = f psi / g (m s-2)."""
     gate_offset_km: float = 150.0
-    """Distance from the birth point, offshore, of the gate where the planted feed is given
-    (km); the same as ``coastmon.config.SourceSettings.gate_offset_km``."""
+    """Distance offshore of the cape tip, along its parallel, of the meridian where the
+    planted feed is given (km); the same as ``coastmon.config.SourceSettings.gate_offset_km``."""
+    gate_halfwidth_km: float = 60.0
+    """Half-length of the gate around the cape latitude for the ``gate_feed_w_per_m`` part of
+    the truth (km); the same as ``coastmon.config.SourceSettings.gate_halfwidth_km``."""
+    deformation_radius_km: float = 30.0
+    """Deformation radius L_d of the invented ocean (km): the eddy potential energy of the
+    truth is rho0 psi^2 / (2 L_d^2); analyse with ``signals.deformation_radius_km`` equal to
+    it (the default estimate from latitude, 2.5 m s-1 / |f|, gives 29.9 km at 35 N)."""
+    eddy_period_days: tuple[float, float] = (10.0, 120.0)
+    """Band of periods whose energy the planted feed counts (days); the same as
+    ``coastmon.config.SignalSettings.eddy_period_days``."""
+    standing: tuple[StandingSpec, ...] = ()
+    """Standing oscillations (zero planted feed), each at a cape."""
     compress: bool = True
     """Compress the NetCDF variables: values rounded to 1e-4 (0.1 mm s-1, 0.1 mm), then zlib
     level 1; about half the size of the uncompressed file."""
@@ -212,7 +252,8 @@ class ScenarioParams:
     @classmethod
     def from_dict(cls, data: dict[str, Any], where: str = "scenario") -> ScenarioParams:
         """Build validated parameters from a nested dict (as parsed from TOML)."""
-        nested = {"capes": CapeSpec, "islands": IslandSpec, "sources": SourceSpec}
+        nested = {"capes": CapeSpec, "islands": IslandSpec, "sources": SourceSpec,
+                  "standing": StandingSpec}
         names = [f.name for f in dataclasses.fields(cls)]
         values: dict[str, Any] = {}
         for key, value in data.items():
@@ -250,7 +291,7 @@ class ScenarioParams:
         nested: dict[str, tuple[Any, ...]] = {}
         for f in dataclasses.fields(self):
             value = getattr(self, f.name)
-            if f.name in ("capes", "islands", "sources"):
+            if f.name in ("capes", "islands", "sources", "standing"):
                 nested[f.name] = value
                 if not value:
                     lines.append(f"{f.name} = []")
@@ -283,6 +324,13 @@ class ScenarioParams:
             (all(s.rate_per_year > 0 and s.psi0_m2_s > 0 and s.radius_km > 0
                  and s.birth_offset_km > 0 for s in self.sources),
              "sources need positive rate_per_year, psi0_m2_s, radius_km, birth_offset_km"),
+            (all(o.cape in cape_names and o.psi0_m2_s > 0 and o.halfwidth_km > 0
+                 and o.wavelength_km > 0 and o.period_days > 0 for o in self.standing),
+             "standing oscillations need one of the capes and positive psi0_m2_s, "
+             "halfwidth_km, wavelength_km, period_days"),
+            (self.deformation_radius_km > 0, "deformation_radius_km must be positive"),
+            (0 < self.eddy_period_days[0] < self.eddy_period_days[1],
+             "eddy_period_days must be (shortest, longest), both positive"),
             (self.birth_placement == "uniform" or all(s.cape in cape_names for s in self.sources),
              "every source must name one of the capes (or set birth_placement = \"uniform\")"),
             (self.birth_placement == "capes" or (
@@ -362,6 +410,7 @@ __all__ = [
     "IslandSpec",
     "ScenarioParams",
     "SourceSpec",
+    "StandingSpec",
     "default_params",
     "straight_coast_params",
     "western_boundary_params",

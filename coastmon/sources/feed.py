@@ -1,34 +1,46 @@
-r"""Offshore eddy-energy feed of each source, with a moving-block bootstrap interval.
+r"""Westward eddy-energy feed of each source, with a moving-block bootstrap interval.
 
-Method
-------
-A *gate* is the line through the points at ``gate_offset_km`` along the zonal rays of the
-stations within ``gate_halfwidth_km`` (along shore) of the source. On each ray, a window of
-ray points centred on the gate gives a (time, distance) field. Its 2-D wavenumber–frequency
-spectrum splits the eddy kinetic energy into the part propagating offshore (away from the
-coast along the ray: westward on an eastern-boundary coast) and the part propagating
-toward the coast. The feed per metre of depth is
+Definition
+----------
+The feed of a source is the net *westward* flux of eddy energy in the eddy band across a
+*meridional* gate in open water west of the source, per metre of depth:
 
-.. math:: F = \rho_0 \sum_{\mathrm{rays}} \left(E_w c_w - B\right) \Delta l
+.. math::
 
-with :math:`E_w` the offshore-propagating share of the window-mean EKE
-:math:`\tfrac12\langle u'^2 + v'^2\rangle`, :math:`c_w` the measured offshore propagation
-speed at the gate (energy-weighted over its rays), :math:`\Delta l` the gate length each ray
-represents, and :math:`B` the background: the median of :math:`E_w c` over the gates of
-the coast that belong to no source (the lower quartile of all gates when fewer than three
-such gates remain), i.e. the flux that is not localized at a source. Long Rossby waves and
-mesoscale eddies carry energy at about their propagation speed (group ≈ phase velocity in
-the long-wave limit; Gill 1982 §12.4), which is why :math:`E_w c_w` is an energy flux.
+    F = \rho_0 \sum_{\mathrm{rays}} \left(E^-_r c^-_r - E^+_r c^+_r\right) |\Delta y_r|
+        \; - \; B \sum_{\mathrm{rays}} |\Delta y_r| ,
 
-Where SSH is present the pressure-work flux across the gate is given as well:
-:math:`\sum \langle u_n' p'\rangle \Delta l` with :math:`p' = \rho_0 g \eta'` and
-:math:`u_n` the velocity component along the ray (offshore positive).
+* the rays are the *westward* zonal rays (``ray_dir = -1``) of the stations within
+  ``gate_halfwidth_km`` along shore of the source, each ray in the gate of at most one
+  source (the nearest; :func:`assign_rays`); eastward rays never enter a feed;
+* :math:`E^\mp_r` is the eddy-band energy per unit mass travelling west (−) or east (+),
+  averaged over the window of ray points within ``gate_window_km`` of the gate point at
+  ``gate_offset_km`` (:func:`directional_components`, :func:`eddy_energy_per_mass`);
+* :math:`c^\mp_r > 0` the speed of that energy, west or east (:func:`least_squares_speed`);
+* :math:`|\Delta y_r|` the meridional extent of the gate that ray represents
+  (:func:`meridional_extents_m`), since a zonal flux crosses only the meridional projection;
+* :math:`B` the background: the median flux density of the same estimator over the
+  westward rays of the coast that belong to no source gate.
 
-Uncertainty: moving-block bootstrap over time (Künsch 1989) with blocks at least twice the
-decorrelation time of the gate velocity; the 2.5 and 97.5 percentiles give ``feed_lo``
-and ``feed_hi``. The speed uncertainty enters by drawing the speed from a normal
-distribution with the (robust) spread of the gate's speed estimates, truncated at zero
-(energy carried toward the coast is not an offshore feed).
+Energy is kinetic plus potential where SSH is given, kinetic only otherwise (column
+``energy_kind``). Energy carried at a speed: for long Rossby waves and coherent eddies the
+group (energy) velocity equals the phase velocity (Gill 1982, §12.4); for linear Rossby
+waves of zonal wavenumber k the ratio is :math:`c_g/c_p = (1-k^2L_d^2)/(1+k^2L_d^2)`
+(from :math:`\omega = -\beta k/(k^2+L_d^{-2})`, Vallis 2017 §6.4), so the feed overstates the
+flux of short linear waves; docs/methods.md says where it holds.
+
+A gate that cannot be placed in open water west of the source is reported in
+``gate_status`` with a NaN feed: ``no_open_water_west`` (no station of the source has a
+westward ray: land to the west, as on a western-boundary coast or the east side of an
+island), ``gate_on_land`` (westward rays exist but none reaches the whole gate window at
+sea: land or the domain edge cuts them), ``no_speed`` (no measurable speed).
+
+Uncertainty: moving-block bootstrap over time (Künsch 1989). Every part of the estimate
+is a ratio of time means of per-ray series (the directional energies and the two sums of
+the least-squares speed), so each resample re-estimates the directional split and the
+speeds; a resampled speed beyond ``max_speed_cm_s`` is not measurable and that ray is left
+out of that resample. Structural spread: the feed for gate offsets ±50 km and windows of
+half and one and a half times ``gate_window_km``.
 """
 
 from __future__ import annotations
@@ -39,150 +51,240 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+import scipy.fft
 import xarray as xr
 
 from coastmon.config import Settings
-from coastmon.grid.metrics import haversine_m
 from coastmon.io.pages import release
-from coastmon.signals import centroid_speed, propagation_speed, wavenumber_frequency
+from coastmon.signals.propagation import OMEGA_EARTH, detrend_time
 
 G = 9.80665
+"""Standard gravity (m s-2)."""
+EARTH_RADIUS_M = 6.371e6
+"""Mean Earth radius (m), for meridional arcs."""
 GATE_THREADS = 4
-"""Most threads measuring the gates at once (one per core up to this)."""
+"""Most threads measuring the gate rays at once (one per core up to this)."""
+STRUCTURAL_OFFSETS_KM = (-50.0, 0.0, 50.0)
+"""Gate offsets tried for the structural spread, relative to ``gate_offset_km``."""
+STRUCTURAL_WINDOWS = (0.5, 1.0, 1.5)
+"""Window half-lengths tried for the structural spread, as factors of ``gate_window_km``."""
+PAD_FACTOR = 2
+"""Length of the zero-padded line in the directional split, as a multiple of the line."""
+N_SERIES = 6
+"""Per-ray series: energy, speed numerator and denominator, for west then east."""
 
 
-@dataclass
-class GateSet:
-    """Per-station gate quantities for every station whose ray reaches the gate."""
+# --------------------------------------------------------------------------- physics
+def potential_energy_velocity(ssh_anomaly: np.ndarray, c1_m_s: float) -> np.ndarray:
+    r"""Velocity scale whose half square is the eddy potential energy per unit mass.
 
-    station: np.ndarray          # (g,) station indices
-    gate_index: np.ndarray       # (g,) index along ray_km of the gate point
-    window: np.ndarray           # (g, w) ray indices of the window around the gate
-    eke_series: np.ndarray       # (time, g) window-mean EKE anomaly energy, m2 s-2
-    offshore_fraction: np.ndarray  # (g,) share of energy propagating offshore
-    speed: np.ndarray            # (g,) offshore propagation speed, m s-1 (+ = offshore)
-    speed_sd: np.ndarray         # (g,) spread of the speed estimate, m s-1
-    pressure_work: np.ndarray    # (g,) <u_n' p'> at the gate point, W m-2 (NaN without SSH)
-    lon: np.ndarray              # (g,) gate point longitude
-    lat: np.ndarray              # (g,) gate point latitude
+    .. math:: p = \frac{g\,\eta'}{c_1},\qquad \tfrac12 p^2 = \frac{g^2\eta'^2}{2c_1^2},
+              \qquad c_1 = |f|\,L_d .
+
+    For a 1.5-layer (reduced-gravity) ocean, the upper layer of depth H over a deep layer
+    at rest, the interface moves by :math:`h' = (g/g')\eta'` and the available potential
+    energy per unit area is :math:`\tfrac12\rho_0 g' h'^2 = \tfrac12\rho_0 g^2\eta'^2/g'`
+    (Gill 1982, §6.2; Cushman-Roisin & Beckers 2011, §12.2). Per metre of the layer's
+    depth, with :math:`g'H = c_1^2 = f^2L_d^2`, this is :math:`\tfrac12\rho_0 g^2\eta'^2/c_1^2`,
+    the potential part of the quasi-geostrophic energy
+    :math:`\tfrac12(|\nabla\psi|^2 + \psi^2/L_d^2)` with :math:`\psi = g\eta'/f`
+    (Vallis 2017, §5.4). For an eddy of radius R the ratio to the kinetic energy is about
+    :math:`R^2/L_d^2`.
+
+    Parameters
+    ----------
+    ssh_anomaly : array_like
+        Sea-surface height anomaly (m).
+    c1_m_s : float
+        First baroclinic gravity-wave speed :math:`|f| L_d` (m s-1).
+
+    Returns
+    -------
+    ndarray
+        :math:`g\eta'/c_1` (m s-1).
+    """
+    return G * np.asarray(ssh_anomaly, dtype=np.float64) / c1_m_s
 
 
-def _window(ray_km: np.ndarray, centre_km: float, half_km: float) -> np.ndarray:
-    return np.flatnonzero(np.abs(ray_km - centre_km) <= half_km + 1e-9)
+def eddy_energy_per_mass(u: np.ndarray, v: np.ndarray, p: np.ndarray | None = None
+                         ) -> np.ndarray:
+    r"""Eddy energy per unit mass, kinetic plus (where given) potential.
+
+    .. math:: e = \tfrac12\left(u'^2 + v'^2 + p^2\right)
+
+    with ``p`` from :func:`potential_energy_velocity` (omitted without SSH: kinetic only).
+    Times :math:`\rho_0` it is the energy per cubic metre of the equivalent layer
+    (J m-3), the surface values standing for the layer (equivalent-barotropic
+    assumption, Gill 1982 §6.11).
+
+    Returns
+    -------
+    ndarray
+        m2 s-2, same shape as ``u``.
+    """
+    e = np.asarray(u, dtype=np.float64) ** 2 + np.asarray(v, dtype=np.float64) ** 2
+    if p is not None:
+        e = e + np.asarray(p, dtype=np.float64) ** 2
+    return 0.5 * e
 
 
-def gate_stations(sources: pd.DataFrame, frame, settings: Settings) -> set[int]:
-    """Stations whose rays form the gate of at least one source."""
-    st = frame.stations
-    out: set[int] = set()
-    for _, row in sources.iterrows():
-        same = st["segment_id"].values == row["segment_id"]
-        near = np.abs(st["alongshore_km"].values - row["alongshore_km"])
-        out.update(np.flatnonzero(same & (near <= settings.sources.gate_halfwidth_km)).tolist())
+def directional_components(field: np.ndarray, dt_days: float, dd_km: float,
+                           band_days: tuple[float, float]
+                           ) -> dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    r"""Band-limited parts of a Hovmöller field travelling toward +d and toward −d.
+
+    The field (time, distance) is detrended in time (a least-squares line at each
+    distance), transformed in time and distance, and split in the wavenumber–frequency
+    plane: bins with frequency inside ``band_days`` (periods, days) and wavenumber
+    :math:`k > 0` travel toward +d, those with :math:`k < 0` toward −d (a component
+    :math:`\cos 2\pi(kd - ft)`, f > 0). The zero wavenumber (in-phase pulsation of the
+    whole line), the Nyquist wavenumber, and every frequency outside the band count in
+    neither. The line is padded with zeros (``PAD_FACTOR``) so that a field whose two ends
+    differ does not wrap onto itself. Each part is transformed back; its time derivative
+    is computed in spectral space (exact for a band-limited signal), its derivative along
+    the line by :func:`along_derivative`. Two-dimensional filtering of this kind is
+    the usual way of separating westward and eastward signals (Polito & Cornillon 1997,
+    JGR 102:3215). A standing wave :math:`\cos kd \cos 2\pi ft` splits into two equal
+    parts.
+
+    Parameters
+    ----------
+    field : ndarray, shape (time, distance)
+        Complete (finite) field.
+    dt_days, dd_km : float
+        Time and distance steps.
+    band_days : (float, float)
+        Shortest and longest period kept (days).
+
+    Returns
+    -------
+    dict
+        ``{"plus": (q, q_t, q_d), "minus": (q, q_t, q_d)}``: each part and its
+        derivatives in time (per second) and distance (per metre), shape of ``field``.
+    """
+    data = detrend_time(field)
+    n_t, n_d = data.shape
+    n_pad = PAD_FACTOR * n_d
+    spec = scipy.fft.fft(scipy.fft.rfft(data, axis=0), n=n_pad, axis=1)
+    freq = scipy.fft.rfftfreq(n_t, dt_days)                  # cycles per day
+    kappa = scipy.fft.fftfreq(n_pad, dd_km)                  # numpy sign: k = -kappa
+    in_band = (freq >= 1.0 / band_days[1]) & (freq <= 1.0 / band_days[0]) & (freq > 0)
+    directional = ~np.isclose(np.abs(kappa), 0.5 / dd_km) & (kappa != 0)
+    d_t = 2j * np.pi * freq[:, None] / 86400.0
+
+    def back(part: np.ndarray) -> np.ndarray:
+        return scipy.fft.irfft(scipy.fft.ifft(part, axis=1), n=n_t, axis=0)[:, :n_d]
+
+    out = {}
+    for name, side in (("plus", kappa < 0), ("minus", kappa > 0)):
+        part = np.where(in_band[:, None] & (directional & side)[None, :], spec, 0.0)
+        q = back(part)
+        out[name] = (q, back(part * d_t), along_derivative(q, dd_km * 1000.0))
     return out
 
 
-def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
-             precise: set[int] | None = None) -> GateSet:
-    """Measure the gate quantities on every ray that reaches ``gate_offset_km``.
+def along_derivative(q: np.ndarray, dd_m: float) -> np.ndarray:
+    r"""Derivative along the line (axis 1) by fourth-order centred differences.
 
-    The offshore propagation speed is the Radon-transform estimate
-    (:func:`coastmon.signals.propagation_speed`) on the rays of ``precise`` stations (the
-    source gates) and the cheaper spectral-centroid estimate elsewhere (used only for the
-    coast-wide background).
+    .. math:: q_d \approx \frac{8(q_{j+1}-q_{j-1}) - (q_{j+2}-q_{j-2})}{12\,\delta d}
+
+    (second-order one-sided and centred differences in the two points at each end). For
+    a wave of wavenumber k the ratio to the exact derivative is
+    :math:`(8\sin k\delta d - \sin 2k\delta d)/(6k\delta d)`: 0.995 for a wavelength of
+    10 steps, 0.93 for 5 (Fornberg 1988, Math. Comp. 51:699). Finite differences, unlike
+    a spectral derivative, are not thrown off where the two ends of the line differ.
     """
-    src = settings.sources
-    ray_km = np.asarray(series["ray_km"].values, dtype=float)
-    if ray_km.size < 4:
-        return _empty_gates(series)
-    dd_km = float(np.median(np.diff(ray_km)))
-    gate_i = int(np.argmin(np.abs(ray_km - src.gate_offset_km)))
-    half = max(src.gate_offset_km * 0.5, 4 * dd_km)
-    win = _window(ray_km, ray_km[gate_i], half)
-    ru = series["ray_u"].values
-    rv = series["ray_v"].values
-    rz = series["ray_zeta"].values
-    has_ssh = "ray_ssh" in series
-    rh = series["ray_ssh"].values if has_ssh else None
-    ray_lon, ray_lat = frame.ray_lon, frame.ray_lat
-    direction = frame.stations["ray_dir"].values
-
-    def one_gate(s: int):
-        """The gate quantities of station ``s``, or None where its ray has no gate."""
-        if direction[s] == 0 or not np.isfinite(ray_lon[s, win]).all():
-            return None
-        u = np.asarray(ru[:, s, win], dtype=np.float64)
-        v = np.asarray(rv[:, s, win], dtype=np.float64)
-        z = np.asarray(rz[:, s, win], dtype=np.float64)
-        if not (np.isfinite(u).mean() > 0.9 and np.isfinite(v).mean() > 0.9):
-            return None
-        u = u - np.nanmean(u, axis=0)
-        v = v - np.nanmean(v, axis=0)
-        z = z - np.nanmean(z, axis=0)
-        u, v, z = (np.nan_to_num(a) for a in (u, v, z))
-        spec_u = wavenumber_frequency(u, dt_days, dd_km)
-        spec_v = wavenumber_frequency(v, dt_days, dd_km)
-        total = spec_u.positive_energy + spec_u.negative_energy
-        total += spec_v.positive_energy + spec_v.negative_energy
-        off = spec_u.positive_energy + spec_v.positive_energy
-        fraction = float(off / total) if total > 0 else 0.0
-        km_per_day = 1000.0 / 86400.0
-        if precise is None or s in precise:
-            est = propagation_speed(z, dt_days, dd_km, direction="positive")
-            speed = float(est.speed) * km_per_day
-            sd = float(abs(est.speed_hi - est.speed_lo)) / (2 * 1.96) * km_per_day
-        else:
-            speed = float(centroid_speed(spec_v, +1)) * km_per_day
-            sd = 0.0
-        pw = np.nan
-        if has_ssh:
-            h = np.asarray(rh[:, s, gate_i], dtype=np.float64)
-            un = np.asarray(ru[:, s, gate_i], dtype=np.float64) * direction[s]
-            ok = np.isfinite(h) & np.isfinite(un)
-            if ok.sum() > 2:
-                p = settings.sources.rho0 * G * (h[ok] - h[ok].mean())
-                pw = float(np.mean((un[ok] - un[ok].mean()) * p))
-        if not abs(speed) <= settings.sources.max_speed_cm_s / 100.0:
-            # No coherent propagation on this ray (the Radon scan ran to near-vertical
-            # lines): the speed is not measurable here.
-            speed, sd = np.nan, np.nan
-        sd = sd if np.isfinite(sd) or not np.isfinite(speed) else 0.0
-        return (s, fraction, speed, sd, 0.5 * np.mean(u**2 + v**2, axis=1), pw,
-                ray_lon[s, gate_i], ray_lat[s, gate_i])
-
-    # Stations on all cores (the FFTs and the compiled Radon scan release the GIL), in
-    # blocks whose series pages are released after each, so they do not pile up in memory.
-    rows = []
-    workers = max(1, min(os.cpu_count() or 1, GATE_THREADS))
-    block = 8 * workers
-    with ThreadPoolExecutor(max_workers=workers) as pool:
-        for b0 in range(0, ru.shape[1], block):
-            rows += [r for r in pool.map(one_gate, range(b0, min(ru.shape[1], b0 + block)))
-                     if r is not None]
-            release(ru, rv, rz, rh)
-    stations, fractions, speeds, sds, eke_ts, pws, glon, glat = (
-        [r[k] for r in rows] for k in range(8))
-    if not stations:
-        return _empty_gates(series)
-    return GateSet(
-        station=np.asarray(stations),
-        gate_index=np.full(len(stations), gate_i),
-        window=np.tile(win, (len(stations), 1)),
-        eke_series=np.stack(eke_ts, axis=1),
-        offshore_fraction=np.asarray(fractions),
-        speed=np.asarray(speeds),
-        speed_sd=np.asarray(sds),
-        pressure_work=np.asarray(pws),
-        lon=np.asarray(glon),
-        lat=np.asarray(glat),
-    )
+    out = np.gradient(q, dd_m, axis=1)
+    if q.shape[1] >= 5:
+        out[:, 2:-2] = (8.0 * (q[:, 3:-1] - q[:, 1:-3]) - (q[:, 4:] - q[:, :-4])) / (12.0 * dd_m)
+    return out
 
 
-def _empty_gates(series: xr.Dataset) -> GateSet:
-    n_t = series.sizes["time"]
-    e = np.zeros(0)
-    return GateSet(np.zeros(0, int), np.zeros(0, int), np.zeros((0, 0), int),
-                   np.zeros((n_t, 0)), e, e, e, e, e, e)
+def least_squares_speed(numerator: float | np.ndarray, denominator: float | np.ndarray
+                        ) -> float | np.ndarray:
+    r"""Speed of a pattern from the least-squares fit of :math:`q_t + c\,q_d = 0`.
+
+    .. math:: c = \frac{-\langle q_t\, q_d\rangle}{\langle q_d^2\rangle}
+
+    (``numerator`` = :math:`-\sum q_t q_d`, ``denominator`` = :math:`\sum q_d^2`, summed
+    over the window and the variables). Exact for any field that translates without
+    change of shape, :math:`q(d - ct)`; for features that grow and decay as they move,
+    :math:`q = a(t)\,\phi(d - ct)`, the extra term :math:`a a' \phi\phi_d` averages to zero
+    over features at random positions, so the estimate stays unbiased (a Radon fit follows
+    the long axis of the blobs instead). In spectral terms
+    :math:`c = \sum P\,\omega\kappa / \sum P\,\kappa^2`. Common practice (the gradient
+    constraint of optical flow), no single source.
+
+    Returns
+    -------
+    float or ndarray
+        Speed toward +d (m s-1); NaN where the denominator is zero.
+    """
+    num = np.asarray(numerator, dtype=np.float64)
+    den = np.asarray(denominator, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+
+
+def meridional_extents_m(lat_deg: np.ndarray) -> np.ndarray:
+    r"""Meridional length of gate each point represents (a zonal flux crosses only it).
+
+    Points are taken in order of latitude; each represents half the meridional arc
+    :math:`a\,|\Delta\varphi|` to each neighbour, and the end points as much again on their
+    outer side (so a gate of n evenly spaced points has length n Δy). Points at the same
+    latitude share one strip instead of adding up. A single point gets NaN.
+
+    Parameters
+    ----------
+    lat_deg : array_like, shape (n,)
+
+    Returns
+    -------
+    ndarray, shape (n,)
+        |Δy| in metres, in the order of ``lat_deg``.
+    """
+    lat = np.asarray(lat_deg, dtype=np.float64)
+    if lat.size < 2:
+        return np.full(lat.size, np.nan)
+    order = np.argsort(lat, kind="stable")
+    gaps = EARTH_RADIUS_M * np.radians(np.diff(lat[order]))
+    ext = np.zeros(lat.size)
+    ext[:-1] += 0.5 * gaps
+    ext[1:] += 0.5 * gaps
+    ext[0] += 0.5 * gaps[0]
+    ext[-1] += 0.5 * gaps[-1]
+    out = np.empty(lat.size)
+    out[order] = ext
+    return out
+
+
+def block_bootstrap_means(series: np.ndarray, block: int, n_boot: int,
+                          rng: np.random.Generator) -> np.ndarray:
+    """Time means of moving-block bootstrap resamples (Künsch 1989).
+
+    Each resample joins ``ceil(n / block)`` blocks of ``block`` consecutive steps starting
+    at uniformly drawn times; its mean over all joined steps is returned.
+
+    Parameters
+    ----------
+    series : ndarray, shape (time, ...)
+    block : int
+    n_boot : int
+    rng : numpy.random.Generator
+
+    Returns
+    -------
+    ndarray, shape (n_boot, ...)
+    """
+    n_t = series.shape[0]
+    block = int(min(max(block, 1), n_t))
+    n_blocks = int(np.ceil(n_t / block))
+    csum = np.concatenate([np.zeros((1,) + series.shape[1:]), np.cumsum(series, axis=0)])
+    starts = rng.integers(0, n_t - block + 1, size=(n_boot, n_blocks))
+    out = np.empty((n_boot,) + series.shape[1:])
+    for i in range(n_boot):
+        out[i] = (csum[starts[i] + block] - csum[starts[i]]).sum(axis=0) / (n_blocks * block)
+    return out
 
 
 def decorrelation_steps(x: np.ndarray) -> float:
@@ -205,17 +307,224 @@ def decorrelation_steps(x: np.ndarray) -> float:
     return float(below[0]) if below.size else float(n)
 
 
-def _gate_lengths_m(lon: np.ndarray, lat: np.ndarray) -> np.ndarray:
-    """Length of gate represented by each point: half the distance to each neighbour."""
-    if lon.size == 1:
-        return np.array([np.nan])
-    d = haversine_m(lon[:-1], lat[:-1], lon[1:], lat[1:])
-    out = np.zeros(lon.size)
-    out[:-1] += 0.5 * d
-    out[1:] += 0.5 * d
-    out[0] += 0.5 * d[0]
-    out[-1] += 0.5 * d[-1]
+def net_flux_density(means: np.ndarray, max_speed_m_s: float) -> np.ndarray:
+    r"""Net westward energy flux density per unit mass, :math:`E^-c^- - E^+c^+`, per ray.
+
+    ``means[..., :]`` holds the time means of the six per-ray series (west energy,
+    west speed numerator, west speed denominator, then the same for east). A speed that
+    is not measurable (zero denominator, or beyond ``max_speed_m_s``) makes the ray's
+    flux NaN (left out, never clipped).
+
+    Returns
+    -------
+    ndarray
+        m3 s-3 (times ρ0: W m-2 per metre of depth), NaN where not measurable.
+    """
+    c_w = least_squares_speed(means[..., 1], means[..., 2])
+    c_e = -least_squares_speed(means[..., 4], means[..., 5])
+    ok = (np.abs(c_w) <= max_speed_m_s) & (np.abs(c_e) <= max_speed_m_s)
+    return np.where(ok, means[..., 0] * c_w - means[..., 3] * c_e, np.nan)
+
+
+# --------------------------------------------------------------------------- rays
+@dataclass
+class GateSet:
+    """Per-ray gate quantities for every westward ray that reaches the gate window at sea.
+
+    ``series`` and ``means`` hold, per ray, the energy per unit mass and the two sums of
+    the least-squares speed, for the westward then the eastward part (six series); the
+    nominal gate is configuration 0 of ``configs``.
+    """
+
+    station: np.ndarray          # (g,) station indices
+    lat: np.ndarray              # (g,) gate point latitude (the station's)
+    lon: np.ndarray              # (g,) gate point longitude (nominal gate)
+    series: np.ndarray           # (time, g, 6) nominal-gate series
+    means: np.ndarray            # (n_cfg, g, 6) time means per configuration (NaN: no gate)
+    configs: list[tuple[float, float]]  # (offset_km, window_half_km)
+    kflux: np.ndarray            # (g,) westward <u'k'> per unit mass at the gate, m3 s-3
+    pwork: np.ndarray            # (g,) westward <u'p'>/rho0, m3 s-3 (NaN without SSH)
+    ssh_var: np.ndarray          # (g,) SSH variance in the window, m2 (NaN without SSH)
+    has_ssh: bool
+
+
+def structural_configs(settings: Settings) -> list[tuple[float, float]]:
+    """Gate (offset, window half-length) pairs: the nominal one first, then the spread."""
+    src = settings.sources
+    out = [(src.gate_offset_km, src.gate_window_km)]
+    for do in STRUCTURAL_OFFSETS_KM:
+        for fw in STRUCTURAL_WINDOWS:
+            cfg = (src.gate_offset_km + do, src.gate_window_km * fw)
+            if cfg not in out and cfg[0] > 0:
+                out.append(cfg)
     return out
+
+
+def _window(ray_km: np.ndarray, offset_km: float, half_km: float) -> np.ndarray:
+    return np.flatnonzero(np.abs(ray_km - offset_km) <= half_km + 1e-9)
+
+
+def _run_containing(ok: np.ndarray, idx: np.ndarray) -> tuple[int, int] | None:
+    """The run of True in ``ok`` that contains all of ``idx`` (start, stop), or None."""
+    if idx.size == 0 or not ok[idx].all():
+        return None
+    lo, hi = int(idx[0]), int(idx[-1]) + 1
+    if not ok[lo:hi].all():
+        return None
+    while lo > 0 and ok[lo - 1]:
+        lo -= 1
+    while hi < ok.size and ok[hi]:
+        hi += 1
+    return lo, hi
+
+
+def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
+             ld_km: float) -> GateSet:
+    """Measure the gate quantities on every westward ray (see the module docstring).
+
+    On each westward ray the band-limited westward and eastward parts of u, v (and of
+    :func:`potential_energy_velocity` of SSH) are computed over the longest run of sea
+    points that holds the whole window (:func:`directional_components`), then reduced to
+    per-ray time series over the window of each gate configuration. Rays on all cores.
+    """
+    src = settings.sources
+    band = tuple(float(b) for b in settings.signals.eddy_period_days)
+    ray_km = np.asarray(series["ray_km"].values, dtype=float)
+    configs = structural_configs(settings)
+    n_t = series.sizes["time"]
+    has_ssh = "ray_ssh" in series
+    if ray_km.size < 4:
+        return _empty_gates(n_t, configs, has_ssh)
+    dd_km = float(np.median(np.diff(ray_km)))
+    windows = [_window(ray_km, o, max(w, 2 * dd_km)) for o, w in configs]
+    gate_i = int(np.argmin(np.abs(ray_km - src.gate_offset_km)))
+    ru, rv = series["ray_u"].values, series["ray_v"].values
+    rh = series["ray_ssh"].values if has_ssh else None
+    direction = frame.stations["ray_dir"].values
+    ray_lat, ray_lon = frame.ray_lat, frame.ray_lon
+    st_lat = frame.stations["lat"].values
+    omega_f = 2.0 * OMEGA_EARTH
+
+    def one_ray(s: int):
+        """Series and means of station ``s``'s westward ray, or None without a gate."""
+        if direction[s] != -1:
+            return None
+        ok = np.isfinite(ray_lon[s])
+        u = np.asarray(ru[:, s, :], dtype=np.float64)
+        v = np.asarray(rv[:, s, :], dtype=np.float64)
+        ok &= np.isfinite(u).all(axis=0) & np.isfinite(v).all(axis=0)
+        h = None
+        if has_ssh:
+            h = np.asarray(rh[:, s, :], dtype=np.float64)
+            ok &= np.isfinite(h).all(axis=0)
+        runs = [_run_containing(ok, w) for w in windows]
+        if runs[0] is None:
+            return None
+        lo = min(r[0] for r in runs if r is not None)
+        hi = max(r[1] for r in runs if r is not None)
+        fields = [u[:, lo:hi], v[:, lo:hi]]
+        if has_ssh:
+            c1 = omega_f * abs(np.sin(np.radians(st_lat[s]))) * ld_km * 1000.0
+            fields.append(potential_energy_velocity(h[:, lo:hi] - h[:, lo:hi].mean(axis=0), c1))
+        parts = [directional_components(f, dt_days, dd_km, band) for f in fields]
+        means = np.full((len(configs), N_SERIES), np.nan)
+        nominal = None
+        for k, (w, run) in enumerate(zip(windows, runs, strict=True)):
+            if run is None or run[0] < lo or run[1] > hi:
+                continue
+            sel = w - lo
+            cols = []
+            for name in ("plus", "minus"):      # +d is west along a westward ray
+                q2 = sum(p[name][0][:, sel] ** 2 for p in parts)
+                num = sum(-p[name][1][:, sel] * p[name][2][:, sel] for p in parts)
+                den = sum(p[name][2][:, sel] ** 2 for p in parts)
+                cols += [0.5 * q2.mean(axis=1), num.mean(axis=1), den.mean(axis=1)]
+            stack = np.stack(cols, axis=1)
+            means[k] = stack.mean(axis=0)
+            if k == 0:
+                nominal = stack
+        ua = u[:, windows[0]] - u[:, windows[0]].mean(axis=0)
+        va = v[:, windows[0]] - v[:, windows[0]].mean(axis=0)
+        kflux = float(np.mean(-ua * 0.5 * (ua**2 + va**2)))
+        pwork = ssh_var = np.nan
+        if has_ssh:
+            ha = h[:, windows[0]] - h[:, windows[0]].mean(axis=0)
+            pwork = float(np.mean(-ua * G * ha))
+            ssh_var = float(np.mean(ha**2))
+        return (s, ray_lat[s, gate_i], ray_lon[s, gate_i], nominal, means, kflux, pwork,
+                ssh_var)
+
+    # Rays on all cores (the FFTs release the GIL), in blocks whose series pages are
+    # released after each, so they do not pile up in memory.
+    rows = []
+    workers = max(1, min(os.cpu_count() or 1, GATE_THREADS))
+    block = 8 * workers
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        for b0 in range(0, ru.shape[1], block):
+            rows += [r for r in pool.map(one_ray, range(b0, min(ru.shape[1], b0 + block)))
+                     if r is not None]
+            release(ru, rv, rh)
+    if not rows:
+        return _empty_gates(n_t, configs, has_ssh)
+    cols = list(zip(*rows, strict=True))
+    return GateSet(
+        station=np.asarray(cols[0], dtype=int),
+        lat=np.asarray(cols[1], dtype=float),
+        lon=np.asarray(cols[2], dtype=float),
+        series=np.stack(cols[3], axis=1),
+        means=np.stack(cols[4], axis=1),
+        configs=configs,
+        kflux=np.asarray(cols[5], dtype=float),
+        pwork=np.asarray(cols[6], dtype=float),
+        ssh_var=np.asarray(cols[7], dtype=float),
+        has_ssh=has_ssh,
+    )
+
+
+def _empty_gates(n_t: int, configs: list[tuple[float, float]], has_ssh: bool) -> GateSet:
+    e = np.zeros(0)
+    return GateSet(np.zeros(0, int), e, e, np.zeros((n_t, 0, N_SERIES)),
+                   np.zeros((len(configs), 0, N_SERIES)), configs, e, e, e, has_ssh)
+
+
+# --------------------------------------------------------------------------- gates
+def assign_rays(sources: pd.DataFrame, stations: pd.DataFrame, reach_km: float
+                ) -> np.ndarray:
+    """The source whose gate each station's ray belongs to (-1: none).
+
+    A station belongs to the source owning the nearest along-shore member on its own coast
+    segment (``members_km`` when the sources table has it, else ``[alongshore_km]``),
+    provided that member is within ``reach_km``; so gates never share a ray. On a closed
+    ring (an island: ``ring_length_km`` of the stations) distances go the shorter way
+    round.
+
+    Returns
+    -------
+    ndarray of int, shape (n_stations,)
+        Row position in ``sources``, or -1.
+    """
+    seg = stations["segment_id"].to_numpy()
+    along = stations["alongshore_km"].to_numpy(float)
+    ring = stations["ring_length_km"].to_numpy(float) if "ring_length_km" in stations \
+        else np.full(len(stations), np.nan)
+    best = np.full(len(stations), np.inf)
+    owner = np.full(len(stations), -1)
+    has_members = "members_km" in sources.columns
+    for j, (_, row) in enumerate(sources.iterrows()):
+        members = row["members_km"] if has_members else None
+        if members is None or (np.ndim(members) == 0 and pd.isna(members)) \
+                or len(np.atleast_1d(members)) == 0:
+            members = [row["alongshore_km"]]
+        members = np.asarray(members, dtype=float)
+        gap = np.abs(along[:, None] - members[None, :])
+        gap = np.where(np.isfinite(ring)[:, None],
+                       np.minimum(gap, np.nan_to_num(ring)[:, None] - gap), gap)
+        dist = np.min(gap, axis=1)
+        dist = np.where(seg == row["segment_id"], dist, np.inf)
+        take = (dist <= reach_km) & (dist < best)
+        best[take] = dist[take]
+        owner[take] = j
+    return owner
 
 
 @dataclass
@@ -223,121 +532,175 @@ class FeedResult:
     table: pd.DataFrame            # one row per source: feed, interval, speed, gate info
     gates: list[dict]              # gate geometry per source (lon, lat arrays)
     bootstrap_feeds: np.ndarray    # (n_boot, n_sources) for rank stability
-    background_w_per_m2: float     # B * rho0 (W m-2 per m depth... per m of gate)
+    background_w_per_m2: float     # rho0 B: background flux per metre of gate and of depth
 
 
-def offshore_feed(
-    sources: pd.DataFrame, gates: GateSet, frame, settings: Settings
-) -> FeedResult:
-    """Feed, interval and speed for each source (see module docstring)."""
+def _median_background(flux: np.ndarray, quiet: np.ndarray) -> np.ndarray:
+    """Median over the quiet rays (last axis) of a flux density; 0 with fewer than 3."""
+    f = np.where(np.isfinite(flux[..., quiet]), flux[..., quiet], np.nan)
+    n = np.isfinite(f).sum(axis=-1)
+    med = np.zeros(f.shape[:-1])
+    enough = n >= 3
+    if enough.any():
+        med[enough] = np.nanmedian(f[enough], axis=-1)
+    return med
+
+
+def _gate_feed(flux: np.ndarray, dy: np.ndarray, bg: np.ndarray) -> np.ndarray:
+    """ρ0-free gate feed: mean measured flux density minus background, times the gate length.
+
+    Rays with no measurable speed are left out; the gate's mean over the others stands for
+    the whole gate length. NaN when no ray of the gate is measurable.
+    """
+    ok = np.isfinite(flux)
+    w = np.where(ok, dy, 0.0)
+    tot = w.sum(axis=-1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(tot > 0, np.sum(np.where(ok, flux, 0.0) * w, axis=-1)
+                        / np.where(tot > 0, tot, 1.0), np.nan)
+    return (mean - bg) * dy.sum()
+
+
+def _empty_row() -> dict:
+    return {"feed_w_per_m": np.nan, "feed_lo": np.nan, "feed_hi": np.nan,
+            "feed_struct_lo": np.nan, "feed_struct_hi": np.nan,
+            "west_speed_cm_s": np.nan, "west_speed_sd_cm_s": np.nan,
+            "east_speed_cm_s": np.nan, "west_share": np.nan, "bg_w_per_m": np.nan,
+            "kflux_w_per_m": np.nan, "pwork_w_per_m": np.nan, "pwork_rot_w_per_m": np.nan,
+            "gate_n_rays": 0, "gate_status": "", "energy_kind": ""}
+
+
+def offshore_feed(sources: pd.DataFrame, gates: GateSet, frame, settings: Settings
+                  ) -> FeedResult:
+    """Feed, intervals, speeds, cross-checks and gate status of each source."""
     src = settings.sources
     rho0 = src.rho0
+    vmax = src.max_speed_cm_s / 100.0
     n_src = len(sources)
-    n_t = gates.eke_series.shape[0]
-    rng = np.random.default_rng(src.seed)
     st = frame.stations
-    if gates.station.size == 0 or n_src == 0:
-        table = pd.DataFrame({
-            "feed_w_per_m": np.full(n_src, np.nan), "feed_lo": np.full(n_src, np.nan),
-            "feed_hi": np.full(n_src, np.nan), "west_speed_cm_s": np.full(n_src, np.nan),
-            "west_speed_sd_cm_s": np.full(n_src, np.nan),
-            "pwork_w_per_m": np.full(n_src, np.nan), "gate_n_rays": np.zeros(n_src, int),
-        })
-        return FeedResult(table, [{} for _ in range(n_src)], np.zeros((0, n_src)), float("nan"))
+    kind = "kinetic+potential" if gates.has_ssh else "kinetic only"
+    owner = assign_rays(sources, st, src.gate_halfwidth_km) if n_src else \
+        np.full(len(st), -1)
+    ray_owner = owner[gates.station] if gates.station.size else np.zeros(0, int)
+    quiet = np.flatnonzero(ray_owner < 0)
+    flux = net_flux_density(gates.means, vmax)              # (n_cfg, g)
+    bg = _median_background(flux, quiet)                    # (n_cfg,)
 
-    mean_eke = gates.eke_series.mean(axis=0)
-    flux_density = mean_eke * gates.offshore_fraction  # m2 s-2, multiplied by c later
-
-    members: list[np.ndarray] = []
-    for _, row in sources.iterrows():
-        same = st["segment_id"].values[gates.station] == row["segment_id"]
-        near = np.abs(st["alongshore_km"].values[gates.station] - row["alongshore_km"])
-        members.append(np.flatnonzero(same & (near <= src.gate_halfwidth_km)))
-
-    # Background: median offshore flux density over the gates of the coast that belong to
-    # no source (the flux not localized at a source); the lower quartile of all gates when
-    # sources leave fewer than three such gates.
-    in_any = np.zeros(gates.station.size, bool)
-    for m in members:
-        in_any[m] = True
-    quiet = np.flatnonzero(~in_any)
-    bg_q = 50.0 if quiet.size >= 3 else 25.0
-    bg_set = quiet if quiet.size >= 3 else np.arange(gates.station.size)
-    bg_speeds = gates.speed[bg_set]
-    bg_speeds = bg_speeds[np.isfinite(bg_speeds)]
-    c_bg = float(np.median(np.clip(bg_speeds, 0, None))) if bg_speeds.size else 0.0
-
-    steps = decorrelation_steps(gates.eke_series)
-    block = int(min(max(2 * np.ceil(steps), 10), max(n_t // 4, 1)))
+    rng = np.random.default_rng(src.seed)
     n_boot = src.n_bootstrap
-    n_blocks = int(np.ceil(n_t / block))
-    starts = rng.integers(0, max(n_t - block + 1, 1), size=(n_boot, n_blocks))
-    boot_idx = (starts[:, :, None] + np.arange(block)[None, None, :]).reshape(n_boot, -1)[:, :n_t]
-    boot_mean = np.stack([gates.eke_series[i].mean(axis=0) for i in boot_idx])  # (b, g)
-
-    def gate_speed(m: np.ndarray, energy: np.ndarray) -> tuple[float, float]:
-        """Energy-weighted speed over the gate's rays and a robust spread.
-
-        Rays whose speed lies more than 3 scaled median absolute deviations from the
-        gate's median are left out (a ray that caught little coherent propagation gives
-        a wild estimate), as are rays with no measurable speed; the spread is the median of
-        the remaining rays' own spreads. A gate with no measured speed takes the coast's
-        background speed.
-        """
-        speeds = gates.speed[m]
-        measured = np.isfinite(speeds)
-        if not measured.any():
-            return c_bg, 0.0
-        med = np.median(speeds[measured])
-        mad = 1.4826 * np.median(np.abs(speeds[measured] - med))
-        keep = measured & (np.abs(np.where(measured, speeds, med) - med) <= 3.0 * mad
-                           if mad > 0 else measured)
-        w = np.clip(energy[m], 0, None) * keep
-        w = w / w.sum() if w.sum() > 0 else keep / keep.sum()
-        return (float(np.sum(w[keep] * speeds[keep])),
-                float(np.median(gates.speed_sd[m][keep])))
-
-    rows, gate_geoms = [], []
-    boot_feeds = np.zeros((n_boot, n_src))
-    bg_boot = np.percentile((boot_mean * gates.offshore_fraction)[:, bg_set], bg_q, axis=1) * c_bg
-    bg = float(np.percentile(flux_density[bg_set], bg_q) * c_bg)
-    for j, m in enumerate(members):
-        if m.size == 0:
-            rows.append({"feed_w_per_m": np.nan, "feed_lo": np.nan, "feed_hi": np.nan,
-                         "west_speed_cm_s": np.nan, "west_speed_sd_cm_s": np.nan,
-                         "pwork_w_per_m": np.nan, "gate_n_rays": 0})
-            gate_geoms.append({})
+    if gates.station.size:
+        steps = decorrelation_steps(gates.series[:, :, 0] + gates.series[:, :, 3])
+        n_t = gates.series.shape[0]
+        block = int(min(max(2 * np.ceil(steps), 10), max(n_t // 4, 1)))
+        boot_means = block_bootstrap_means(gates.series, block, n_boot, rng)  # (b, g, 6)
+        boot_flux = net_flux_density(boot_means, vmax)
+        boot_bg = _median_background(boot_flux, quiet)
+    rows, geoms = [], []
+    boot_feeds = np.full((n_boot, n_src), np.nan)
+    direction = st["ray_dir"].to_numpy()
+    for j in range(n_src):
+        row = _empty_row()
+        row["energy_kind"] = kind
+        own_stations = np.flatnonzero(owner == j)
+        m = np.flatnonzero(ray_owner == j)
+        if not (direction[own_stations] == -1).any():
+            row["gate_status"] = "no_open_water_west"
+        elif m.size == 0:
+            row["gate_status"] = "gate_on_land"
+        else:
+            dy = meridional_extents_m(gates.lat[m])
+            if m.size == 1:
+                dy = np.array([settings.coast.station_spacing_km * 1000.0])
+            feeds = rho0 * np.array([_gate_feed(flux[k, m], dy, bg[k])
+                                     for k in range(len(gates.configs))])
+            row["gate_n_rays"] = int(np.isfinite(flux[0, m]).sum())
+            if not np.isfinite(feeds[0]):
+                row["gate_status"] = "no_speed"
+            else:
+                row["gate_status"] = "ok"
+                fb = rho0 * _gate_feed(boot_flux[:, m], dy, boot_bg)
+                boot_feeds[:, j] = fb
+                good = fb[np.isfinite(fb)]
+                mean = gates.means[0, m]
+                sums = mean.sum(axis=0)
+                c_w = least_squares_speed(sums[1], sums[2])
+                c_e = -least_squares_speed(sums[4], sums[5])
+                bsum = boot_means[:, m].sum(axis=1)
+                c_wb = least_squares_speed(bsum[:, 1], bsum[:, 2])
+                row.update({
+                    "feed_w_per_m": float(feeds[0]),
+                    "feed_lo": float(np.percentile(good, 2.5)) if good.size else np.nan,
+                    "feed_hi": float(np.percentile(good, 97.5)) if good.size else np.nan,
+                    "feed_struct_lo": float(np.nanmin(feeds)),
+                    "feed_struct_hi": float(np.nanmax(feeds)),
+                    "west_speed_cm_s": 100.0 * float(c_w),
+                    "west_speed_sd_cm_s": 100.0 * float(np.nanstd(c_wb, ddof=1)),
+                    "east_speed_cm_s": 100.0 * float(c_e),
+                    "west_share": float(sums[0] / (sums[0] + sums[3]))
+                    if sums[0] + sums[3] > 0 else np.nan,
+                    "bg_w_per_m": float(rho0 * bg[0] * dy.sum()),
+                    "kflux_w_per_m": float(rho0 * np.sum(gates.kflux[m] * dy)),
+                })
+                if gates.has_ssh:
+                    row["pwork_w_per_m"] = float(rho0 * np.sum(gates.pwork[m] * dy))
+                    row["pwork_rot_w_per_m"] = float(
+                        rotational_pressure_work(gates.ssh_var[m], gates.lat[m], rho0))
+            geoms.append({"lon": gates.lon[m][np.argsort(gates.lat[m])],
+                          "lat": np.sort(gates.lat[m])})
+            rows.append(row)
             continue
-        order = np.argsort(gates.lat[m])
-        m = m[order]
-        dl = _gate_lengths_m(gates.lon[m], gates.lat[m])
-        if not np.isfinite(dl).all():
-            dl = np.full(m.size, settings.coast.station_spacing_km * 1000.0)
-        c_w, c_sd = gate_speed(m, flux_density)
-        feed = rho0 * float(np.sum((flux_density[m] * c_w - bg) * dl))
-        c_draw = np.clip(c_w + c_sd * rng.standard_normal(n_boot), 0.0, None)
-        fb = rho0 * np.sum((boot_mean[:, m] * gates.offshore_fraction[m] * c_draw[:, None]
-                            - bg_boot[:, None]) * dl[None, :], axis=1)
-        boot_feeds[:, j] = fb
-        lo, hi = np.percentile(fb, [2.5, 97.5])
-        direction = st["ray_dir"].values[gates.station[m]]
-        west = -np.sign(np.median(direction)) * c_w
-        pw = gates.pressure_work[m]
-        pwork = float(np.sum(pw * dl)) if np.isfinite(pw).all() else np.nan
-        rows.append({"feed_w_per_m": feed, "feed_lo": float(lo), "feed_hi": float(hi),
-                     "west_speed_cm_s": 100.0 * west, "west_speed_sd_cm_s": 100.0 * c_sd,
-                     "pwork_w_per_m": pwork, "gate_n_rays": int(m.size)})
-        gate_geoms.append({"lon": gates.lon[m], "lat": gates.lat[m]})
-    return FeedResult(pd.DataFrame(rows), gate_geoms, boot_feeds, rho0 * bg)
+        rows.append(row)
+        geoms.append({})
+    table = pd.DataFrame(rows, columns=list(_empty_row())) if rows else \
+        pd.DataFrame({k: pd.Series(dtype=type(v) if not isinstance(v, str) else object)
+                      for k, v in _empty_row().items()})
+    return FeedResult(table, geoms, boot_feeds, float(rho0 * bg[0]) if bg.size else np.nan)
+
+
+def rotational_pressure_work(ssh_var_m2: np.ndarray, lat_deg: np.ndarray, rho0: float
+                             ) -> float:
+    r"""Westward geostrophic pressure work across a gate that is purely rotational.
+
+    With geostrophic :math:`u' = -(g/f)\,\partial_y\eta'` and :math:`p' = \rho_0 g\eta'`,
+
+    .. math:: -\langle u'p'\rangle = \frac{\rho_0 g^2}{2f}\,\partial_y\langle\eta'^2\rangle,
+              \qquad
+              -\int \langle u'p'\rangle\,dy = \frac{\rho_0 g^2}{2f}
+              \left(\langle\eta'^2\rangle_N - \langle\eta'^2\rangle_S\right),
+
+    a flux that only circulates around the maxima of SSH variance (it has no divergence
+    on the f-plane; Marshall & Shutts 1981, JPO 11:1677) yet does not vanish across an
+    open gate. Its size beside ``pwork_w_per_m`` shows how much of the measured pressure
+    work is rotational.
+
+    Parameters
+    ----------
+    ssh_var_m2, lat_deg : array_like, shape (n,)
+        SSH variance and latitude of the gate's rays.
+    rho0 : float
+
+    Returns
+    -------
+    float
+        W per metre of depth (NaN with fewer than two rays).
+    """
+    lat = np.asarray(lat_deg, dtype=float)
+    var = np.asarray(ssh_var_m2, dtype=float)
+    if lat.size < 2:
+        return float("nan")
+    i_s, i_n = int(np.argmin(lat)), int(np.argmax(lat))
+    f = 2.0 * OMEGA_EARTH * np.sin(np.radians(0.5 * (lat[i_s] + lat[i_n])))
+    return float(rho0 * G**2 / (2.0 * f) * (var[i_n] - var[i_s]))
 
 
 def rank_sources(sources: pd.DataFrame, feed: FeedResult
                  ) -> tuple[pd.DataFrame, pd.DataFrame, np.ndarray]:
     """Join feeds to the sources, rank by feed (1 = largest), and measure rank stability.
 
-    Rank stability of a source is the fraction of bootstrap resamples in which it keeps its
-    rank (a short record gives unstable ranks). Returns the ranked table, the gates (in rank
-    order) and the bootstrap feeds with columns in rank order, shape (n_boot, n_sources).
+    Sources without a feed (NaN: no gate west of them) rank last. Rank stability of a
+    source is the fraction of bootstrap resamples in which it keeps its rank (a short
+    record gives unstable ranks). Returns the ranked table, the gates (in rank order) and
+    the bootstrap feeds with columns in rank order, shape (n_boot, n_sources).
     """
     table = pd.concat([sources.reset_index(drop=True), feed.table.reset_index(drop=True)], axis=1)
     order = np.argsort(-np.nan_to_num(table["feed_w_per_m"].values, nan=-np.inf), kind="stable")

@@ -11,8 +11,15 @@ Method
   stations' worth of latitude, so broad currents do not count as jets.
 * The plume axis of a source follows the largest |anomaly| within a band of stations
   around the source's own ray, stepping offshore point by point and moving at most one
-  station per step; it stops where |anomaly| falls below the coast-wide median of
-  |anomaly| (the background). Its length is the plume's zonal extent.
+  station per step. Beyond the near-shore band (``nearshore_km``, where the source and the
+  coastal current are), it ends at the first point where the plume has ended by either of
+  two tests: |anomaly| is no longer significant — below 1.96 standard errors of the time
+  mean, the standard error taken with the effective sample size of a lag-1
+  autoregressive series, n' = n (1 - r1)/(1 + r1) (von Storch & Zwiers 1999, §6.6) — or
+  it has decayed below e^-1 of the largest |anomaly| met so far on the axis (the e-folding
+  length of a plume decaying away from its source: a steady beta plume damped at rate
+  r decays westward as exp(-x r / c) for long Rossby speed c; Davey & Killworth 1989).
+  Its length is the plume's zonal extent.
 * Jet spacing: at every ray distance beyond the gate, the meridional profile of the
   anomaly (against station latitude, converted to km) is Fourier-analysed; the dominant
   wavelength, averaged over distances, is the spacing between jets of the same sign.
@@ -29,24 +36,58 @@ from coastmon.grid.metrics import haversine_m
 from coastmon.io.pages import release
 
 
-def time_nanmean(values: np.ndarray, block: int = 256) -> np.ndarray:
-    """Mean over the first (time) axis ignoring NaN, in float64, a block of steps at a time
-    (memory does not grow with the record); NaN where no step is finite."""
-    total = np.zeros(values.shape[1:])
-    count = np.zeros(values.shape[1:])
+def time_mean_error(values: np.ndarray, block: int = 256) -> tuple[np.ndarray, np.ndarray]:
+    r"""Time mean and its standard error over the first axis, a block of steps at a time.
+
+    .. math:: \mathrm{SE} = \frac{s}{\sqrt{n'}},\qquad n' = n\,\frac{1-r_1}{1+r_1}
+
+    with s the standard deviation and r_1 the lag-1 autocorrelation (clipped to [0, 0.99])
+    of each point's series: the effective sample size of a lag-1 autoregressive process
+    (von Storch & Zwiers 1999, §6.6). Steps with NaN are left out of the sums (and the
+    lagged products that touch them). NaN where fewer than three steps are finite.
+    """
+    shape = values.shape[1:]
+    n = np.zeros(shape)
+    s1 = np.zeros(shape)
+    s2 = np.zeros(shape)
+    lag = np.zeros(shape)
+    n_lag = np.zeros(shape)
+    s_lag_a = np.zeros(shape)
+    s_lag_b = np.zeros(shape)
+    prev = None
     for start in range(0, values.shape[0], block):
         part = np.asarray(values[start:start + block], dtype=np.float64)
-        ok = np.isfinite(part)
-        total += np.where(ok, part, 0.0).sum(axis=0)
-        count += ok.sum(axis=0)
         release(values)
+        if prev is not None:
+            part_l = np.concatenate([prev[None], part], axis=0)
+        else:
+            part_l = part
+        ok = np.isfinite(part)
+        x = np.where(ok, part, 0.0)
+        n += ok.sum(axis=0)
+        s1 += x.sum(axis=0)
+        s2 += (x * x).sum(axis=0)
+        a, b = part_l[:-1], part_l[1:]
+        both = np.isfinite(a) & np.isfinite(b)
+        a0, b0 = np.where(both, a, 0.0), np.where(both, b, 0.0)
+        lag += (a0 * b0).sum(axis=0)
+        s_lag_a += a0.sum(axis=0)
+        s_lag_b += b0.sum(axis=0)
+        n_lag += both.sum(axis=0)
+        prev = part[-1]
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(count > 0, total / count, np.nan)
+        mean = s1 / n
+        var = np.maximum(s2 / n - mean**2, 0.0)
+        cov = lag / n_lag - (s_lag_a / n_lag) * (s_lag_b / n_lag)
+        r1 = np.clip(np.where(var > 0, cov / var, 0.0), 0.0, 0.99)
+        n_eff = np.maximum(n * (1.0 - r1) / (1.0 + r1), 1.0)
+        se = np.sqrt(var * n / np.maximum(n - 1, 1) / n_eff)
+    few = n < 3
+    return np.where(few, np.nan, mean), np.where(few, np.nan, se)
 
 
-def mean_zonal_anomaly(series: xr.Dataset, frame, smooth_stations: float = 4.0) -> np.ndarray:
-    """Time-mean zonal velocity on the rays minus its along-shore running mean (m s-1)."""
-    ubar = time_nanmean(series["ray_u"].values)
+def along_shore_anomaly(ubar: np.ndarray, frame, smooth_stations: float = 4.0) -> np.ndarray:
+    """A (station, ray) field minus its along-shore Gaussian running mean, per segment."""
     out = np.full_like(ubar, np.nan)
     for _, idx in frame.stations.groupby("segment_id").indices.items():
         idx = np.asarray(idx)
@@ -61,13 +102,29 @@ def mean_zonal_anomaly(series: xr.Dataset, frame, smooth_stations: float = 4.0) 
     return out
 
 
+PLUME_Z = 1.96
+"""Standard errors of the time mean below which the plume's anomaly is not significant
+(two-sided 95 %)."""
+PLUME_DECAY = float(np.exp(-1.0))
+"""Fraction of the axis's largest anomaly below which the plume has decayed."""
+
+
 def trace_plume(anomaly: np.ndarray, frame, station: int, ray_km: np.ndarray,
-                background: float, band: int = 3) -> dict:
-    """Follow the strongest mean zonal-velocity anomaly offshore from one station's ray."""
+                error: np.ndarray | float, band: int = 3, start_km: float = 0.0) -> dict:
+    """Follow the strongest mean zonal-velocity anomaly offshore from one station's ray.
+
+    ``error`` is the standard error of the anomaly, (station, ray) or one number. Points
+    closer to the coast than ``start_km`` (the near-shore band where the source and the
+    coastal current are) are kept as they are; beyond, the axis ends before the first
+    point where |anomaly| < ``PLUME_Z`` x error or < ``PLUME_DECAY`` x the largest
+    |anomaly| met so far beyond ``start_km``.
+    """
     seg = frame.stations["segment_id"].values
     same = np.flatnonzero(seg == seg[station])
     pos = int(np.flatnonzero(same == station)[0]) if station in same else 0
+    err = np.broadcast_to(np.asarray(error, dtype=float), anomaly.shape)
     lons, lats, amps = [], [], []
+    peak = 0.0
     for r in range(ray_km.size):
         lo, hi = max(pos - band if r == 0 else pos - 1, 0), min(pos + (band if r == 0 else 1) + 1, same.size)
         cand = same[lo:hi]
@@ -75,10 +132,12 @@ def trace_plume(anomaly: np.ndarray, frame, station: int, ray_km: np.ndarray,
         if not np.isfinite(vals).any():
             break
         k = int(np.nanargmax(vals))
-        if vals[k] < background:
-            break
+        s = same[lo + k]
+        if ray_km[r] >= start_km:
+            if not vals[k] >= PLUME_Z * err[s, r] or vals[k] < PLUME_DECAY * peak:
+                break
+            peak = max(peak, float(vals[k]))
         pos = lo + k
-        s = same[pos]
         lons.append(frame.ray_lon[s, r])
         lats.append(frame.ray_lat[s, r])
         amps.append(float(anomaly[s, r]))
@@ -126,12 +185,13 @@ def jet_spacing_km(anomaly: np.ndarray, frame, ray_km: np.ndarray, min_km: float
     return float(np.median(spacing)) if spacing else float("nan")
 
 
-def plume_axes(series: xr.Dataset, frame, sources: pd.DataFrame, gate_offset_km: float
-               ) -> tuple[list[dict], float]:
-    """Plume axis for every source (in rank order) and the coast-wide jet spacing (km)."""
+def plume_axes(series: xr.Dataset, frame, sources: pd.DataFrame, gate_offset_km: float,
+               start_km: float = 0.0) -> tuple[list[dict], float]:
+    """Plume axis for every source (in rank order) and the coast-wide jet spacing (km);
+    the axes' end tests apply from ``start_km`` offshore (see :func:`trace_plume`)."""
     ray_km = np.asarray(series["ray_km"].values, dtype=float)
-    anomaly = mean_zonal_anomaly(series, frame)
-    background = float(np.nanmedian(np.abs(anomaly))) if np.isfinite(anomaly).any() else np.inf
-    axes = [trace_plume(anomaly, frame, int(row["station"]), ray_km, background)
+    ubar, error = time_mean_error(series["ray_u"].values)
+    anomaly = along_shore_anomaly(ubar, frame)
+    axes = [trace_plume(anomaly, frame, int(row["station"]), ray_km, error, start_km=start_km)
             for _, row in sources.iterrows()]
     return axes, jet_spacing_km(anomaly, frame, ray_km, gate_offset_km)

@@ -139,7 +139,10 @@ def _dual_row(u, v, gx, gy, j, zrow, wrow):  # pragma: no cover - compiled
             vx = vx - mv * sgx
             vy = vy - mv * sgy
             zrow[t, i + 1] = z
-            wrow[t, i + 1] = (ux - vy) ** 2 + (vx + uy) ** 2 - z**2
+            # Spherical metric terms: -sgy = tan(lat)/a (operators.strain).
+            sn = (ux - vy) + mv * sgy
+            ss = (vx + uy) - mu * sgy
+            wrow[t, i + 1] = sn**2 + ss**2 - z**2
 
 
 @njit(nogil=True)
@@ -174,7 +177,11 @@ def _strain_row(u, v, gx, gy, j, srow):  # pragma: no cover - compiled
             uy = ((gy[0, j, i] * d0 + gy[1, j, i] * d1) + gy[2, j, i] * d2) + gy[3, j, i] * d3
             vx = ((gx[0, j, i] * e0 + gx[1, j, i] * e1) + gx[2, j, i] * e2) + gx[3, j, i] * e3
             vy = ((gy[0, j, i] * e0 + gy[1, j, i] * e1) + gy[2, j, i] * e2) + gy[3, j, i] * e3
-            srow[t, i + 1] = (ux - vy) ** 2 + (vx + uy) ** 2
+            # Spherical metric terms: -sgy = tan(lat)/a (operators.strain).
+            sgy = ((gy[0, j, i] + gy[1, j, i]) + gy[2, j, i]) + gy[3, j, i]
+            sn = (ux - vy) + mv * sgy
+            ss = (vx + uy) - mu * sgy
+            srow[t, i + 1] = sn**2 + ss**2
 
 
 @njit(nogil=True)
@@ -491,7 +498,9 @@ def chunk_fields(
     Green's-theorem derivatives with the cell mean removed,
     :math:`\partial q/\partial x = \sum_k g^x_k (q_k - \bar q)` (as
     :func:`coastmon.grid.operators.gradient_dual`), in
-    :math:`W = (u_x - v_y)^2 + (v_x + u_y)^2 - \zeta^2` (Okubo 1970; Weiss 1991).
+    :math:`W = (u_x - v_y - v\tan\varphi/a)^2 + (v_x + u_y + u\tan\varphi/a)^2 - \zeta^2`
+    (Okubo 1970; Weiss 1991; spherical metric terms as in
+    :func:`coastmon.grid.operators.strain`).
     Point values are the mean of the valid dual cells around the point, exactly as
     :func:`coastmon.grid.operators.vorticity` and ``okubo_weiss``. With ``zeta`` given
     (e.g. the native C-grid vorticity of :mod:`coastmon.io.sgrid`), W is the mean
