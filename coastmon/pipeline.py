@@ -46,6 +46,7 @@ from coastmon.geometry import (
     extract_coastline,
     find_capes,
 )
+from coastmon.geometry.capes import apply_catalogue, grid_spacing_km, read_cape_catalogue
 from coastmon.grid.metrics import GridMetrics, beta_parameter
 from coastmon.io.atomic import atomic_write_text, output_error, staging_dir
 from coastmon.io.gis import write_layers
@@ -115,8 +116,18 @@ def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
         coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
         capes = find_capes(coastline, settings.coast)
         frame = build_frame(coastline, lon, lat, mask, settings.coast)
-    return Prepared(ds, metrics, coastline, capes, frame, deformation_radius_km(settings, frame),
-                    [Path(p) for p in inputs])
+    ld_km = deformation_radius_km(settings, frame)
+    capes = catalogue_names(capes, settings, lon, lat, ld_km)
+    return Prepared(ds, metrics, coastline, capes, frame, ld_km, [Path(p) for p in inputs])
+
+
+def catalogue_names(capes: pd.DataFrame, settings: Settings, lon: np.ndarray, lat: np.ndarray,
+                    ld_km: float) -> pd.DataFrame:
+    """Capes renamed after the cape catalogue ``coast.cape_catalogue``, when one is given."""
+    if not settings.coast.cape_catalogue or len(capes) == 0:
+        return capes
+    return apply_catalogue(capes, read_cape_catalogue(settings.coast.cape_catalogue),
+                           grid_spacing_km(lon, lat), ld_km)
 
 
 # --------------------------------------------------------------------------- small data
@@ -490,6 +501,11 @@ def coast(input_path: str | Path, out: str | Path, settings: Settings) -> CoastR
     with geometry_of(input_path):
         coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
         capes = find_capes(coastline, settings.coast)
+    if len(capes):
+        ld_km = (float(settings.signals.deformation_radius_km)
+                 if settings.signals.deformation_radius_km is not None
+                 else float(default_deformation_radius_km(float(np.median(capes["lat"])))))
+        capes = catalogue_names(capes, settings, lon, lat, ld_km)
     layers = {"coastline": coastline_layer(coastline), "capes": capes_layer(capes)}
     with staging_dir(out) as stage:
         formats = tuple(f for f in settings.output.gis if f != "csv") or ("gpkg",)
