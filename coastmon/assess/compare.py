@@ -638,7 +638,7 @@ class CompareResult:
         runs = ", ".join(f"{r['label']} = {r['dir']}" for r in d["runs"])
         lines = [f"coastmon: compared {len(d['runs'])} runs ({runs}); A is the reference",
                  f"  {len(d['places'])} place(s): capes matched within "
-                 f"min(max(0.5 x cape scale, {d['tolerances']['grid_km']:.0f} km x 2), "
+                 f"min(max(0.5 x cape scale, 2 x {d['tolerances']['grid_km']:.0f} km), "
                  f"2 x {d['tolerances']['deformation_radius_km']:.0f} km), unanchored sources "
                  f"within {d['tolerances']['source_km']:.0f} km"]
         for pair in d["pairs"]:
@@ -833,7 +833,7 @@ def feed_by_place_figure(path: str | os.PathLike[str], places: list[Place],
     """Feed at each place (rows) in each run (markers), log axis, verdicts at the right."""
     shown = [p for p in places if p.source_rows]
     n = max(len(shown), 1)
-    fig = _fig._figure(7.2, 1.3 + 0.42 * n + 0.12 * len(runs))
+    fig = _fig._figure(7.6, 1.3 + (0.3 + 0.16 * len(runs)) * n)
     ax = fig.add_subplot()
     ax.set_xlabel("westward eddy energy feed (W m⁻¹), log scale")
     if not shown:
@@ -847,11 +847,14 @@ def feed_by_place_figure(path: str | os.PathLike[str], places: list[Place],
     his = np.array([s["feed_hi"] for row in states for s in row], float)
     pos = np.concatenate([vals, los, his])
     pos = pos[np.isfinite(pos) & (pos > 0)]
-    lo_lim = pos.min() / 3.0 if pos.size else 1.0
+    missing = any(s["n_sources"] == 0 or not (s["feed_w_per_m"] > 0)
+                  for row in states for s in row)
+    lo_lim = (pos.min() / (3.0 if missing else 1.6)) if pos.size else 1.0
     hi_lim = pos.max() * 1.6 if pos.size else 10.0
     none_x = lo_lim * 1.25
     ax.set_xscale("log")
-    ax.axvspan(lo_lim, lo_lim * 1.6, color="0.95", zorder=0)
+    if missing:
+        ax.axvspan(lo_lim, lo_lim * 1.6, color="0.95", zorder=0)
     offsets = (np.arange(len(runs)) - (len(runs) - 1) / 2.0) * min(0.7 / len(runs), 0.2)
     for y, row in enumerate(states):
         for r, s in enumerate(row):
@@ -872,17 +875,22 @@ def feed_by_place_figure(path: str | os.PathLike[str], places: list[Place],
                     zorder=3)
     labels = []
     for p, row in zip(shown, states, strict=True):
-        ids = {s["cape_id"] for s in row if s["cape_id"] and s["cape_id"] != p.place_id}
-        labels.append(p.place_id + (f" ({', '.join(sorted(ids))})" if ids else ""))
-    ax.set_yticks(range(len(shown)), labels)
+        ids = sorted({s["cape_id"] for s in row if s["cape_id"] and s["cape_id"] != p.place_id})
+        labels.append(p.place_id + ("\n(also " + ", ".join(ids) + ")" if ids else ""))
+    ax.set_yticks(range(len(shown)), labels, fontsize=7.5)
     ax.set_ylim(len(shown) - 0.5, -0.5)
     ax.set_xlim(lo_lim, hi_lim)
-    ax.text(none_x, -0.5, "none", ha="center", va="bottom", fontsize=7, color="0.35")
+    if missing:
+        ax.text(none_x, -0.5, "none", ha="center", va="bottom", fontsize=7, color="0.35")
     for y, p in enumerate(shown):
-        words = changes[changes["place_id"] == p.place_id]
-        text = "; ".join(f"{w['run']}: {w['verdict']}" for _, w in words.iterrows())
-        ax.annotate(text, (1.01, y), xycoords=("axes fraction", "data"), va="center",
-                    fontsize=7, color="0.2", annotation_clip=False)
+        for r in range(1, len(runs)):
+            w = changes[(changes["place_id"] == p.place_id) & (changes["run"] == runs[r].label)]
+            if len(w):
+                word = str(w["verdict"].iloc[0])
+                ax.annotate(f"{runs[r].label}: {word}", (1.02, y + offsets[r]),
+                            xycoords=("axes fraction", "data"), va="center", fontsize=7,
+                            color=VERDICT_COLOURS[word] if word != "no significant change"
+                            else "0.35", annotation_clip=False)
     ax.grid(axis="x", color="0.92", linewidth=0.6, which="both")
     ax.set_axisbelow(True)
     handles = [Line2D([], [], color=_run_style(r)[0], marker=_run_style(r)[1], linestyle="none",
