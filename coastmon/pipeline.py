@@ -374,7 +374,8 @@ def write_outputs(stage: Path, prep: Prepared, products: Products, settings: Set
     write_layers(layers, stage, settings.output.gis)
     ds = prep.ds
     t0, t1 = ds["time"].values[0], ds["time"].values[-1]
-    write_results(stage / "results.nc", products.stats, products.profiles, products.spectra,
+    write_results(stage / "results.nc", products.stats, products.profiles,
+                  with_feed_bootstrap(products.spectra, products.bootstrap_feeds),
                   attrs={"velocity_kind": ds.attrs.get("velocity_kind", "velocity"),
                          "depth_m": ds.attrs.get("depth_m"),
                          "deformation_radius_km": prep.ld_km,
@@ -385,6 +386,19 @@ def write_outputs(stage: Path, prep: Prepared, products: Products, settings: Set
         write_figures_and_report(stage, prep, products, layers, settings, provenance,
                                  series=series)
     atomic_write_text(stage / "run.json", json.dumps(provenance, indent=2, default=str))
+
+
+def with_feed_bootstrap(spectra: xr.Dataset, boot: np.ndarray) -> xr.Dataset:
+    """The spectra plus ``feed_bootstrap(source, bootstrap)``: each source's bootstrap feeds
+    (columns of ``boot`` in rank order), kept so that ``coastmon compare`` can form ratio
+    intervals from the resamples themselves."""
+    boot = np.asarray(boot, dtype=float)
+    if "source" not in spectra.dims or boot.ndim != 2 or boot.shape[0] == 0 \
+            or boot.shape[1] != spectra.sizes["source"]:
+        return spectra
+    return spectra.assign(feed_bootstrap=(("source", "bootstrap"), boot.T, {
+        "long_name": "westward eddy energy feed of each bootstrap resample of the record",
+        "units": "W m-1"}))
 
 
 def check_out_dir(out: Path, inputs: list[Path]) -> Path:

@@ -15,11 +15,13 @@ import numpy as np
 import pandas as pd
 import pyogrio
 import pytest
+import xarray as xr
 from scipy.stats import spearmanr
 
 from coastmon import pipeline
 from coastmon.assess.compare import (
     VERDICT_COLOURS,
+    bootstrap_ratio_interval,
     compare_folders,
     feed_ratio,
     rank_agreement,
@@ -104,6 +106,22 @@ def test_ratio_intervals_are_never_negative():
     r, lo, hi = feed_ratio([0.0, -5.0], [1.0, 1.0], [2.0, 2.0], [3.0, 3.0], [2.0, 2.0],
                            [4.0, 4.0])
     assert np.isnan(r).all() and np.isnan(lo).all()  # check: a ratio to zero is undefined
+
+
+def test_bootstrap_ratio_interval_matches_log_normal_quantiles():
+    """Resamples from log-normal feeds: log(B/A) is normal with variance sa^2 + sb^2."""
+    rng = np.random.default_rng(11)
+    sa, sb = 0.25, 0.4
+    a = 2000.0 * np.exp(sa * rng.standard_normal(1500))
+    b = 1000.0 * np.exp(sb * rng.standard_normal(1500))
+    lo, hi = bootstrap_ratio_interval(a, b)
+    s = math.hypot(sa, sb)
+    # check: textbook property of the log-normal (the log of a ratio of independent
+    # log-normals is normal, variances add)
+    assert lo == pytest.approx(0.5 * math.exp(-Z95 * s), rel=0.04)
+    assert hi == pytest.approx(0.5 * math.exp(Z95 * s), rel=0.04)
+    b[3] = -1.0
+    assert bootstrap_ratio_interval(a, b) is None  # check: a ratio needs positive resamples
 
 
 def test_verdict_words_follow_the_rule():
@@ -196,6 +214,7 @@ def test_switched_off_cape_vanishes_and_the_other_does_not_change(experiments, t
     assert list(off["verdict"]) == ["vanished"]
     assert list(off["present_in"]) == ["A only"]
     assert list(on["verdict"]) == ["no significant change"]  # check: planted truth (same source)
+    assert list(on["ratio_method"]) == ["bootstrap"]  # the runs stored their resamples
     # the same headland on the same grid has the same id in both runs
     assert list(on["cape_id_a"]) == list(on["cape_id_run"]) and on["cape_id_a"].iloc[0]
     assert (ch["ratio_lo"].dropna() >= 0).all()
@@ -220,6 +239,10 @@ def test_self_compare_changes_nothing(experiments, tmp_path):
     assert (with_source["feed_ratio"] == 1.0).all()  # check: identity, exactly
     assert (with_source["verdict"] == "no significant change").all()  # check: identity
     assert ((with_source["ratio_lo"] <= 1.0) & (with_source["ratio_hi"] >= 1.0)).all()
+    with xr.open_dataset(experiments["a"] / "results.nc") as ds:
+        # check: the settings asked for 40 resamples per source
+        assert ds["feed_bootstrap"].sizes["bootstrap"] == 40
+        assert ds["feed_bootstrap"].sizes["source"] == len(with_source)
 
 
 def test_many_runs_with_a_cape_smoothed_away(experiments, tmp_path, capsys):

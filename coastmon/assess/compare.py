@@ -106,6 +106,8 @@ class RunFolder:
     """Median grid spacing of the run's grid (km), from ``results.nc``."""
     ld_km: float = float("nan")
     """Deformation radius the run used (km; ``results.nc`` attribute, or estimated)."""
+    bootstrap: dict[int, np.ndarray] = field(default_factory=dict)
+    """Source rank -> its bootstrap feeds (``feed_bootstrap`` of ``results.nc``, if stored)."""
 
 
 def _not_a_run(path: Path, what: str) -> InputError:
@@ -165,8 +167,13 @@ def read_run_folder(path: str | os.PathLike[str], label: str = "A") -> RunFolder
     if not (np.isfinite(ld_km) and ld_km > 0):
         ld_km = float(default_deformation_radius_km(
             float(np.nanmedian(np.asarray(profiles["lat"].values, float)))))
+    boot: dict[int, np.ndarray] = {}
+    spectra = results.spectra
+    if "feed_bootstrap" in spectra and "source" in spectra.coords:
+        values = np.asarray(spectra["feed_bootstrap"].transpose("source", ...).values, float)
+        boot = {int(r): values[k] for k, r in enumerate(spectra["source"].values)}
     return RunFolder(path, sources.sort_values("rank").reset_index(drop=True), capes,
-                     profiles, attrs, label, grid_km, ld_km)
+                     profiles, attrs, label, grid_km, ld_km, boot)
 
 
 def _float_attr(attrs: dict[str, Any], key: str) -> float:
@@ -184,8 +191,9 @@ def rename_by_catalogue(run: RunFolder, catalogue: pd.DataFrame, grid_km: float,
                    strict=True))
     sources = run.sources.copy()
     sources["cape_id"] = [new.get(c, "") if c else "" for c in sources["cape_id"].astype(str)]
-    return RunFolder(run.path, sources, capes, run.profiles, run.attrs, run.label, run.grid_km,
-                     run.ld_km)
+    return RunFolder(path=run.path, sources=sources, capes=capes, profiles=run.profiles,
+                     attrs=run.attrs, label=run.label, grid_km=run.grid_km, ld_km=run.ld_km,
+                     bootstrap=run.bootstrap)
 
 
 # --------------------------------------------------------------------------- frames
@@ -257,6 +265,27 @@ def feed_ratio(feed_a: np.ndarray, lo_a: np.ndarray, hi_a: np.ndarray, feed_b: n
         lo = ratio * np.exp(-np.sqrt(dlb**2 + dha**2))
         hi = ratio * np.exp(np.sqrt(dhb**2 + dla**2))
     return ratio, np.where(usable, lo, np.nan), np.where(usable, hi, np.nan)
+
+
+def bootstrap_ratio_interval(boot_a: np.ndarray, boot_b: np.ndarray
+                             ) -> tuple[float, float] | None:
+    r"""95 % percentile interval of B/A from the two runs' bootstrap feeds.
+
+    The runs are independent, so every resample of B is paired with every resample of A
+    (the two-sample bootstrap): the interval is the 2.5 and 97.5 percentiles of
+    :math:`F^*_{B,i} / F^*_{A,j}` over all pairs (Efron & Tibshirani 1993, *An Introduction
+    to the Bootstrap*, ch. 13). None when a sample is missing or not positive (the ratio's
+    distribution is then not defined); :func:`feed_ratio` is used instead.
+    """
+    a = np.asarray(boot_a, float).ravel()
+    b = np.asarray(boot_b, float).ravel()
+    if a.size < 20 or b.size < 20 or not (np.isfinite(a).all() and np.isfinite(b).all()):
+        return None
+    if a.min() <= 0 or b.min() <= 0:
+        return None
+    ratios = (b[:, None] / a[None, :]).ravel()
+    lo, hi = np.percentile(ratios, [2.5, 97.5])
+    return float(lo), float(hi)
 
 
 def verdict(in_a: bool, in_b: bool, lo_a: float, lo_b: float, ratio: float, ratio_lo: float,
@@ -507,7 +536,10 @@ def _state(place: Place, r: int, run: RunFolder) -> dict[str, Any]:
     rows = place.source_rows.get(r, [])
     src = run.sources.iloc[rows]
     feed, lo, hi = combined_feed(src["feed_w_per_m"], src["feed_lo"], src["feed_hi"])
-    return {
+    samples = [run.bootstrap.get(int(k)) for k in src["rank"]]
+    boot = (np.sum(samples, axis=0) if samples and all(
+        s is not None and s.shape == samples[0].shape for s in samples) else None)
+    return {"bootstrap": boot,
         "cape_id": str(run.capes["cape_id"].iloc[j]) if j is not None else "",
         "cape_present": j is not None,
         "separation_km": place.separation_km.get(r, float("nan")),
@@ -529,8 +561,16 @@ def change_table(places: list[Place], runs: list[RunFolder]) -> pd.DataFrame:
             ratio, lo, hi = (v[0] for v in feed_ratio(a["feed_w_per_m"], a["feed_lo"],
                                                       a["feed_hi"], x["feed_w_per_m"],
                                                       x["feed_lo"], x["feed_hi"]))
+            method = "log-normal"
             if not (in_a and in_x):
                 ratio = lo = hi = float("nan")
+                method = ""
+            elif np.isfinite(ratio) and a["bootstrap"] is not None \
+                    and x["bootstrap"] is not None:
+                interval = bootstrap_ratio_interval(a["bootstrap"], x["bootstrap"])
+                if interval is not None:
+                    lo, hi = interval
+                    method = "bootstrap"
             word = verdict(in_a, in_x, a["feed_lo"], x["feed_lo"], ratio, lo, hi)
             rows.append({
                 "place_id": p.place_id, "kind": p.kind, "run": runs[r].label,
@@ -546,13 +586,13 @@ def change_table(places: list[Place], runs: list[RunFolder]) -> pd.DataFrame:
                 "feed_a_hi": a["feed_hi"],
                 "feed_run": x["feed_w_per_m"], "feed_run_lo": x["feed_lo"],
                 "feed_run_hi": x["feed_hi"],
-                "feed_ratio": ratio, "ratio_lo": lo, "ratio_hi": hi,
+                "feed_ratio": ratio, "ratio_lo": lo, "ratio_hi": hi, "ratio_method": method,
                 "verdict": word, "colour": VERDICT_COLOURS[word],
             })
     columns = ["place_id", "kind", "run", "lon", "lat", "cape_id_a", "cape_id_run", "cape_in_a",
                "cape_in_run", "separation_km", "present_in", "ranks_a", "ranks_run", "feed_a",
                "feed_a_lo", "feed_a_hi", "feed_run", "feed_run_lo", "feed_run_hi",
-               "feed_ratio", "ratio_lo", "ratio_hi", "verdict", "colour"]
+               "feed_ratio", "ratio_lo", "ratio_hi", "ratio_method", "verdict", "colour"]
     return pd.DataFrame(rows, columns=columns)
 
 
@@ -773,7 +813,8 @@ def compare_folders(*args: str | os.PathLike[str], out: str | os.PathLike[str] |
         },
         "verdict_rule": VERDICT_RULE,
         "places": [{"place_id": p.place_id, "kind": p.kind, "lon": p.lon, "lat": p.lat,
-                    "runs": {runs[r].label: _state(p, r, runs[r]) for r in range(len(runs))}}
+                    "runs": {runs[r].label: {k: v for k, v in _state(p, r, runs[r]).items()
+                                             if k != "bootstrap"} for r in range(len(runs))}}
                    for p in places],
         "cape_changes": changes.drop(columns=["colour"]).to_dict(orient="records"),
         "pairs": pairs,
@@ -1135,7 +1176,8 @@ def render_page(data: dict[str, Any], changes: pd.DataFrame,
             f"<body>\n<main>\n{''.join(body)}\n</main>\n</body>\n</html>\n")
 
 
-__all__ = ["VERDICT_COLOURS", "CompareResult", "Place", "RunFolder", "build_places",
+__all__ = ["VERDICT_COLOURS", "CompareResult", "Place", "RunFolder", "bootstrap_ratio_interval",
+           "build_places",
            "change_table", "combined_feed", "compare_folders", "feed_ratio", "profile_agreement",
            "profile_on_a", "rank_agreement", "read_run_folder", "same_frame",
            "source_tolerance_km", "verdict"]
