@@ -46,6 +46,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 from matplotlib.lines import Line2D
+from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 from scipy.stats import spearmanr
 
 from coastmon.errors import InputError, OutputError
@@ -894,6 +895,9 @@ def feed_by_place_figure(path: str | os.PathLike[str], places: list[Place],
     hi_lim = pos.max() * 1.6 if pos.size else 10.0
     none_x = lo_lim * 1.25
     ax.set_xscale("log")
+    ax.xaxis.set_major_locator(LogLocator(base=10.0, subs=(1.0, 2.0, 5.0)))
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
+    ax.xaxis.set_minor_formatter(NullFormatter())
     if missing:
         ax.axvspan(lo_lim, lo_lim * 1.6, color="0.95", zorder=0)
     offsets = (np.arange(len(runs)) - (len(runs) - 1) / 2.0) * min(0.7 / len(runs), 0.2)
@@ -974,6 +978,10 @@ def feeds_figure(path: str | os.PathLike[str], matched: pd.DataFrame) -> Path:
     if positive.size == bounds.size and positive.size and positive.max() > 10 * positive.min():
         ax.set_xscale("log")
         ax.set_yscale("log")
+        for axis in (ax.xaxis, ax.yaxis):
+            axis.set_major_locator(LogLocator(base=10.0, subs=(1.0, 2.0, 5.0)))
+            axis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
+            axis.set_minor_formatter(NullFormatter())
         lo, hi = positive.min() / 1.3, positive.max() * 1.3
     else:
         span = bounds.max() - bounds.min() if bounds.size and bounds.max() > bounds.min() \
@@ -982,9 +990,12 @@ def feeds_figure(path: str | os.PathLike[str], matched: pd.DataFrame) -> Path:
     ax.plot([lo, hi], [lo, hi], color="0.3", linewidth=1.0, linestyle="--", zorder=2)
     ax.set_xlim(lo, hi)
     ax.set_ylim(lo, hi)
+    named: set[str] = set()
     for x, y, name in zip(fa, fb, matched["place_id"], strict=True):
-        ax.annotate(name, (x, y), xytext=(4, 4), textcoords="offset points", fontsize=7,
-                    path_effects=_fig._HALO)
+        if name not in named:
+            named.add(name)
+            ax.annotate(name, (x, y), xytext=(4, 4), textcoords="offset points", fontsize=7,
+                        path_effects=_fig._HALO)
     ax.grid(color="0.92", linewidth=0.6)
     ax.set_axisbelow(True)
     handles.append(Line2D([], [], color="0.3", linestyle="--", label="equal feed"))
@@ -1028,8 +1039,8 @@ def verdict_map_figure(path: str | os.PathLike[str], changes: pd.DataFrame,
         ax.set_xlim(x0, x1)
         ax.set_ylim(y0, y1)
         ax.set_aspect(aspect)
-        ax.xaxis.set_major_formatter(_fig.FuncFormatter(_fig._lon_text))
-        ax.yaxis.set_major_formatter(_fig.FuncFormatter(_fig._lat_text))
+        ax.xaxis.set_major_formatter(FuncFormatter(_fig._lon_text))
+        ax.yaxis.set_major_formatter(FuncFormatter(_fig._lat_text))
         ax.tick_params(axis="x", labelrotation=30)
         ax.set_title(f"run {run} against A", fontsize=9)
         ax.grid(color="0.93", linewidth=0.5)
@@ -1072,7 +1083,7 @@ def profiles_figure(path: str | os.PathLike[str], runs: list[RunFolder],
         if len(segments) > 1:
             _fig._panel_letter(ax, k)
         if k == 0:
-            ax.legend(loc="upper left", framealpha=0.9, ncol=min(len(runs), 4))
+            ax.legend(loc="upper center", framealpha=0.9, ncol=min(len(runs), 4))
     axes[-1].set_xlabel("along-shore distance in run A (km)")
     return _fig._save(fig, path)
 
