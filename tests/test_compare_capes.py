@@ -279,3 +279,23 @@ def test_coarser_grid_keeps_cape_ids_with_a_catalogue(experiments, tmp_path):
     assert len(ch) == 2 and (ch["cape_in_run"] & ch["cape_in_a"]).all()
     assert (ch["present_in"] == "both").all()  # check: planted truth (both shed in both)
     assert (ch["cape_id_a"] == ch["cape_id_run"]).all()
+
+
+def test_coast_command_names_capes_after_a_catalogue(experiments, tmp_path, capsys):
+    nc = Path(experiments["truth_a"]).parent / "vell_coast.nc"
+    catalogue = tmp_path / "named.csv"
+    capes = _truth_capes(experiments["truth_a"])
+    pd.DataFrame({"id": ["Tasker", "Orrin"],
+                  "lon": [capes["Tasker Head"][0], capes["Cape Orrin"][0]],
+                  "lat": [capes["Tasker Head"][1], capes["Cape Orrin"][1]]}
+                 ).to_csv(catalogue, index=False)
+    assert main(["coast", str(nc), "--out", str(tmp_path / "coast"), "--capes",
+                 str(catalogue)]) == 0
+    found = pd.read_csv(tmp_path / "coast" / "capes.csv")
+    # check: planted truth (the generator put these two capes at the catalogue positions)
+    assert sorted(found["cape_id"]) == ["Orrin", "Tasker"]
+    catalogue.write_text("id,lon\nX,1\n", encoding="utf-8")
+    assert main(["coast", str(nc), "--out", str(tmp_path / "coast2"), "--capes",
+                 str(catalogue)]) == 2
+    assert "lacks the column(s) lat" in capsys.readouterr().err
+    assert not (tmp_path / "coast2").exists()
