@@ -38,6 +38,9 @@ def _add_settings_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--mask-var", metavar="NAME", help="land/sea mask variable")
     g.add_argument("--depth", metavar="M", type=float,
                    help="depth to analyse in metres, positive down (default: the top level)")
+    p.add_argument("--capes", metavar="CSV", type=Path,
+                   help="cape catalogue (columns id, lon, lat; a capes.csv of another run "
+                   "works): capes found near a catalogue cape take its id")
 
 
 def _add_run_options(p: argparse.ArgumentParser) -> None:
@@ -80,13 +83,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--gis", metavar="LIST", help="GIS formats (default gpkg,csv)")
 
     p = sub.add_parser(
-        "compare", help="compare two result folders (runs, resolutions, or a run and observations)",
-        description="Match the sources of two analyze result folders by along-shore position and "
-        "compare their feeds, ranks, along-shore EKE profiles and jet spacing.",
+        "compare", help="compare result folders cape by cape (sensitivity runs, resolutions, "
+        "an ensemble, or a run and observations)",
+        description="Match the capes of two or more analyze result folders by position, follow "
+        "the sources through their capes, and tell per cape whether the source appeared, "
+        "vanished, grew, shrank or did not change significantly against the first folder "
+        "(the reference). Writes compare.json, cape_changes.csv, matched_sources.csv, map.gpkg, "
+        "cape_changes.geojson, compare.html and figures/ into --out.",
     )
-    p.add_argument("a_dir", type=Path, metavar="A_DIR", help="first result folder")
-    p.add_argument("b_dir", type=Path, metavar="B_DIR", help="second result folder")
+    p.add_argument("run_dirs", type=Path, nargs="+", metavar="RUN_DIR",
+                   help="result folders; the first is the reference (run A), the others are "
+                   "runs B, C, ... each compared with A")
     p.add_argument("--out", required=True, type=Path, metavar="DIR", help="output folder")
+    p.add_argument("--capes", metavar="CSV", type=Path,
+                   help="cape catalogue (columns id, lon, lat; a capes.csv of a run works): "
+                   "capes of every run near a catalogue cape take its id")
 
     p = sub.add_parser(
         "update", help="add new time steps to a monitoring state and refresh its outputs",
@@ -130,6 +141,8 @@ def settings_from_args(args: argparse.Namespace) -> Settings:
         coast["boundary"] = args.boundary
     if getattr(args, "isobath", None) is not None:
         coast["isobath_m"] = args.isobath
+    if getattr(args, "capes", None) is not None:
+        coast["cape_catalogue"] = str(args.capes)
     if coast:
         settings = settings.replace("coast", **coast)
     stream = {}
@@ -220,7 +233,7 @@ def _run(args: argparse.Namespace) -> int:
         elif args.command == "compare":
             from coastmon.assess.compare import compare_folders
 
-            result = compare_folders(args.a_dir, args.b_dir, args.out)
+            result = compare_folders(*args.run_dirs, out=args.out, catalogue=args.capes)
             _print_result(result.summary_text())
         elif args.command == "update":
             from coastmon.monitor.state import update

@@ -85,6 +85,9 @@ class CoastSettings:
     """Point spacing along the zonal rays."""
     ray_every: int = 1
     """Start a zonal ray at every n-th station."""
+    cape_catalogue: str | None = None
+    """CSV file of named capes (columns id, lon, lat); a cape found within the matching
+    tolerance of a catalogue cape takes its id instead of its position code."""
 
 
 @dataclass(frozen=True)

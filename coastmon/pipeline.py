@@ -53,6 +53,7 @@ from coastmon.geometry import (
     extract_coastline,
     find_capes,
 )
+from coastmon.geometry.capes import apply_catalogue, grid_spacing_km, read_cape_catalogue
 from coastmon.grid.metrics import GridMetrics, beta_parameter
 from coastmon.io.atomic import atomic_write_text, output_error, staging_dir
 from coastmon.io.gis import write_layers
@@ -141,11 +142,21 @@ def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
             coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
             capes = find_capes(coastline, settings.coast)
             frame = build_frame(coastline, lon, lat, mask, settings.coast)
+        ld_km = deformation_radius_km(settings, frame)
+        capes = catalogue_names(capes, settings, lon, lat, ld_km)
     except BaseException:
         close_spares()  # no pass will take the readers started above
         raise
-    return Prepared(ds, metrics, coastline, capes, frame, deformation_radius_km(settings, frame),
-                    [Path(p) for p in inputs], notes)
+    return Prepared(ds, metrics, coastline, capes, frame, ld_km, [Path(p) for p in inputs], notes)
+
+
+def catalogue_names(capes: pd.DataFrame, settings: Settings, lon: np.ndarray, lat: np.ndarray,
+                    ld_km: float) -> pd.DataFrame:
+    """Capes renamed after the cape catalogue ``coast.cape_catalogue``, when one is given."""
+    if not settings.coast.cape_catalogue or len(capes) == 0:
+        return capes
+    return apply_catalogue(capes, read_cape_catalogue(settings.coast.cape_catalogue),
+                           grid_spacing_km(lon, lat), ld_km)
 
 
 # --------------------------------------------------------------------------- small data
@@ -440,7 +451,8 @@ def write_outputs(stage: Path, prep: Prepared, products: Products, settings: Set
     write_layers(layers, stage, settings.output.gis)
     ds = prep.ds
     t0, t1 = ds["time"].values[0], ds["time"].values[-1]
-    write_results(stage / "results.nc", products.stats, products.profiles, products.spectra,
+    write_results(stage / "results.nc", products.stats, products.profiles,
+                  with_feed_bootstrap(products.spectra, products.bootstrap_feeds),
                   attrs={"velocity_kind": ds.attrs.get("velocity_kind", "velocity"),
                          "depth_m": ds.attrs.get("depth_m"),
                          "deformation_radius_km": prep.ld_km,
@@ -451,6 +463,19 @@ def write_outputs(stage: Path, prep: Prepared, products: Products, settings: Set
         write_figures_and_report(stage, prep, products, layers, settings, provenance,
                                  series=series)
     atomic_write_text(stage / "run.json", json.dumps(provenance, indent=2, default=str))
+
+
+def with_feed_bootstrap(spectra: xr.Dataset, boot: np.ndarray) -> xr.Dataset:
+    """The spectra plus ``feed_bootstrap(source, bootstrap)``: each source's bootstrap feeds
+    (columns of ``boot`` in rank order), kept so that ``coastmon compare`` can form ratio
+    intervals from the resamples themselves."""
+    boot = np.asarray(boot, dtype=float)
+    if "source" not in spectra.dims or boot.ndim != 2 or boot.shape[0] == 0 \
+            or boot.shape[1] != spectra.sizes["source"]:
+        return spectra
+    return spectra.assign(feed_bootstrap=(("source", "bootstrap"), boot.T, {
+        "long_name": "westward eddy energy feed of each bootstrap resample of the record",
+        "units": "W m-1"}))
 
 
 def check_out_dir(out: Path, inputs: list[Path]) -> Path:
@@ -589,6 +614,11 @@ def coast(input_path: str | Path, out: str | Path, settings: Settings) -> CoastR
     with geometry_of(input_path):
         coastline = extract_coastline(lon, lat, mask, settings.coast, bathymetry=bathy)
         capes = find_capes(coastline, settings.coast)
+    if len(capes):
+        ld_km = (float(settings.signals.deformation_radius_km)
+                 if settings.signals.deformation_radius_km is not None
+                 else float(default_deformation_radius_km(float(np.median(capes["lat"])))))
+        capes = catalogue_names(capes, settings, lon, lat, ld_km)
     layers = {"coastline": coastline_layer(coastline), "capes": capes_layer(capes)}
     with staging_dir(out) as stage:
         formats = tuple(f for f in settings.output.gis if f != "csv") or ("gpkg",)

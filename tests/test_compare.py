@@ -25,6 +25,7 @@ from coastmon.config import Settings
 from coastmon.errors import InputError, OutputError
 from coastmon.io.results import CAUTIONS, write_results
 from coastmon.scenario import default_params, make_scenario
+from coastmon.signals.propagation import OMEGA_EARTH
 
 KM_PER_DEG = 111.195  # great-circle km per degree on a sphere of radius 6371 km
 
@@ -108,27 +109,33 @@ def test_planted_pairs_rank_correlation_and_unmatched(planted, tmp_path):
     a, b = planted
     result = compare_folders(a, b, tmp_path / "cmp")
     data = _strict_json(tmp_path / "cmp" / "compare.json")
-    assert data["matched_by"] == "alongshore"
-    # tolerance: max(2 x median cape scale (25 km), 50 km) = 50 km
-    assert data["tolerance_km"] == pytest.approx(50.0)  # check: common practice, no source
-    pairs = sorted((m["feed_a"], m["feed_b"]) for m in data["matched_sources"])
+    pair = data["pairs"][0]
+    assert pair["same_frame"]
+    # the folders record no deformation radius: c1 / |f| with c1 = 2.5 m/s at the median
+    # station latitude; the 1-degree grid makes 2 x grid spacing larger, so the unanchored
+    # sources are matched within min(max(2 dx, Ld), 2 Ld) = 2 Ld
+    lat_mid = 30.0 + 295.0 / KM_PER_DEG
+    ld_km = 2.5 / (2 * OMEGA_EARTH * math.sin(math.radians(lat_mid))) / 1000.0
+    assert data["tolerances"]["source_km"] == pytest.approx(2 * ld_km, rel=1e-6)  # check: Gill 1982 sec. 7.5 (Ld = c / f)
+    pairs = sorted((m["feed_a"], m["feed_run"]) for m in pair["matched_sources"])
     planted_pairs = sorted((fa, fb) for (_, fa), (_, fb) in zip(A_SOURCES, B_SOURCES[:4],
                                                                  strict=False))
     assert pairs == planted_pairs
     fa = [p[0] for p in planted_pairs]
     fb = [p[1] for p in planted_pairs]
     expected = spearmanr(fa, fb).statistic
-    assert data["rank_correlation"] == pytest.approx(expected, abs=1e-12)  # check: scipy.stats.spearmanr
+    assert pair["rank_correlation"] == pytest.approx(expected, abs=1e-12)  # check: scipy.stats.spearmanr
     # ranks A (4, 3, 2, 1) vs B (3, 4, 2, 1): rho = 1 - 6 * 2 / (4 * 15) = 0.8
     assert result.rank_correlation == pytest.approx(0.8, abs=1e-12)  # check: Spearman 1904 rank formula
-    assert [u["alongshore_km"] for u in data["unmatched_b"]] == [560.0]
-    assert data["unmatched_a"] == []
-    assert data["jet_spacing_km"]["a"] == pytest.approx(240.0)  # check: planted value
-    assert data["jet_spacing_km"]["b"] == pytest.approx(300.0)  # check: planted value
+    assert [u["alongshore_km"] for u in pair["unmatched_run"]] == [560.0]
+    assert pair["unmatched_a"] == []
+    assert list(result.changes["verdict"]).count("appeared") == 1  # check: planted extra source
+    assert pair["jet_spacing_km"]["a"] == pytest.approx(240.0)  # check: planted value
+    assert pair["jet_spacing_km"]["run"] == pytest.approx(300.0)  # check: planted value
     # B's profile is 1.5 x A's: Pearson r = 1, RMS = 0.5 * RMS(A)
     eke = _eke_profile(_coast(60, 10.0, -15.0)[0])
-    assert data["profile_correlation"] == pytest.approx(1.0, abs=1e-12)  # check: Pearson r is scale invariant (textbook)
-    assert data["profile_rms_difference"] == pytest.approx(
+    assert pair["profile_correlation"] == pytest.approx(1.0, abs=1e-12)  # check: Pearson r is scale invariant (textbook)
+    assert pair["profile_rms_difference"] == pytest.approx(
         0.5 * math.sqrt(float(np.mean(eke**2))), rel=1e-9)  # check: definition of RMS difference
 
 
@@ -139,9 +146,9 @@ def test_removed_source_is_unmatched(planted, tmp_path):
     table = pd.read_csv(copy / "sources.csv")
     removed = table[table["alongshore_km"] == 200.0]
     table.drop(removed.index).to_csv(copy / "sources.csv", index=False)
-    data = compare_folders(a, copy, tmp_path / "cmp").data
+    data = compare_folders(a, copy, tmp_path / "cmp").data["pairs"][0]
     assert [u["alongshore_km"] for u in data["unmatched_a"]] == [200.0]  # check: planted removal
-    assert data["unmatched_b"] == []
+    assert data["unmatched_run"] == []
     assert len(data["matched_sources"]) == 3
     assert all(m["feed_ratio"] == pytest.approx(1.0) for m in data["matched_sources"])  # check: identical rows
     assert data["rank_correlation"] == pytest.approx(1.0)  # check: scipy.stats.spearmanr of identical data
@@ -157,8 +164,8 @@ def test_other_coastline_matches_by_great_circle(tmp_path):
     b_sources = [_source(s, f, lon=-15.0 - shift_deg) for s, f in A_SOURCES]
     b = _write_folder(tmp_path / "b", b_sources, lat_b, lon_b, along_b + 35.0,
                       _eke_profile(lat_b), 240.0)
-    data = compare_folders(a, b, tmp_path / "cmp").data
-    assert data["matched_by"] == "distance"
+    data = compare_folders(a, b, tmp_path / "cmp").data["pairs"][0]
+    assert not data["same_frame"]
     assert len(data["matched_sources"]) == 4
     for m in data["matched_sources"]:
         # about 20 km apart (zonal shift at 30-34 N, haversine)
@@ -175,12 +182,12 @@ def test_feed_ratio_interval_log_scale_quadrature():
     assert r[0] == pytest.approx(1.0)
     assert lo[0] == pytest.approx(2.0 ** -math.sqrt(2.0), rel=1e-12)  # check: Taylor 1997 ch. 3 (quadrature of independent errors)
     assert hi[0] == pytest.approx(2.0 ** math.sqrt(2.0), rel=1e-12)  # check: Taylor 1997 ch. 3
-    # an interval reaching below zero: linear rule, sigma = (hi - lo) / (2 * 1.96)
+    # A's interval reaches below zero: on the log scale its lower half-width is infinite,
+    # so the ratio has no upper bound; the lower bound stays finite and positive
     r, lo, hi = feed_ratio([100.0], [-20.0], [220.0], [200.0], [160.0], [240.0])
-    sa, sb = 240.0 / (2 * 1.959963984540054), 80.0 / (2 * 1.959963984540054)
-    sr = 2.0 * math.sqrt((sa / 100.0) ** 2 + (sb / 200.0) ** 2)
-    assert lo[0] == pytest.approx(2.0 - 1.959963984540054 * sr, rel=1e-9)  # check: Taylor 1997 ch. 3 (ratio rule)
-    assert hi[0] == pytest.approx(2.0 + 1.959963984540054 * sr, rel=1e-9)  # check: Taylor 1997 ch. 3
+    down = math.sqrt(math.log(200.0 / 160.0) ** 2 + math.log(220.0 / 100.0) ** 2)
+    assert lo[0] == pytest.approx(2.0 * math.exp(-down), rel=1e-12)  # check: Taylor 1997 ch. 3 (quadrature on the log scale)
+    assert math.isinf(hi[0])  # check: a log-normal interval cannot reach zero (definition)
 
 
 def test_errors_are_one_paragraph(planted, tmp_path):
@@ -218,22 +225,23 @@ def real_run(tmp_path_factory) -> Path:
 @pytest.mark.slow
 def test_run_compared_with_itself_is_perfect(real_run, tmp_path):
     result = compare_folders(real_run, real_run, tmp_path / "cmp")
-    data = _strict_json(tmp_path / "cmp" / "compare.json")
+    data = _strict_json(tmp_path / "cmp" / "compare.json")["pairs"][0]
     n_sources = len(pd.read_csv(real_run / "sources.csv"))
     assert n_sources >= 1
     assert len(data["matched_sources"]) == n_sources  # check: identity
-    assert data["unmatched_a"] == [] and data["unmatched_b"] == []
+    assert data["unmatched_a"] == [] and data["unmatched_run"] == []
     for m in data["matched_sources"]:
-        assert m["rank_a"] == m["rank_b"]
+        assert m["rank_a"] == m["rank_run"]
         assert m["separation_km"] == 0.0  # check: identity
         assert m["feed_ratio"] == pytest.approx(1.0, abs=1e-12)  # check: identity
     if n_sources >= 3:
         assert data["rank_correlation"] == pytest.approx(1.0)  # check: scipy.stats.spearmanr of identical data
     else:
-        assert data["rank_correlation"] is None and result.notes
+        assert data["rank_correlation"] is None
+        assert "at least three" in data["rank_correlation_note"]
     assert data["profile_correlation"] == pytest.approx(1.0, abs=1e-12)  # check: identity
     assert data["profile_rms_difference"] == 0.0  # check: identity
-    assert data["jet_spacing_km"]["b_minus_a"] in (0.0, None)
+    assert data["jet_spacing_km"]["run_minus_a"] in (0.0, None)
     page = (tmp_path / "cmp" / "compare.html").read_text(encoding="utf-8")
     assert CAUTIONS in page
     for name in ("compare_feeds.png", "compare_eke_profiles.png"):

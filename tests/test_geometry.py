@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pyogrio
 import pyproj
@@ -368,7 +370,16 @@ def test_headlands_of_south_western_africa_are_found():
 def test_iberian_catalogue_is_short(iberia_capes):
     # check: common practice, no source (a catalogue of tens, not hundreds)
     assert 3 <= len(iberia_capes) <= 30
-    assert list(iberia_capes["cape_id"][:2]) == ["C01", "C02"]
+    # ids are the tip positions rounded to 0.1 degree: C<lat><N|S><lon><E|W>
+    for cid, lon, lat in zip(iberia_capes["cape_id"], iberia_capes["lon"], iberia_capes["lat"],
+                             strict=True):
+        m = re.fullmatch(r"C(\d\d\.\d)([NS])(\d\d\d\.\d)([EW])(-\d+)?", cid)
+        assert m, cid
+        code_lat = float(m[1]) * (1 if m[2] == "N" else -1)
+        code_lon = float(m[3]) * (1 if m[4] == "E" else -1)
+        # check: arithmetic (rounding to the nearest 0.1 moves a value by at most 0.05)
+        assert abs(code_lat - lat) <= 0.05 + 1e-9 and abs(code_lon - lon) <= 0.05 + 1e-9
+    assert iberia_capes["cape_id"].is_unique
 
 
 # --- GIS layers -------------------------------------------------------------------------

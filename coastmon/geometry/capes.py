@@ -8,6 +8,8 @@ smoothing up to a minimum scale.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import geopandas as gpd
 import numpy as np
 import pandas as pd
@@ -17,9 +19,12 @@ from shapely.geometry import LineString, Point
 
 from coastmon.compiled import compiled
 from coastmon.config import CoastSettings
+from coastmon.errors import InputError
 from coastmon.geometry.coastline import Coastline, Segment
 
-__all__ = ["CAPE_COLUMNS", "capes_layer", "curvature", "find_capes", "smoothed_derivatives"]
+__all__ = ["CAPE_COLUMNS", "CAPE_ID_STEP_DEG", "apply_catalogue", "cape_tolerance_km",
+           "capes_layer", "curvature", "find_capes", "grid_spacing_km", "match_points", "position_code",
+           "read_cape_catalogue", "smoothed_derivatives", "stable_ids"]
 
 CAPE_COLUMNS = [
     "cape_id",
@@ -303,7 +308,8 @@ def find_capes(coastline: Coastline, settings: CoastSettings) -> pd.DataFrame:
     Returns
     -------
     pandas.DataFrame
-        One row per cape, columns ``cape_id`` ("C01", ...), ``lon``, ``lat`` (degrees),
+        One row per cape, columns ``cape_id`` (position code of the tip, e.g.
+        ``C34.4N036.9W``, see :func:`stable_ids`), ``lon``, ``lat`` (degrees),
         ``segment_id``, ``alongshore_km``, ``curvature_per_km`` (at the finest scale),
         ``scale_km`` (largest scale at which the cape persists), ``protrusion_km`` (seaward
         distance from the baseline), ``normal_az_deg`` (offshore normal, degrees clockwise
@@ -362,8 +368,8 @@ def find_capes(coastline: Coastline, settings: CoastSettings) -> pd.DataFrame:
             )
     table = pd.DataFrame(rows, columns=CAPE_COLUMNS[1:])
     table = table.sort_values(["segment_id", "alongshore_km"]).reset_index(drop=True)
-    width = max(2, len(str(len(table))))
-    table.insert(0, "cape_id", [f"C{k:0{width}d}" for k in range(1, len(table) + 1)])
+    table.insert(0, "cape_id", stable_ids(table["lon"].to_numpy(float),
+                                          table["lat"].to_numpy(float)))
     return table
 
 
@@ -371,3 +377,192 @@ def capes_layer(capes: pd.DataFrame) -> gpd.GeoDataFrame:
     """The ``capes`` GIS layer: one Point per cape (EPSG:4326), all columns of ``capes``."""
     geometry = gpd.points_from_xy(capes["lon"], capes["lat"])
     return gpd.GeoDataFrame(capes.copy(), geometry=geometry, crs="EPSG:4326")
+
+
+# --------------------------------------------------------------------------- cape identity
+CAPE_ID_STEP_DEG = 0.1
+"""Rounding step (degrees of latitude and longitude) of the position code of a cape."""
+CAPE_SCALE_FRACTION = 0.5
+"""Cape matching tolerance: this fraction of the cape's ``scale_km`` ..."""
+GRID_CELLS = 2.0
+"""... or this many grid spacings, whichever is larger, ..."""
+MAX_DEFORMATION_RADII = 2.0
+"""... but never more than this many first baroclinic deformation radii."""
+
+
+def position_code(lon: float, lat: float, prefix: str = "C",
+                  step_deg: float = CAPE_ID_STEP_DEG) -> str:
+    """Label of a point from its position rounded to ``step_deg``: ``C34.4N036.9W``.
+
+    Latitude and longitude (the latter first brought to [-180, 180)) are each rounded to
+    the nearest multiple of ``step_deg``, halves away from zero, and written with one
+    decimal, hemisphere letters after the number (``N``/``S``, ``E``/``W``; zero is ``N`` or
+    ``E``), latitude with two and longitude with three integer digits.
+
+    Examples
+    --------
+    >>> position_code(-36.96, 34.43)
+    'C34.4N037.0W'
+    >>> position_code(18.47, -34.36)
+    'C34.4S018.5E'
+    """
+    lon = (float(lon) + 180.0) % 360.0 - 180.0
+
+    def steps(value: float) -> int:
+        k = abs(value) / step_deg
+        return int(np.floor(round(k, 6) + 0.5)) * (1 if value >= 0 else -1)
+
+    klat, klon = steps(float(lat)), steps(lon)
+    if klon * step_deg >= 180.0 - 1e-9:
+        klon = -klon
+    ns, ew = ("N" if klat >= 0 else "S"), ("E" if klon >= 0 else "W")
+    return (f"{prefix}{abs(klat) * step_deg:04.1f}{ns}"
+            f"{abs(klon) * step_deg:05.1f}{ew}")
+
+
+def stable_ids(lon: np.ndarray, lat: np.ndarray, prefix: str = "C") -> list[str]:
+    """Position codes (:func:`position_code`) of points, made unique in the given order.
+
+    Two points with the same code (closer than about ``CAPE_ID_STEP_DEG``) keep it for the
+    first and get ``-2``, ``-3``, ... for the following ones.
+    """
+    ids: list[str] = []
+    seen: dict[str, int] = {}
+    for x, y in zip(np.asarray(lon, float), np.asarray(lat, float), strict=True):
+        code = position_code(x, y, prefix)
+        seen[code] = seen.get(code, 0) + 1
+        ids.append(code if seen[code] == 1 else f"{code}-{seen[code]}")
+    return ids
+
+
+def cape_tolerance_km(scale_km: np.ndarray | float, grid_km: float, ld_km: float
+                      ) -> np.ndarray:
+    r"""Farthest apart (km) two cape tips may be and still be the same headland.
+
+    .. math:: d_{max} = \min\left(\max(0.5\,L_{cape},\ 2\,\Delta),\ 2\,L_d\right)
+
+    with :math:`L_{cape}` the cape's curvature-scale-space scale (``scale_km``: the tip of
+    a broad headland is poorly defined over about half its scale), :math:`\Delta` the grid
+    spacing (the traced coast, and so the tip, moves by up to a grid cell between
+    resolutions) and :math:`L_d` the first baroclinic deformation radius (two eddy sources
+    are at least :math:`2 L_d` apart, so a wider tolerance could join different ones).
+    Common practice, no source; the numbers are stated in docs/comparing-runs.md.
+    """
+    scale = np.asarray(scale_km, dtype=float)
+    scale = np.where(np.isfinite(scale), scale, 0.0)
+    wide = np.maximum(CAPE_SCALE_FRACTION * scale, GRID_CELLS * float(grid_km))
+    return np.minimum(wide, MAX_DEFORMATION_RADII * float(ld_km))
+
+
+def match_points(lon_a: np.ndarray, lat_a: np.ndarray, lon_b: np.ndarray, lat_b: np.ndarray,
+                 tolerance_km: np.ndarray | float) -> list[tuple[int, int, float]]:
+    """One-to-one pairs ``(i_a, i_b, distance_km)`` of points within a tolerance.
+
+    ``tolerance_km`` is a scalar or an ``(len(a), len(b))`` array. Among all pairings the
+    one with the smallest summed great-circle distance over pairs inside the tolerance is
+    chosen (linear sum assignment, :func:`scipy.optimize.linear_sum_assignment`); pairs
+    beyond the tolerance are never made.
+    """
+    from scipy.optimize import linear_sum_assignment
+
+    from coastmon.grid.metrics import haversine_m
+
+    lon_a, lat_a = np.asarray(lon_a, float), np.asarray(lat_a, float)
+    lon_b, lat_b = np.asarray(lon_b, float), np.asarray(lat_b, float)
+    if lon_a.size == 0 or lon_b.size == 0:
+        return []
+    d = haversine_m(lon_a[:, None], lat_a[:, None], lon_b[None, :], lat_b[None, :]) / 1000.0
+    tol = np.broadcast_to(np.asarray(tolerance_km, float), d.shape)
+    inside = np.isfinite(d) & (d <= tol)
+    cost = np.where(inside, d, 1.0e6 * (float(np.nanmax(np.where(inside, d, 0.0))) + 1.0))
+    rows, cols = linear_sum_assignment(cost)
+    pairs = [(int(i), int(j), float(d[i, j])) for i, j in zip(rows, cols, strict=True)
+             if inside[i, j]]
+    return sorted(pairs)
+
+
+def grid_spacing_km(lon: np.ndarray, lat: np.ndarray) -> float:
+    """Median grid spacing (km) of a 2-D ``(y, x)`` grid: sqrt(dx dy), great-circle steps."""
+    from coastmon.grid.metrics import haversine_m
+
+    lon, lat = np.asarray(lon, float), np.asarray(lat, float)
+    if lon.ndim != 2 or min(lon.shape) < 2:
+        return float("nan")
+    dx = haversine_m(lon[:, :-1], lat[:, :-1], lon[:, 1:], lat[:, 1:])[:-1, :]
+    dy = haversine_m(lon[:-1, :], lat[:-1, :], lon[1:, :], lat[1:, :])[:, :-1]
+    return float(np.nanmedian(np.sqrt(dx * dy))) / 1000.0
+
+
+def read_cape_catalogue(path: str | Path) -> pd.DataFrame:
+    """Read a cape catalogue: a CSV with columns ``id`` (or ``cape_id``), ``lon``, ``lat``.
+
+    A ``capes.csv`` written by ``coastmon analyze`` or ``coastmon coast`` is a valid
+    catalogue, so the capes of a reference run can name the capes of every other run.
+
+    Raises
+    ------
+    coastmon.errors.InputError
+        The file cannot be read, lacks a column, has repeated or empty ids or positions
+        that are not numbers in range.
+    """
+    path = Path(path)
+    todo = ("Give a CSV file with one row per cape and the columns id, lon, lat "
+            "(degrees east, degrees north); a capes.csv of an earlier run works")
+    try:
+        table = pd.read_csv(path, dtype=str, keep_default_na=False)
+    except (OSError, ValueError, pd.errors.ParserError) as exc:
+        raise InputError(f"The cape catalogue cannot be read ({exc})", where=str(path),
+                         todo=todo) from None
+    id_col = "id" if "id" in table.columns else "cape_id" if "cape_id" in table.columns else None
+    missing = [c for c in ("lon", "lat") if c not in table.columns]
+    if id_col is None or missing:
+        raise InputError("The cape catalogue lacks the column(s) "
+                         + ", ".join(([] if id_col else ["id"]) + missing),
+                         where=str(path), todo=todo)
+    ids = table[id_col].str.strip()
+    lon = pd.to_numeric(table["lon"], errors="coerce").to_numpy(float)
+    lat = pd.to_numeric(table["lat"], errors="coerce").to_numpy(float)
+    bad = [i + 2 for i in range(len(table))
+           if not ids.iloc[i] or not np.isfinite(lon[i]) or not np.isfinite(lat[i])
+           or abs(lat[i]) > 90.0 or abs(lon[i]) > 360.0]
+    if bad:
+        raise InputError(f"The cape catalogue has an empty id or a position that is not a "
+                         f"number in range on line(s) {', '.join(map(str, bad[:5]))}",
+                         where=str(path), todo=todo)
+    repeated = sorted(set(ids[ids.duplicated()]))
+    if repeated:
+        raise InputError(f"The cape catalogue repeats the id(s) {', '.join(repeated[:5])}",
+                         where=str(path), todo="Give every cape its own id")
+    return pd.DataFrame({"cape_id": ids.to_numpy(), "lon": lon, "lat": lat})
+
+
+def apply_catalogue(capes: pd.DataFrame, catalogue: pd.DataFrame, grid_km: float,
+                    ld_km: float) -> pd.DataFrame:
+    """Capes renamed after the nearest catalogue cape within :func:`cape_tolerance_km`.
+
+    Matching is one to one (:func:`match_points`) with each cape's own tolerance. A cape
+    with no catalogue cape close enough keeps its position code; if that code is already
+    a catalogue id of a matched cape, a ``-2`` (``-3``, ...) is added.
+    """
+    out = capes.copy()
+    if len(out) == 0 or len(catalogue) == 0:
+        return out
+    tol = cape_tolerance_km(out["scale_km"].to_numpy(float), grid_km, ld_km)
+    pairs = match_points(out["lon"], out["lat"], catalogue["lon"], catalogue["lat"],
+                         tol[:, None])
+    ids = list(out["cape_id"].astype(str))
+    taken = set()
+    for i, j, _ in pairs:
+        ids[i] = str(catalogue["cape_id"].iloc[j])
+        taken.add(ids[i])
+    named = {i for i, _, _ in pairs}
+    for i in range(len(ids)):
+        if i in named:
+            continue
+        code, k = ids[i], 2
+        while ids[i] in taken:
+            ids[i] = f"{code}-{k}"
+            k += 1
+        taken.add(ids[i])
+    out["cape_id"] = ids
+    return out

@@ -11,6 +11,8 @@ sources        Point            rank, feed_w_per_m, feed_lo, feed_hi, persistenc
                                 dist_to_cape_km, alongshore_km, west_speed_cm_s
 gates          LineString       (as produced by the sources stage)
 plume_axes     LineString       (as produced by the sources stage)
+cape_changes   Point            ``coastmon compare``: place_id, run, verdict, colour, feeds
+                                and ratio (see docs/comparing-runs.md)
 =============  ===============  ==========================================================
 
 :func:`write_layers` writes them in any of four formats, every file atomically:
@@ -62,6 +64,7 @@ LAYER_GEOMETRY = {
     "sources": "Point",
     "gates": "LineString",
     "plume_axes": "LineString",
+    "cape_changes": "Point",
 }
 """Geometry type of each standard layer (used when a layer has no rows)."""
 
