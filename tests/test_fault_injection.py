@@ -70,7 +70,12 @@ def _signalled(argv: list[str], tmpdir: Path, delay_s: float, signum: int
     time.sleep(delay_s)
     if proc.poll() is None:
         proc.send_signal(signum)
-    _, err = proc.communicate(timeout=300)
+    try:
+        _, err = proc.communicate(timeout=300)
+    except subprocess.TimeoutExpired:  # a hung run (e.g. a deadlock) fails, never stalls
+        proc.kill()
+        _, err = proc.communicate()
+        pytest.fail(f"coastmon {' '.join(argv)} did not end within 300 s of signal {signum}")
     return proc.returncode, err
 
 

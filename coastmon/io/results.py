@@ -35,6 +35,7 @@ import xarray as xr
 
 from coastmon.errors import InputError
 from coastmon.io.atomic import atomic_path
+from coastmon.io.owned import critical
 
 CAUTIONS = (
     "Research diagnostics from model output or gridded observations; not for navigation, "
@@ -343,7 +344,8 @@ def write_results(
     out.attrs = _global_attrs(attrs)
     final = Path(path)
     with atomic_path(final) as tmp:
-        out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
+        with critical():  # a signal inside xarray's file lock would deadlock its clean-up
+            out.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
     return final
 
 

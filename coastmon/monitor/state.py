@@ -790,7 +790,8 @@ def _write_part(series: xr.Dataset, path: Path) -> None:
     enc = {"time": {"units": _TIME_UNITS, "dtype": "float64"}}
     tmp = path.with_name(path.name + ".part")
     try:
-        series.to_netcdf(tmp, engine="netcdf4", encoding=enc)
+        with critical():  # a signal inside xarray's file lock would deadlock its clean-up
+            series.to_netcdf(tmp, engine="netcdf4", encoding=enc)
     except RuntimeError:  # the NetCDF library reports a full disk as "HDF error"
         tmp.unlink(missing_ok=True)  # our own temporary name, written just now
         if shutil.disk_usage(path.parent).free < (1 << 20):
