@@ -76,7 +76,14 @@ from coastmon.sources import (
     plume_axes,
     rank_sources,
 )
-from coastmon.sources.detect import nearshore_anomaly, time_step_days
+from coastmon.sources.detect import (
+    RING_GAP_LD,
+    RING_MIN_COVER,
+    RING_OUTER_LD,
+    nearshore_anomaly,
+    time_step_days,
+    untested_capes,
+)
 from coastmon.sources.feed import least_squares_speed, net_flux_density
 from coastmon.stream import prestart_readers, run_pass
 from coastmon.stream.pass_ import closing_spare_readers
@@ -167,6 +174,11 @@ def time_in_days(time: xr.DataArray) -> np.ndarray:
     return np.asarray(delta.total_seconds(), dtype=float) / 86400.0
 
 
+FEW_WINDOWS = 6
+"""Fewest windows of the longest eddy period for the sensitivity measured in
+docs/detection-rates.md (two-year records with 120-day windows); fewer gives a note."""
+
+
 def check_record_length(n_t: int, dt_days: float, settings: Settings,
                         where: str = "the input files' time axis") -> None:
     """Refuse a record too short for the eddy band, before any work is spent on it.
@@ -227,6 +239,16 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     dt = time_step_days(series)
     check_record_length(series.sizes["time"], dt, settings)
     warnings: list[str] = []
+    longest = float(settings.signals.eddy_period_days[1])
+    n_windows = int(series.sizes["time"] * dt // max(longest, dt))
+    if n_windows < FEW_WINDOWS:
+        warnings.append(
+            f"The record holds only {n_windows} windows of the longest eddy period "
+            f"({longest:g} days), so the test of recurrent shedding has little power: a real "
+            "but weaker source can go unreported, and which sources pass can change with the "
+            "grid or the settings. Read the list as the clearest sources only; a record of "
+            f"{FEW_WINDOWS} windows ({FEW_WINDOWS * longest:.0f} days) or more gives the "
+            "sensitivity stated in docs/detection-rates.md.")
     profiles = alongshore_profiles(series, frame, settings, ld_km)
     found = find_sources(profiles, frame, capes, settings, ld_km, series=series)
     gates = gate_set(series, frame, settings, dt, ld_km)
@@ -266,6 +288,17 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
         )
     if len(found) == 0:
         warnings.append("No localized, persistent vorticity source was found along this coast.")
+    blind = untested_capes(profiles, frame, capes, settings.sources.max_cape_distance_km)
+    if len(blind):
+        names = ", ".join(f"{c.cape_id} ({position_text(c.lon, c.lat)})"
+                          for c in blind.itertuples(index=False))
+        reach = (RING_GAP_LD + RING_MIN_COVER * (RING_OUTER_LD - RING_GAP_LD)) * ld_km
+        warnings.append(
+            f"{len(blind)} of {len(capes)} cape(s) could not be tested for a source: {names}. "
+            "They lie where the coast on one side is too short to measure a local "
+            f"background (within about {reach:.0f} km of the end of a coastline segment: an "
+            "open edge of the domain or a small island), so a source there is neither found "
+            "nor ruled out. Extend the domain along the coast to test them.")
 
     st = frame.stations
     profiles = profiles.assign_coords(

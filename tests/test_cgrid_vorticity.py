@@ -29,7 +29,7 @@ from coastmon.scenario.geography import offshore_distance_km
 from coastmon.stream import run_pass
 
 A = EARTH_RADIUS_M
-OMEGA_BODY = 1.0e-6  # a slow solid-body rotation (s-1): speeds stay ocean-like, ~5 m s-1
+OMEGA_BODY = 2.0e-7  # a slow solid-body rotation (s-1): speeds stay ocean-like, ~1 m s-1
 LON0, LAT0 = -14.0, 38.0  # off western Iberia
 TIME_ATTRS = {"units": "days since 2001-01-01", "calendar": "standard"}
 

@@ -240,6 +240,28 @@ def test_open_coast_ends_are_not_assessed():
     assert np.isfinite(bg[(S_KM >= 4 * LD_KM) & (S_KM <= S_KM[-1] - 4 * LD_KM)]).all()
 
 
+def test_capes_near_open_coast_ends_are_named_as_untested():
+    from types import SimpleNamespace
+
+    import xarray as xr
+
+    from coastmon.sources.detect import untested_capes
+
+    rng = np.random.default_rng(5)
+    x = red_noise_coast(rng, 730)
+    full, win, _ = band_activity(x.T, 1.0, SETTINGS)
+    r = detection_tests(full, win, S_KM, SEG, LD_KM, LEVEL)
+    profiles = xr.Dataset({"localization_q": ("station", r["q"])})
+    frame = SimpleNamespace(stations=pd.DataFrame({"alongshore_km": S_KM, "segment_id": SEG}))
+    capes = pd.DataFrame({"cape_id": ["end", "middle", "other end"], "segment_id": [0, 0, 0],
+                          "alongshore_km": [40.0, 1500.0, S_KM[-1] - 20.0],
+                          "lon": [0.0, 0.0, 0.0], "lat": [0.0, 1.0, 2.0]})
+    blind = untested_capes(profiles, frame, capes, 50.0)
+    # check: geometry of the rings (as above) — no station within 50 km of a cape 40 km from
+    # the end (all closer than 120 km) is tested; the middle of the coast is
+    assert list(blind["cape_id"]) == ["end", "other end"]
+
+
 def test_noisy_coast_end_makes_no_source():
     rng = np.random.default_rng(17)
     x = red_noise_coast(rng, 1460)
@@ -450,7 +472,7 @@ def test_fused_kernel_has_the_same_metric_terms():
 @pytest.mark.slow
 def test_weak_regular_shedding_is_found_and_ranked_last_in_a_scenario(tmp_path):
     """A 4-year daily record: a strong source at one cape and, at another, an eddy a month
-    whose planted feed is a tenth of the strong one's (the generator's own formula)."""
+    whose planted feed is about a tenth of the strong one's."""
     import dataclasses
     import json
 
@@ -479,9 +501,12 @@ def test_weak_regular_shedding_is_found_and_ranked_last_in_a_scenario(tmp_path):
     src = analyse_series(res.stats, res.series, prep.frame, prep.capes, settings,
                          prep.ld_km).sources
     planted = {p["name"]: p for p in truth["sources"]}
-    # check: planted truth — the generator's own feed formula gives about a tenth
+    # check: planted truth — the independent bookkeeping of what each planted eddy carries
+    # across its gate (scenario/bookkeeping.py) gives about a tenth; it is not exactly the
+    # tenth of the rate x psi0^2 sizing because eddies of different radius decay and
+    # interfere differently on their way to the gate
     ratio = planted["Weak source"]["feed_w_per_m"] / planted[strong.name]["feed_w_per_m"]
-    assert ratio == pytest.approx(0.1, rel=1e-6)
+    assert 0.07 < ratio < 0.15
     ranks = {}
     for name, p in planted.items():
         k, dist = nearest_source(src, p["cape_lon"], p["cape_lat"])

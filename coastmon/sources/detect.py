@@ -464,6 +464,25 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
     )
 
 
+def untested_capes(profiles: xr.Dataset, frame, capes: pd.DataFrame, reach_km: float
+                   ) -> pd.DataFrame:
+    """The capes where no station within ``reach_km`` along the same coast segment could
+    be tested (no local background: the cape lies within about ``RING_GAP_LD +
+    RING_MIN_COVER (RING_OUTER_LD - RING_GAP_LD)`` deformation radii of the end of its segment, e.g. an open domain edge, or on a small
+    island). A source there can be neither found nor ruled out."""
+    if capes is None or len(capes) == 0:
+        return capes.iloc[0:0] if capes is not None else pd.DataFrame()
+    st = frame.stations
+    s_km = st["alongshore_km"].values.astype(float)
+    seg = st["segment_id"].values
+    tested = np.isfinite(np.asarray(profiles["localization_q"].values, dtype=float))
+    keep = []
+    for cape in capes.itertuples(index=False):
+        near = (seg == cape.segment_id) & (np.abs(s_km - cape.alongshore_km) <= reach_km)
+        keep.append(bool(near.any()) and not bool(tested[near].any()))
+    return capes[np.asarray(keep, dtype=bool)]
+
+
 # --------------------------------------------------------------------------- sources
 def _local_maxima(values: np.ndarray) -> np.ndarray:
     """Indices of strict-or-plateau local maxima of a 1-D profile (edges included)."""
