@@ -429,6 +429,30 @@ def test_reader_processes_do_not_import_from_the_current_folder(tmp_path, monkey
     np.testing.assert_array_equal(first, ds["u"].values[0])
 
 
+def test_a_reader_process_that_crashes_on_a_chunk_names_that_chunk():
+    """A decompressor that crashes the reader process (a segmentation fault on a damaged
+    chunk) is reported as that chunk's damage, not as a lack of memory."""
+    import faulthandler
+
+    import dask
+    import dask.array as da
+
+    from coastmon.io.damage import ChunkDecodeError
+    from coastmon.stream import readers
+
+    good = da.zeros((30, 4, 5), dtype="float32", chunks=(30, 4, 5))
+    crash = da.from_delayed(dask.delayed(faulthandler._sigsegv)(), shape=(30, 4, 5),
+                            dtype="float32")
+    arr = da.concatenate([good, crash], axis=0)
+    with readers.ProcessReader(1, 2) as reader:
+        reader.start([arr, arr], 30, 4)
+        blocks, _ = reader.submit(0, 0, 30).result()
+        # check: common practice, no source (the chunk before the crash is read intact)
+        assert float(np.abs(np.asarray(blocks[0])).sum()) == 0.0
+        with pytest.raises(ChunkDecodeError, match="crashed with signal 11 \\(SIGSEGV\\)"):
+            reader.submit(1, 30, 60).result()
+
+
 # --------------------------------------------------------------------------- item 9
 
 

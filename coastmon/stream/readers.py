@@ -204,6 +204,12 @@ def _read_into(arrays, layout, buf: np.ndarray, t0: int, t1: int) -> float:
 # --------------------------------------------------------------------------- pass side
 
 
+CRASH_SIGNALS = frozenset(int(getattr(signal, name)) for name in
+                          ("SIGSEGV", "SIGBUS", "SIGILL", "SIGFPE", "SIGABRT")
+                          if hasattr(signal, name))
+"""Signals a process gets from a fault of its own code (a kill from outside is SIGKILL)."""
+
+
 class _SlotRead:
     """The future of one chunk read into a slot: ``result()`` gives views of the slot."""
 
@@ -271,12 +277,27 @@ class _Worker:
                 kind, value = pickle.load(self.proc.stdout)
             except (OSError, EOFError, pickle.UnpicklingError):
                 died = self._died()
-                future.set_exception(died)
+                crash = self._crash_signal()
+                if crash:
+                    # A decoder that crashes on the chunk it was given: with the pass's
+                    # own chunk and time span, the error names the file (see pass_._damaged).
+                    future.set_exception(ChunkDecodeError(
+                        f"a reader process crashed with signal {crash} while decoding it"))
+                else:
+                    future.set_exception(died)
                 continue
             if kind == "ok":
                 future.set_result(value)
             else:
                 future.set_exception(value)
+
+    def _crash_signal(self) -> str:
+        """The name of the signal that crashed the process (segmentation fault, bus error,
+        abort ...), "" when it ended otherwise (a kill for lack of memory, an exit)."""
+        code = self.proc.returncode
+        if code is None or code >= 0 or -code not in CRASH_SIGNALS:
+            return ""
+        return f"{-code} ({signal.Signals(-code).name})"
 
     def _died(self) -> InputError:
         try:
@@ -288,8 +309,13 @@ class _Worker:
         tail = self.log.read().decode("utf-8", "replace").strip().splitlines()[-3:]
         said = f" It said: {' / '.join(tail)}" if tail else ""
         code = self.proc.returncode
-        how = (f"was killed (signal {-code}), most likely by the system for lack of memory"
-               if code is not None and code < 0 else f"ended with exit status {code}")
+        if code is not None and code < 0 and -code in CRASH_SIGNALS:
+            how = (f"crashed (signal {-code}, {signal.Signals(-code).name}), most likely in "
+                   "a decompression library given a damaged chunk")
+        elif code is not None and code < 0:
+            how = f"was killed (signal {-code}), most likely by the system for lack of memory"
+        else:
+            how = f"ended with exit status {code}"
         return InputError(
             f"A reader process of the streaming pass stopped: it {how}.{said}",
             where="streaming pass, reading the input",
