@@ -295,10 +295,12 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
         reach = (RING_GAP_LD + RING_MIN_COVER * (RING_OUTER_LD - RING_GAP_LD)) * ld_km
         warnings.append(
             f"{len(blind)} of {len(capes)} cape(s) could not be tested for a source: {names}. "
-            "They lie where the coast on one side is too short to measure a local "
+            f"{'They lie' if len(blind) > 1 else 'It lies'} where the coast on one side is "
+            "too short to measure a local "
             f"background (within about {reach:.0f} km of the end of a coastline segment: an "
             "open edge of the domain or a small island), so a source there is neither found "
-            "nor ruled out. Extend the domain along the coast to test them.")
+            "nor ruled out. Extend the domain along the coast to test "
+            f"{'them' if len(blind) > 1 else 'it'}.")
 
     st = frame.stations
     profiles = profiles.assign_coords(
