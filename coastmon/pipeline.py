@@ -179,6 +179,21 @@ FEW_WINDOWS = 6
 docs/detection-rates.md (two-year records with 120-day windows); fewer gives a note."""
 
 
+def few_windows_note(n_t: int, dt_days: float, settings: Settings) -> str:
+    """A note when the record holds fewer than ``FEW_WINDOWS`` windows of the longest eddy
+    period (the test of recurrent shedding then has little power); "" otherwise."""
+    longest = float(settings.signals.eddy_period_days[1])
+    n_windows = int(n_t * dt_days // max(longest, dt_days))
+    if n_windows >= FEW_WINDOWS:
+        return ""
+    return (f"The record holds only {n_windows} windows of the longest eddy period "
+            f"({longest:g} days), so the test of recurrent shedding has little power: a real "
+            "but weaker source can go unreported, and which sources pass can change with the "
+            "grid or the settings. Read the list as the clearest sources only; a record of "
+            f"{FEW_WINDOWS} windows ({FEW_WINDOWS * longest:.0f} days) or more gives the "
+            "sensitivity stated in docs/detection-rates.md.")
+
+
 def check_record_length(n_t: int, dt_days: float, settings: Settings,
                         where: str = "the input files' time axis") -> None:
     """Refuse a record too short for the eddy band, before any work is spent on it.
@@ -239,16 +254,9 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     dt = time_step_days(series)
     check_record_length(series.sizes["time"], dt, settings)
     warnings: list[str] = []
-    longest = float(settings.signals.eddy_period_days[1])
-    n_windows = int(series.sizes["time"] * dt // max(longest, dt))
-    if n_windows < FEW_WINDOWS:
-        warnings.append(
-            f"The record holds only {n_windows} windows of the longest eddy period "
-            f"({longest:g} days), so the test of recurrent shedding has little power: a real "
-            "but weaker source can go unreported, and which sources pass can change with the "
-            "grid or the settings. Read the list as the clearest sources only; a record of "
-            f"{FEW_WINDOWS} windows ({FEW_WINDOWS * longest:.0f} days) or more gives the "
-            "sensitivity stated in docs/detection-rates.md.")
+    short = few_windows_note(series.sizes["time"], dt, settings)
+    if short:
+        warnings.append(short)
     profiles = alongshore_profiles(series, frame, settings, ld_km)
     found = find_sources(profiles, frame, capes, settings, ld_km, series=series)
     gates = gate_set(series, frame, settings, dt, ld_km)

@@ -262,6 +262,18 @@ def test_capes_near_open_coast_ends_are_named_as_untested():
     assert list(blind["cape_id"]) == ["end", "other end"]
 
 
+def test_a_record_of_few_windows_gets_a_low_power_note():
+    from coastmon.pipeline import FEW_WINDOWS, few_windows_note
+
+    longest = SETTINGS.signals.eddy_period_days[1]
+    # check: arithmetic — 240 daily steps hold 2 windows of 120 days, 730 hold 6
+    assert "only 2 windows" in few_windows_note(240, 1.0, SETTINGS)
+    assert few_windows_note(int(FEW_WINDOWS * longest), 1.0, SETTINGS) == ""
+    assert "only 5 windows" in few_windows_note(int(FEW_WINDOWS * longest) - 1, 1.0, SETTINGS)
+    # the table of docs/detection-rates.md starts at 730 days with 120-day windows
+    assert FEW_WINDOWS <= 730 // longest
+
+
 def test_noisy_coast_end_makes_no_source():
     rng = np.random.default_rng(17)
     x = red_noise_coast(rng, 1460)
