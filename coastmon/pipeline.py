@@ -23,6 +23,7 @@ import shutil
 import time
 import warnings
 from collections.abc import Callable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -78,6 +79,7 @@ from coastmon.sources import (
 )
 from coastmon.sources.detect import nearshore_anomaly, time_step_days
 from coastmon.sources.feed import least_squares_speed, net_flux_density
+from coastmon.sources.plumes import time_mean_error
 from coastmon.stream import prestart_readers, run_pass
 from coastmon.stream.pass_ import closing_spare_readers
 from coastmon.stream.readers import close_spares
@@ -219,6 +221,23 @@ class Products:
     warnings: list[str] = field(default_factory=list)
 
 
+def _analyse(series: xr.Dataset, frame, capes: pd.DataFrame, settings: Settings,
+             ld_km: float, dt: float, ray_u_job) -> dict[str, Any]:
+    """Sources, gates, feeds, ranking and plume axes (the steps that depend on each
+    other); ``ray_u_job`` gives :func:`time_mean_error` of ``ray_u``."""
+    profiles = alongshore_profiles(series, frame, settings, ld_km)
+    found = find_sources(profiles, frame, capes, settings, ld_km, series=series)
+    gates = gate_set(series, frame, settings, dt, ld_km)
+    feed = offshore_feed(found, gates, frame, settings)
+    ranked, gates_df, boot = rank_sources(found, feed)
+    axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km,
+                               start_km=settings.sources.nearshore_km,
+                               mean_error=ray_u_job.result())
+    ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
+    return {"profiles": profiles, "found": found, "gates": gates, "ranked": ranked,
+            "gates_df": gates_df, "boot": boot, "axes": axes, "spacing": spacing}
+
+
 def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataFrame,
                    settings: Settings, ld_km: float) -> Products:
     """Signals, sources, feeds, plumes and spin-up from the pass's small outputs."""
@@ -227,14 +246,20 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     dt = time_step_days(series)
     check_record_length(series.sizes["time"], dt, settings)
     warnings: list[str] = []
-    profiles = alongshore_profiles(series, frame, settings, ld_km)
-    found = find_sources(profiles, frame, capes, settings, ld_km, series=series)
-    gates = gate_set(series, frame, settings, dt, ld_km)
-    feed = offshore_feed(found, gates, frame, settings)
-    ranked, gates_df, boot = rank_sources(found, feed)
-    axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km,
-                               start_km=settings.sources.nearshore_km)
-    ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
+    # The two sweeps over whole series that need no source run beside the others.
+    fields = [series[name].values for name in ("section_u", "section_v", "ray_u", "ray_v")
+              if name in series]
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        spin_job = pool.submit(spinup_curve, fields, series["time_days"].values)
+        ray_u_job = pool.submit(time_mean_error, series["ray_u"].values)
+        products = _analyse(series, frame, capes, settings, ld_km, dt, ray_u_job)
+        spin = spin_job.result()
+    ranked = products["ranked"]
+    profiles = products["profiles"]
+    found = products["found"]
+    gates = products["gates"]
+    gates_df, boot, axes, spacing = (products[k] for k in ("gates_df", "boot", "axes", "spacing"))
+
     stability = np.asarray(ranked["rank_stability"].values[:3], dtype=float) if len(ranked) \
         else np.zeros(0)
     stability = stability[np.isfinite(stability)]
@@ -255,9 +280,6 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     lat_mid = float(np.nanmedian(frame.stations["lat"]))
     c_rossby = float(long_rossby_speed(float(beta_parameter(lat_mid)), ld_km * 1000.0))
 
-    fields = [series[name].values for name in ("section_u", "section_v", "ray_u", "ray_v")
-              if name in series]
-    spin = spinup_curve(fields, series["time_days"].values)
     if not spin.settled:
         warnings.append(
             "The time mean has not settled: the running mean's pattern correlation with the "

@@ -54,3 +54,70 @@ def test_directional_split_on_a_window_equals_the_full_split(columns):
             # the same transforms on fewer rows and columns, equal to rounding
             np.testing.assert_allclose(got, want[:, a:b], rtol=1e-12,
                                        atol=1e-12 * np.abs(want).max())
+
+
+def _numpy_time_mean_error(values, block=256):
+    """Time mean and standard error with numpy sums per block (before issue 21)."""
+    shape = values.shape[1:]
+    n, s1, s2, lag, n_lag, s_a, s_b = (np.zeros(shape) for _ in range(7))
+    prev = None
+    for start in range(0, values.shape[0], block):
+        part = np.asarray(values[start:start + block], dtype=np.float64)
+        part_l = part if prev is None else np.concatenate([prev[None], part], axis=0)
+        ok = np.isfinite(part)
+        x = np.where(ok, part, 0.0)
+        n += ok.sum(axis=0)
+        s1 += x.sum(axis=0)
+        s2 += (x * x).sum(axis=0)
+        a, b = part_l[:-1], part_l[1:]
+        both = np.isfinite(a) & np.isfinite(b)
+        a0, b0 = np.where(both, a, 0.0), np.where(both, b, 0.0)
+        lag += (a0 * b0).sum(axis=0)
+        s_a += a0.sum(axis=0)
+        s_b += b0.sum(axis=0)
+        n_lag += both.sum(axis=0)
+        prev = part[-1]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = s1 / n
+        var = np.maximum(s2 / n - mean**2, 0.0)
+        cov = lag / n_lag - (s_a / n_lag) * (s_b / n_lag)
+        r1 = np.clip(np.where(var > 0, cov / var, 0.0), 0.0, 0.99)
+        n_eff = np.maximum(n * (1.0 - r1) / (1.0 + r1), 1.0)
+        se = np.sqrt(var * n / np.maximum(n - 1, 1) / n_eff)
+    few = n < 3
+    return np.where(few, np.nan, mean), np.where(few, np.nan, se)
+
+
+def test_compiled_time_mean_error_equals_numpy_sums():
+    from coastmon.sources.plumes import time_mean_error
+
+    rng = np.random.default_rng(5)
+    values = (0.1 + rng.standard_normal((1000, 12, 9)).cumsum(axis=0) * 0.01).astype(np.float32)
+    values[rng.random(values.shape) < 0.05] = np.nan       # scattered gaps
+    values[:, 3, 4] = np.nan                                # never valid
+    values[:998, 5, 5] = np.nan                             # too few steps
+    values[:, 7, 2] = 0.25                                  # constant
+    got = time_mean_error(values, block=64)
+    want = _numpy_time_mean_error(values, block=64)
+    for g, w in zip(got, want, strict=True):
+        assert np.array_equal(np.isnan(g), np.isnan(w))
+        # check: common practice, no source (the same sums in another order)
+        np.testing.assert_allclose(g, w, rtol=1e-10, atol=1e-14)
+
+
+def test_band_activity_on_threads_equals_each_station_alone():
+    from coastmon.config import Settings
+    from coastmon.signals import cwt_morlet, scale_average
+    from coastmon.sources.detect import band_activity
+
+    settings = Settings()
+    s = settings.signals
+    x = np.random.default_rng(8).standard_normal((9, 900)).cumsum(axis=1)
+    full, windows, period = band_activity(x, 1.0, settings)
+    for i in range(x.shape[0]):
+        wt = cwt_morlet(x[i:i + 1], 1.0, dj=s.dj, omega0=s.omega0,
+                        period_band=s.eddy_period_days)
+        averaged = scale_average(wt, s.eddy_period_days)
+        # check: common practice, no source (the same transform of one station alone)
+        np.testing.assert_allclose(full[i], averaged.mean(), rtol=1e-12)
+        assert np.isfinite(windows[:, i]).all() and period[i] > 0

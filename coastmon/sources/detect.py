@@ -56,7 +56,9 @@ Method
 from __future__ import annotations
 
 import math
+import os
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
@@ -68,7 +70,10 @@ from coastmon.io.pages import release
 from coastmon.signals import cwt_morlet, scale_average
 
 WAVELET_BUDGET_BYTES = 128 * 2**20
-"""Memory for the wavelet coefficients of one group of stations (complex, all scales)."""
+"""Memory for the wavelet coefficients of the groups of stations transformed at once
+(complex, all scales)."""
+WAVELET_THREADS = 4
+"""Most threads transforming groups of stations at once (one per core up to this)."""
 
 RING_GAP_LD = 2.0
 """Inner edge of the background rings, in deformation radii (the merging distance)."""
@@ -246,10 +251,13 @@ def band_activity(x: np.ndarray, dt: float, settings: Settings
     windows = np.empty((n_win, n_station))
     period = np.empty(n_station)
     # Stations in groups, so the wavelet coefficients stay within a fixed budget however
-    # long the record.
+    # long the record; the groups on all cores (the transforms release the GIL), each
+    # with its share of the budget.
+    workers = max(1, min(os.cpu_count() or 1, WAVELET_THREADS))
     per_station = 16 * n_time * (int(np.log2(max(n_time, 2)) / s.dj) + 1)
-    group = max(1, WAVELET_BUDGET_BYTES // per_station)
-    for g0 in range(0, n_station, group):
+    group = max(1, WAVELET_BUDGET_BYTES // workers // per_station)
+
+    def one_group(g0: int) -> None:
         g1 = min(n_station, g0 + group)
         wt = cwt_morlet(x[g0:g1], dt, dj=s.dj, omega0=s.omega0, period_band=band)
         averaged = scale_average(wt, band)
@@ -259,6 +267,9 @@ def band_activity(x: np.ndarray, dt: float, settings: Settings
         in_band = (wt.periods >= band[0]) & (wt.periods <= band[1])
         mean_power = wt.power[:, in_band].mean(axis=-1)
         period[g0:g1] = wt.periods[in_band][np.argmax(mean_power, axis=-1)]
+
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        list(pool.map(one_group, range(0, n_station, group)))
     return full, windows, period
 
 
