@@ -672,19 +672,20 @@ def merge_moments(
 
 
 @compiled(parallel=True)
-def _sample(starts, cols, weights, valid, x, out):  # pragma: no cover - compiled
+def _sample(cols, rows, weights, valid, x, out):  # pragma: no cover - compiled
     nt = x.shape[0]
     npts = out.shape[1]
     for t in prange(nt):
+        num = np.zeros(npts)
+        den = np.zeros(npts)
+        for k in range(cols.shape[0]):
+            val = np.float64(x[t, cols[k]])
+            if np.isfinite(val):
+                num[rows[k]] += weights[k] * val
+                den[rows[k]] += weights[k]
         for p in range(npts):
-            num = 0.0
-            den = 0.0
-            for k in range(starts[p], starts[p + 1]):
-                val = np.float64(x[t, cols[k]])
-                if np.isfinite(val):
-                    num += weights[k] * val
-                    den += weights[k]
-            out[t, p] = num / den if valid[p] and den != 0.0 else np.nan
+            ok = valid[p] and den[p] != 0.0
+            out[t, p] = num[p] / den[p] if ok else np.nan
     return 0
 
 
@@ -707,23 +708,21 @@ class Sampler:
 
     :math:`s_p = \sum_k W_{pk} x_k [x_k\ \mathrm{finite}] / \sum_k W_{pk} [x_k\ \mathrm{finite}]`,
     i.e. ``(W @ fill0(x)) / (W @ isfinite(x))``; NaN where no weight meets a finite value
-    or the row is not ``valid``. The non-zeros are stored row by row (each row's columns
-    in increasing order), so that each point's sums stay in registers and nothing is
-    scattered; the few grid values of a point's stencil are gathered from the snapshot.
+    or the row is not ``valid``. The non-zeros are stored in column order, so that each
+    snapshot is read in memory order.
     """
 
     def __init__(self, matrix, valid: np.ndarray) -> None:
         coo = matrix.tocoo()
-        order = np.lexsort((coo.col, coo.row))
+        order = np.lexsort((coo.row, coo.col))
         self.cols = np.ascontiguousarray(coo.col[order], dtype=np.int64)
+        self.rows = np.ascontiguousarray(coo.row[order], dtype=np.int64)
         self.weights = np.ascontiguousarray(coo.data[order], dtype=np.float64)
-        counts = np.bincount(coo.row, minlength=matrix.shape[0])
-        self.starts = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
         self.valid = np.ascontiguousarray(valid, dtype=np.bool_)
         self.n_points = matrix.shape[0]
 
     def __call__(self, x: np.ndarray) -> np.ndarray:
         """Sample ``x`` (t, n_grid); returns float32 (t, n_points)."""
         out = np.empty((x.shape[0], self.n_points), dtype=np.float32)
-        _sample(self.starts, self.cols, self.weights, self.valid, x, out)
+        _sample(self.cols, self.rows, self.weights, self.valid, x, out)
         return out
