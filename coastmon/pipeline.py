@@ -77,7 +77,7 @@ from coastmon.sources import (
     plume_axes,
     rank_sources,
 )
-from coastmon.sources.detect import nearshore_anomaly, time_step_days
+from coastmon.sources.detect import WAVELET_BUDGET_BYTES, nearshore_anomaly, time_step_days
 from coastmon.sources.feed import least_squares_speed, net_flux_density
 from coastmon.sources.plumes import time_mean_error
 from coastmon.stream import prestart_readers, run_pass
@@ -343,9 +343,16 @@ def source_spectra(series: xr.Dataset, frame, ranked: pd.DataFrame, settings: Se
     if len(ranked) == 0:
         return out
     x = np.nan_to_num(zeta[:, ranked["station"].values.astype(int)].T)
-    wt = cwt_morlet(x, dt, dj=s.dj, omega0=s.omega0)
+    # Sources in groups, so the coefficients stay within a fixed budget however long the
+    # record (each source's transform is independent of the others).
+    n_scales = int(np.log2(max(x.shape[1], 2)) / s.dj) + 1
+    group = max(1, WAVELET_BUDGET_BYTES // (16 * x.shape[1] * n_scales))
+    spectra = []
+    for g0 in range(0, x.shape[0], group):
+        wt = cwt_morlet(x[g0:g0 + group], dt, dj=s.dj, omega0=s.omega0)
+        spectra.append(wt.power.mean(axis=-1))
     out["source_wavelet_spectrum"] = xr.DataArray(
-        wt.power.mean(axis=-1), dims=("source", "period"),
+        np.concatenate(spectra), dims=("source", "period"),
         attrs={"long_name": "time-averaged wavelet power of near-shore relative vorticity",
                "units": "s-2"})
     out = out.assign_coords(period=("period", wt.periods, {"long_name": "Fourier period",

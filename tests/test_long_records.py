@@ -121,3 +121,20 @@ def test_band_activity_on_threads_equals_each_station_alone():
         # check: common practice, no source (the same transform of one station alone)
         np.testing.assert_allclose(full[i], averaged.mean(), rtol=1e-12)
         assert np.isfinite(windows[:, i]).all() and period[i] > 0
+
+
+def test_block_bootstrap_by_counts_equals_the_loop_over_resamples():
+    from coastmon.sources.feed import block_bootstrap_means
+
+    series = np.random.default_rng(2).standard_normal((700, 5, 3))
+    for block in (1, 7, 64, 700):
+        got = block_bootstrap_means(series, block, 50, np.random.default_rng(9))
+        # the loop over resamples (before issue 21), with the same draws
+        rng = np.random.default_rng(9)
+        n_blocks = int(np.ceil(700 / block))
+        csum = np.concatenate([np.zeros((1, 5, 3)), np.cumsum(series, axis=0)])
+        starts = rng.integers(0, 700 - block + 1, size=(50, n_blocks))
+        want = np.stack([(csum[s + block] - csum[s]).sum(axis=0) / (n_blocks * block)
+                         for s in starts])
+        # check: Künsch 1989 (moving-block bootstrap), the same sums in another order
+        np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-14)

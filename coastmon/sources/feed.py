@@ -52,6 +52,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 import scipy.fft
+import scipy.sparse
 import xarray as xr
 
 from coastmon.config import Settings
@@ -299,11 +300,16 @@ def block_bootstrap_means(series: np.ndarray, block: int, n_boot: int,
     block = int(min(max(block, 1), n_t))
     n_blocks = int(np.ceil(n_t / block))
     csum = np.concatenate([np.zeros((1,) + series.shape[1:]), np.cumsum(series, axis=0)])
-    starts = rng.integers(0, n_t - block + 1, size=(n_boot, n_blocks))
-    out = np.empty((n_boot,) + series.shape[1:])
-    for i in range(n_boot):
-        out[i] = (csum[starts[i] + block] - csum[starts[i]]).sum(axis=0) / (n_blocks * block)
-    return out
+    n_starts = n_t - block + 1
+    starts = rng.integers(0, n_starts, size=(n_boot, n_blocks))
+    # Each resample's sum is the sum of its blocks' sums: the number of times each start
+    # is drawn times that block's sum, one matrix product for all resamples.
+    block_sums = (csum[block:] - csum[:n_starts]).reshape(n_starts, -1)
+    counts = scipy.sparse.csr_matrix(
+        (np.ones(starts.size), (np.repeat(np.arange(n_boot), n_blocks), starts.ravel())),
+        shape=(n_boot, n_starts))
+    out = counts @ block_sums / (n_blocks * block)
+    return out.reshape((n_boot,) + series.shape[1:])
 
 
 def decorrelation_steps(x: np.ndarray) -> float:
