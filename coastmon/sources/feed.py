@@ -214,9 +214,14 @@ def along_derivative(q: np.ndarray, dd_m: float) -> np.ndarray:
     On a piece of a longer line, the values two or more columns inside the piece's ends
     are those of the whole line.
     """
-    out = np.gradient(q, dd_m, axis=1)
-    if q.shape[1] >= 5:
-        out[:, 2:-2] = (8.0 * (q[:, 3:-1] - q[:, 1:-3]) - (q[:, 4:] - q[:, :-4])) / (12.0 * dd_m)
+    if q.shape[1] < 5:
+        return np.gradient(q, dd_m, axis=1)
+    out = np.empty_like(q, dtype=np.float64)
+    out[:, 0] = (q[:, 1] - q[:, 0]) / dd_m                  # as numpy.gradient's ends
+    out[:, 1] = (q[:, 2] - q[:, 0]) / (2.0 * dd_m)
+    out[:, -2] = (q[:, -1] - q[:, -3]) / (2.0 * dd_m)
+    out[:, -1] = (q[:, -1] - q[:, -2]) / dd_m
+    out[:, 2:-2] = (8.0 * (q[:, 3:-1] - q[:, 1:-3]) - (q[:, 4:] - q[:, :-4])) / (12.0 * dd_m)
     return out
 
 
