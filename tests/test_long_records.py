@@ -138,3 +138,24 @@ def test_block_bootstrap_by_counts_equals_the_loop_over_resamples():
                          for s in starts])
         # check: Künsch 1989 (moving-block bootstrap), the same sums in another order
         np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-14)
+
+
+def test_nearshore_anomaly_by_station_blocks_equals_all_at_once(monkeypatch):
+    import warnings
+
+    from coastmon.sources import detect
+
+    rng = np.random.default_rng(4)
+    section = rng.standard_normal((300, 11, 7)).astype(np.float32)
+    section[rng.random(section.shape) < 0.1] = np.nan
+    section[:, 4, :] = np.nan                                  # a station never valid
+    offsets = np.array([0.0, 10, 20, 30, 40, 60, 80])
+    near = offsets <= 30.0
+    sub = section[:, :, near].astype(np.float64)               # all stations at once
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        want = np.nanmean(sub - np.nanmean(sub, axis=0, keepdims=True), axis=2)
+    monkeypatch.setattr(detect, "ANOMALY_BUDGET_BYTES", 16 * 300 * 4 * 3)  # 3 stations
+    got = detect.nearshore_anomaly(section, offsets, 30.0)
+    # check: common practice, no source (the same means, a block of stations at a time)
+    np.testing.assert_array_equal(got, want)

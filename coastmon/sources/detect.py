@@ -72,6 +72,8 @@ from coastmon.signals import cwt_morlet, scale_average
 WAVELET_BUDGET_BYTES = 128 * 2**20
 """Memory for the wavelet coefficients of the groups of stations transformed at once
 (complex, all scales)."""
+ANOMALY_BUDGET_BYTES = 64 * 2**20
+"""Memory for the float64 copies of the near-shore section of a block of stations."""
 WAVELET_THREADS = 4
 """Most threads transforming groups of stations at once (one per core up to this)."""
 
@@ -110,12 +112,19 @@ def nearshore_anomaly(section: np.ndarray, offsets_km: np.ndarray, nearshore_km:
     if not near.any():
         near = np.zeros_like(near)
         near[0] = True
-    sub = np.asarray(section[:, :, near], dtype=np.float64)
-    release(section)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
-        anomaly = sub - np.nanmean(sub, axis=0, keepdims=True)
-        return np.nanmean(anomaly, axis=2)
+    n_t, n_station = section.shape[:2]
+    out = np.empty((n_t, n_station))
+    # A block of stations at a time (the files are station-major), so the float64 copies
+    # stay within a fixed budget however long the record.
+    block = max(1, ANOMALY_BUDGET_BYTES // (16 * n_t * int(near.sum())))
+    for s0 in range(0, n_station, block):
+        sub = np.asarray(section[:, s0:s0 + block][:, :, near], dtype=np.float64)
+        release(section)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
+            anomaly = sub - np.nanmean(sub, axis=0, keepdims=True)
+            out[:, s0:s0 + block] = np.nanmean(anomaly, axis=2)
+    return out
 
 
 def _fill_gaps(x: np.ndarray) -> np.ndarray:

@@ -73,6 +73,8 @@ PAD_FACTOR = 2
 """Length of the zero-padded line in the directional split, as a multiple of the line."""
 N_SERIES = 6
 """Per-ray series: energy, speed numerator and denominator, for west then east."""
+BOOTSTRAP_COLUMNS = 96
+"""Series resampled at once by :func:`block_bootstrap_means` (bounds its cumulative sums)."""
 
 
 # --------------------------------------------------------------------------- physics
@@ -304,16 +306,21 @@ def block_bootstrap_means(series: np.ndarray, block: int, n_boot: int,
     n_t = series.shape[0]
     block = int(min(max(block, 1), n_t))
     n_blocks = int(np.ceil(n_t / block))
-    csum = np.concatenate([np.zeros((1,) + series.shape[1:]), np.cumsum(series, axis=0)])
     n_starts = n_t - block + 1
     starts = rng.integers(0, n_starts, size=(n_boot, n_blocks))
     # Each resample's sum is the sum of its blocks' sums: the number of times each start
-    # is drawn times that block's sum, one matrix product for all resamples.
-    block_sums = (csum[block:] - csum[:n_starts]).reshape(n_starts, -1)
+    # is drawn times that block's sum, one matrix product for all resamples; a few
+    # columns at a time, so the cumulative sums stay small however long the record.
     counts = scipy.sparse.csr_matrix(
         (np.ones(starts.size), (np.repeat(np.arange(n_boot), n_blocks), starts.ravel())),
         shape=(n_boot, n_starts))
-    out = counts @ block_sums / (n_blocks * block)
+    flat = series.reshape(n_t, -1)
+    out = np.empty((n_boot, flat.shape[1]))
+    for c0 in range(0, flat.shape[1], BOOTSTRAP_COLUMNS):
+        part = flat[:, c0:c0 + BOOTSTRAP_COLUMNS]
+        csum = np.concatenate([np.zeros((1, part.shape[1])), np.cumsum(part, axis=0)])
+        out[:, c0:c0 + part.shape[1]] = counts @ (csum[block:] - csum[:n_starts])
+    out /= n_blocks * block
     return out.reshape((n_boot,) + series.shape[1:])
 
 
@@ -492,13 +499,17 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
 
     # Rays on all cores (the FFTs release the GIL), in blocks whose series pages are
     # released after each, so they do not pile up in memory.
+    # Each ray's series goes straight into its column (no second copy of them all).
     rows = []
+    nominal = np.empty((n_t, int((direction == -1).sum()), N_SERIES))
     workers = max(1, min(os.cpu_count() or 1, GATE_THREADS))
     block = 8 * workers
     with ThreadPoolExecutor(max_workers=workers) as pool:
         for b0 in range(0, ru.shape[1], block):
-            rows += [r for r in pool.map(one_ray, range(b0, min(ru.shape[1], b0 + block)))
-                     if r is not None]
+            for r in pool.map(one_ray, range(b0, min(ru.shape[1], b0 + block))):
+                if r is not None:
+                    nominal[:, len(rows)] = r[3]
+                    rows.append(r[:3] + (None,) + r[4:])
             release(ru, rv, rh)
     if not rows:
         return _empty_gates(n_t, configs, has_ssh)
@@ -507,7 +518,7 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         station=np.asarray(cols[0], dtype=int),
         lat=np.asarray(cols[1], dtype=float),
         lon=np.asarray(cols[2], dtype=float),
-        series=np.stack(cols[3], axis=1),
+        series=nominal[:, :len(rows)],
         means=np.stack(cols[4], axis=1),
         configs=configs,
         kflux=np.asarray(cols[5], dtype=float),
