@@ -157,5 +157,7 @@ def test_nearshore_anomaly_by_station_blocks_equals_all_at_once(monkeypatch):
         want = np.nanmean(sub - np.nanmean(sub, axis=0, keepdims=True), axis=2)
     monkeypatch.setattr(detect, "ANOMALY_BUDGET_BYTES", 16 * 300 * 4 * 3)  # 3 stations
     got = detect.nearshore_anomaly(section, offsets, 30.0)
-    # check: common practice, no source (the same means, a block of stations at a time)
-    np.testing.assert_array_equal(got, want)
+    # check: common practice, no source (the same means, a block of stations at a time;
+    # numpy may add the time steps in another order for a narrower block: last-bit changes)
+    assert np.array_equal(np.isnan(got), np.isnan(want))
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-15)
