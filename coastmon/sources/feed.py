@@ -73,6 +73,8 @@ PAD_FACTOR = 2
 """Length of the zero-padded line in the directional split, as a multiple of the line."""
 N_SERIES = 6
 """Per-ray series: energy, speed numerator and denominator, for west then east."""
+TIME_BLOCK = 1024
+"""Time steps of a ray's band-passed parts reduced to gate series at once."""
 BOOTSTRAP_COLUMNS = 96
 """Series resampled at once by :func:`block_bootstrap_means` (bounds its cumulative sums)."""
 
@@ -469,23 +471,27 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         last = max(int(windows[k][-1]) for k in used) - lo + 1
         parts = [directional_components(f, dt_days, dd_km, band, columns=(first, last))
                  for f in fields]
-        sums = {}
-        for name in ("plus", "minus"):      # +d is west along a westward ray
-            sums[name] = (sum(p[name][0] ** 2 for p in parts),
-                          sum(-p[name][1] * p[name][2] for p in parts),
-                          sum(p[name][2] ** 2 for p in parts))
+        # Per time step, window by window; a block of steps at a time so that the
+        # products stay in the processor's caches on long records.
+        stacks = np.empty((len(configs), n_t, N_SERIES))
+        for t0 in range(0, n_t, TIME_BLOCK):
+            t1 = min(n_t, t0 + TIME_BLOCK)
+            for j, name in enumerate(("plus", "minus")):  # +d is west along a westward ray
+                q = [p[name][0][t0:t1] for p in parts]
+                q_t = [p[name][1][t0:t1] for p in parts]
+                q_d = [p[name][2][t0:t1] for p in parts]
+                q2 = sum(x ** 2 for x in q)
+                num = sum(-a * b for a, b in zip(q_t, q_d, strict=True))
+                den = sum(x ** 2 for x in q_d)
+                for k in used:
+                    sel = windows[k] - lo - first
+                    stacks[k, t0:t1, 3 * j] = 0.5 * q2[:, sel].mean(axis=1)
+                    stacks[k, t0:t1, 3 * j + 1] = num[:, sel].mean(axis=1)
+                    stacks[k, t0:t1, 3 * j + 2] = den[:, sel].mean(axis=1)
         means = np.full((len(configs), N_SERIES), np.nan)
-        nominal = None
         for k in used:
-            sel = windows[k] - lo - first
-            cols = []
-            for name in ("plus", "minus"):
-                q2, num, den = (x[:, sel] for x in sums[name])
-                cols += [0.5 * q2.mean(axis=1), num.mean(axis=1), den.mean(axis=1)]
-            stack = np.stack(cols, axis=1)
-            means[k] = stack.mean(axis=0)
-            if k == 0:
-                nominal = stack
+            means[k] = stacks[k].mean(axis=0)
+        nominal = stacks[0]
         ua = u[:, windows[0]] - u[:, windows[0]].mean(axis=0)
         va = v[:, windows[0]] - v[:, windows[0]].mean(axis=0)
         kflux = float(np.mean(-ua * 0.5 * (ua**2 + va**2)))
