@@ -222,7 +222,7 @@ class Products:
 
 
 def _analyse(series: xr.Dataset, frame, capes: pd.DataFrame, settings: Settings,
-             ld_km: float, dt: float, ray_u_job) -> dict[str, Any]:
+             ld_km: float, dt: float, ray_u_job) -> tuple:
     """Sources, gates, feeds, ranking and plume axes (the steps that depend on each
     other); ``ray_u_job`` gives :func:`time_mean_error` of ``ray_u``."""
     profiles = alongshore_profiles(series, frame, settings, ld_km)
@@ -234,8 +234,7 @@ def _analyse(series: xr.Dataset, frame, capes: pd.DataFrame, settings: Settings,
                                start_km=settings.sources.nearshore_km,
                                mean_error=ray_u_job.result())
     ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
-    return {"profiles": profiles, "found": found, "gates": gates, "ranked": ranked,
-            "gates_df": gates_df, "boot": boot, "axes": axes, "spacing": spacing}
+    return profiles, found, gates, ranked, gates_df, boot, axes, spacing
 
 
 def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataFrame,
@@ -252,14 +251,9 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     with ThreadPoolExecutor(max_workers=1) as pool:
         spin_job = pool.submit(spinup_curve, fields, series["time_days"].values)
         ray_u_job = pool.submit(time_mean_error, series["ray_u"].values)
-        products = _analyse(series, frame, capes, settings, ld_km, dt, ray_u_job)
+        profiles, found, gates, ranked, gates_df, boot, axes, spacing = _analyse(
+            series, frame, capes, settings, ld_km, dt, ray_u_job)
         spin = spin_job.result()
-    ranked = products["ranked"]
-    profiles = products["profiles"]
-    found = products["found"]
-    gates = products["gates"]
-    gates_df, boot, axes, spacing = (products[k] for k in ("gates_df", "boot", "axes", "spacing"))
-
     stability = np.asarray(ranked["rank_stability"].values[:3], dtype=float) if len(ranked) \
         else np.zeros(0)
     stability = stability[np.isfinite(stability)]
