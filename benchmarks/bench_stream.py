@@ -217,7 +217,8 @@ class PeakMemory:
         self._thread.join()
 
 
-def measure_recipe(path: Path) -> dict:
+def measure_recipe(path: Path | list[Path]) -> dict:
+    """The recipe on one file, or on several joined in time."""
     import dask
     import xarray as xr
 
@@ -225,7 +226,8 @@ def measure_recipe(path: Path) -> dict:
     from coastmon.grid.metrics import GridMetrics
 
     start = time.perf_counter()
-    ds = xr.open_dataset(path, chunks={"time": TIME_CHUNK})
+    ds = xr.open_mfdataset(path, chunks={"time": TIME_CHUNK}, combine="by_coords") \
+        if isinstance(path, list) else xr.open_dataset(path, chunks={"time": TIME_CHUNK})
     metrics = GridMetrics.from_lonlat(ds["lon"].values, ds["lat"].values)
     u, v = ds["u"], ds["v"]
     core_dims = [["y", "x"], ["y", "x"]]

@@ -23,6 +23,7 @@ import shutil
 import time
 import warnings
 from collections.abc import Callable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -80,11 +81,13 @@ from coastmon.sources.detect import (
     RING_GAP_LD,
     RING_MIN_COVER,
     RING_OUTER_LD,
+    WAVELET_BUDGET_BYTES,
     nearshore_anomaly,
     time_step_days,
     untested_capes,
 )
 from coastmon.sources.feed import least_squares_speed, net_flux_density
+from coastmon.sources.plumes import time_mean_error
 from coastmon.stream import prestart_readers, run_pass
 from coastmon.stream.pass_ import closing_spare_readers
 from coastmon.stream.readers import close_spares
@@ -246,6 +249,22 @@ class Products:
     warnings: list[str] = field(default_factory=list)
 
 
+def _analyse(series: xr.Dataset, frame, capes: pd.DataFrame, settings: Settings,
+             ld_km: float, dt: float, ray_u_job) -> tuple:
+    """Sources, gates, feeds, ranking and plume axes (the steps that depend on each
+    other); ``ray_u_job`` gives :func:`time_mean_error` of ``ray_u``."""
+    profiles = alongshore_profiles(series, frame, settings, ld_km)
+    found = find_sources(profiles, frame, capes, settings, ld_km, series=series)
+    gates = gate_set(series, frame, settings, dt, ld_km)
+    feed = offshore_feed(found, gates, frame, settings)
+    ranked, gates_df, boot = rank_sources(found, feed)
+    axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km,
+                               start_km=settings.sources.nearshore_km,
+                               mean_error=ray_u_job.result())
+    ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
+    return profiles, found, gates, ranked, gates_df, boot, axes, spacing
+
+
 def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataFrame,
                    settings: Settings, ld_km: float) -> Products:
     """Signals, sources, feeds, plumes and spin-up from the pass's small outputs."""
@@ -257,14 +276,15 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     short = few_windows_note(series.sizes["time"], dt, settings)
     if short:
         warnings.append(short)
-    profiles = alongshore_profiles(series, frame, settings, ld_km)
-    found = find_sources(profiles, frame, capes, settings, ld_km, series=series)
-    gates = gate_set(series, frame, settings, dt, ld_km)
-    feed = offshore_feed(found, gates, frame, settings)
-    ranked, gates_df, boot = rank_sources(found, feed)
-    axes, spacing = plume_axes(series, frame, ranked, settings.sources.gate_offset_km,
-                               start_km=settings.sources.nearshore_km)
-    ranked["zonal_extent_km"] = [a["extent_km"] for a in axes]
+    # The two sweeps over whole series that need no source run beside the others.
+    fields = [series[name].values for name in ("section_u", "section_v", "ray_u", "ray_v")
+              if name in series]
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        spin_job = pool.submit(spinup_curve, fields, series["time_days"].values)
+        ray_u_job = pool.submit(time_mean_error, series["ray_u"].values)
+        profiles, found, gates, ranked, gates_df, boot, axes, spacing = _analyse(
+            series, frame, capes, settings, ld_km, dt, ray_u_job)
+        spin = spin_job.result()
     stability = np.asarray(ranked["rank_stability"].values[:3], dtype=float) if len(ranked) \
         else np.zeros(0)
     stability = stability[np.isfinite(stability)]
@@ -285,9 +305,6 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     lat_mid = float(np.nanmedian(frame.stations["lat"]))
     c_rossby = float(long_rossby_speed(float(beta_parameter(lat_mid)), ld_km * 1000.0))
 
-    fields = [series[name].values for name in ("section_u", "section_v", "ray_u", "ray_v")
-              if name in series]
-    spin = spinup_curve(fields, series["time_days"].values)
     if not spin.settled:
         warnings.append(
             "The time mean has not settled: the running mean's pattern correlation with the "
@@ -364,9 +381,16 @@ def source_spectra(series: xr.Dataset, frame, ranked: pd.DataFrame, settings: Se
     if len(ranked) == 0:
         return out
     x = np.nan_to_num(zeta[:, ranked["station"].values.astype(int)].T)
-    wt = cwt_morlet(x, dt, dj=s.dj, omega0=s.omega0)
+    # Sources in groups, so the coefficients stay within a fixed budget however long the
+    # record (each source's transform is independent of the others).
+    n_scales = int(np.log2(max(x.shape[1], 2)) / s.dj) + 1
+    group = max(1, WAVELET_BUDGET_BYTES // (16 * x.shape[1] * n_scales))
+    spectra = []
+    for g0 in range(0, x.shape[0], group):
+        wt = cwt_morlet(x[g0:g0 + group], dt, dj=s.dj, omega0=s.omega0)
+        spectra.append(wt.power.mean(axis=-1))
     out["source_wavelet_spectrum"] = xr.DataArray(
-        wt.power.mean(axis=-1), dims=("source", "period"),
+        np.concatenate(spectra), dims=("source", "period"),
         attrs={"long_name": "time-averaged wavelet power of near-shore relative vorticity",
                "units": "s-2"})
     out = out.assign_coords(period=("period", wt.periods, {"long_name": "Fourier period",

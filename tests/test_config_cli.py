@@ -96,7 +96,7 @@ def test_an_internal_error_is_reported_without_a_traceback(tmp_path, monkeypatch
 
 def test_the_command_starts_without_the_slow_scipy_modules():
     # check: common practice, no source (scipy.signal and scipy.stats take about a second
-    # to import; analyze, coast and update need neither, only `compare` and the tests do)
+    # to import; the functions that need them import them when they run)
     code = ("import sys, coastmon.cli, coastmon.pipeline; "
             "print([m for m in ('scipy.signal', 'scipy.stats') if m in sys.modules])")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,

@@ -402,19 +402,3 @@ def test_layers_round_trip_through_geopackage(tmp_path, iberia_capes):
     np.testing.assert_allclose(points.geometry.x, iberia_capes["lon"], atol=1e-9)
     assert {"cape_id", "curvature_per_km", "scale_km", "protrusion_km"} <= set(points.columns)
     assert {"segment_id", "length_km", "closed", "island"} <= set(lines.columns)
-
-
-@settings(max_examples=200, deadline=None)
-@given(st.lists(st.floats(-5, 5, allow_nan=False), min_size=3, max_size=200),
-       st.booleans())
-def test_peak_prominences_are_scipys(values, rounded):
-    # check: scipy.signal.peak_prominences (no window), the reference implementation
-    import scipy.signal
-
-    from coastmon.geometry.capes import peak_prominences
-
-    x = np.round(np.asarray(values), 1) if rounded else np.asarray(values)  # plateaus too
-    peaks = scipy.signal.find_peaks(x)[0]
-    if peaks.size:
-        assert np.array_equal(peak_prominences(x, peaks.astype(np.int64)),
-                              scipy.signal.peak_prominences(x, peaks)[0])

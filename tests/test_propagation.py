@@ -147,22 +147,3 @@ def test_default_deformation_radius_magnitudes() -> None:
     assert 150.0 < equatorial < 500.0  # check: from memory (Gill 1982 §11: equatorial radius (c/beta)^(1/2) of a few hundred km)
     radii = default_deformation_radius_km(np.array([0.0, 5.0, 10.0, 20.0, 40.0, 60.0]))
     assert np.all(np.diff(radii) < 0)  # check: Gill 1982 §7.5 (L_d = c/|f| shrinks poleward)
-
-
-@pytest.mark.parametrize("n", [0, 1, 2, 3, 8, 33, 1101, 4400])
-def test_periodic_hann_window_is_scipys(n):
-    # check: scipy.signal.windows.hann(n, sym=False), the reference implementation
-    from coastmon.signals.propagation import _hann
-
-    assert np.array_equal(_hann(n), scipy.signal.windows.hann(n, sym=False))
-
-
-@pytest.mark.parametrize("df", [1, 2, 3, 7, 30])
-def test_student_t_quantile_is_scipys(df):
-    # check: scipy.stats.t.ppf (the interval of propagation_speed uses scipy.special.stdtrit)
-    import scipy.special
-    import scipy.stats
-
-    for level in (0.9, 0.95, 0.99):
-        q = 0.5 * (1.0 + level)
-        assert scipy.special.stdtrit(df, q) == scipy.stats.t.ppf(q, df)

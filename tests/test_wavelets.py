@@ -190,15 +190,3 @@ def test_user_errors_are_reported() -> None:
     other = cwt_morlet(np.random.default_rng(0).standard_normal(64), dt=1.0, omega0=8.0)
     with pytest.raises(SettingsError):
         scale_average_significance(other, 0.3, (4.0, 16.0))
-
-
-def test_chi_square_quantile_is_scipys():
-    # check: scipy.stats.chi2.ppf, the reference implementation, bit for bit
-    import scipy.stats
-
-    from coastmon.signals.wavelets import _chi2_ppf
-
-    dof = np.array([1.0, 2.0, 2.5, 5.5, 17.3, 120.0])
-    for level in (0.9, 0.95, 0.99):
-        assert np.array_equal(_chi2_ppf(level, dof), scipy.stats.chi2.ppf(level, dof))
-        assert _chi2_ppf(level, 2.0) == scipy.stats.chi2.ppf(level, 2.0)

@@ -17,7 +17,6 @@ import pyproj
 from scipy import ndimage
 from shapely.geometry import LineString, Point
 
-from coastmon.compiled import compiled
 from coastmon.config import CoastSettings
 from coastmon.errors import InputError
 from coastmon.geometry.coastline import Coastline, Segment
@@ -187,31 +186,6 @@ def _local_maxima(kappa: np.ndarray, closed: bool) -> np.ndarray:
     return idx
 
 
-@compiled()
-def peak_prominences(x, peaks):  # pragma: no cover - compiled
-    """Topographic prominence of each peak of ``x``, as ``scipy.signal.peak_prominences``
-    defines it (no window): from the peak, walk left and right while the signal is no higher
-    than the peak; the higher of the two minima met is the base, and the prominence is the
-    peak's height above it. (Written here so that the command need not import
-    ``scipy.signal``, which takes about a second.)"""
-    out = np.empty(peaks.shape[0])
-    for k in range(peaks.shape[0]):
-        p = peaks[k]
-        top = x[p]
-        left = top
-        i = p
-        while i >= 0 and x[i] <= top:
-            left = min(left, x[i])
-            i -= 1
-        right = top
-        i = p
-        while i < x.shape[0] and x[i] <= top:
-            right = min(right, x[i])
-            i += 1
-        out[k] = top - max(left, right)
-    return out
-
-
 def _distance_along(a: np.ndarray, b: np.ndarray, length: float, closed: bool) -> np.ndarray:
     d = np.abs(a - b)
     return np.minimum(d, length - d) if closed else d
@@ -236,10 +210,12 @@ def _track_segment(seg: Segment, settings: CoastSettings) -> list[dict]:
     kappa0 = kappas[0]
     peaks = _local_maxima(kappa0, closed)
     if peaks.size:
+        from scipy.signal import peak_prominences  # a second to import; only capes need it
+
         prom = peak_prominences(
             np.concatenate([kappa0, kappa0, kappa0]) if closed else kappa0,
-            (peaks + (kappa0.size if closed else 0)).astype(np.int64),
-        )
+            peaks + (kappa0.size if closed else 0),
+        )[0]
         floor = 0.1 * settings.min_protrusion_km / scales[0] ** 2
         keep = (prom >= floor) & (prom >= 0.5 * kappa0[peaks])
         if closed:
@@ -319,7 +295,7 @@ def find_capes(coastline: Coastline, settings: CoastSettings) -> pd.DataFrame:
     -----
     1. Curvature kappa(s; sigma) at every sigma in ``scales_km`` (see ``curvature``).
     2. At the finest scale, candidates are local maxima with kappa > 0 (convex toward the
-       sea) whose peak prominence (:func:`peak_prominences`) is at least
+       sea) whose peak prominence (``scipy.signal.peak_prominences``) is at least
        0.1 * min_protrusion_km / sigma_1^2 and at least half the peak curvature; on a
        ring of length L the peak curvature must be at least twice the mean 2 pi / L (the
        broad back of an island is not a cape, its tips are); on open

@@ -117,15 +117,6 @@ class SpeedEstimate:
     level: float
 
 
-def _hann(n: int) -> np.ndarray:
-    """Periodic Hann window of ``n`` points, 0.5 - 0.5 cos(2 pi k / n), computed as
-    ``scipy.signal.windows.hann(n, sym=False)`` computes it (same bits; written here so that
-    the command need not import ``scipy.signal``, about a second)."""
-    if n <= 1:
-        return np.ones(n)
-    return 0.5 + 0.5 * np.cos(np.linspace(-np.pi, np.pi, n + 1)[:-1])
-
-
 def _complete_block(field: np.ndarray) -> tuple[np.ndarray, tuple[int, int]]:
     """Longest run of distance columns with a complete (all finite) record."""
     data = np.asarray(field, dtype=float)
@@ -210,7 +201,9 @@ def wavenumber_frequency(field: np.ndarray, dt: float, dd: float,
     n_t, n_d = data.shape
     detrended = detrend_time(data)
     if taper:
-        window = np.outer(_hann(n_t), _hann(n_d))
+        from scipy.signal.windows import hann  # only the tapered spectrum needs it
+
+        window = np.outer(hann(n_t, sym=False), hann(n_d, sym=False))
     else:
         window = np.ones_like(detrended)
     spectrum = scipy.fft.fft(scipy.fft.rfft(detrended * window, axis=0), axis=1)
@@ -479,7 +472,9 @@ def propagation_speed(field: np.ndarray, dt: float, dd: float,
     speed = radon_speed(data, dt, dd, direction=searched)
     parts = np.array([radon_speed(data[i * segment:(i + 1) * segment], dt, dd,
                                   direction=searched) for i in range(n_segments)])
-    half = float(scipy.special.stdtrit(n_segments - 1, 0.5 * (1.0 + level))
+    import scipy.stats  # only the interval needs it (half a second to import)
+
+    half = float(scipy.stats.t.ppf(0.5 * (1.0 + level), n_segments - 1)
                  * np.std(parts, ddof=1) / np.sqrt(n_segments))
     return SpeedEstimate(speed=speed, speed_lo=speed - half, speed_hi=speed + half,
                          spectral_speed=spectral, direction=sign, n_segments=n_segments,

@@ -23,7 +23,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.fft
-import scipy.special
 
 from coastmon.errors import RecordError, SettingsError
 
@@ -77,14 +76,6 @@ class WaveletTransform:
     def n_times(self) -> int:
         """Number of time steps of the transformed series."""
         return int(self.coefs.shape[-1])
-
-
-def _chi2_ppf(level, dof):
-    """Quantile ``level`` of the chi-square distribution with ``dof`` degrees of freedom,
-    ``2 P^{-1}(dof / 2, level)`` with P the regularised lower incomplete gamma function, as
-    ``scipy.stats.chi2.ppf`` computes it (same bits, without importing ``scipy.stats``,
-    about half a second)."""
-    return 2 * scipy.special.gammaincinv(np.asarray(dof) / 2, level)
 
 
 def fourier_factor(omega0: float) -> float:
@@ -416,7 +407,9 @@ def red_noise_significance(
     """
     nu = np.asarray(dof, dtype=float)
     spectrum = red_noise_spectrum(alpha, periods, dt)
-    return np.asarray(variance, dtype=float)[..., None] * spectrum * _chi2_ppf(level, nu) / nu
+    import scipy.stats  # half a second to import; only the significance tests need it
+
+    return np.asarray(variance, dtype=float)[..., None] * spectrum * scipy.stats.chi2.ppf(level, nu) / nu
 
 
 def global_spectrum(wt: WaveletTransform, exclude_coi: bool = False) -> np.ndarray:
@@ -583,7 +576,9 @@ def scale_average_significance(wt: WaveletTransform, alpha: np.ndarray | float,
     spectrum = red_noise_spectrum(alpha, wt.periods[selected], wt.dt)
     p_bar = s_avg * np.sum(spectrum / scales, axis=-1)
     factor = wt.dj * wt.dt / (C_DELTA_MORLET6 * s_avg)
-    return np.asarray(wt.variance) * factor * p_bar * _chi2_ppf(level, dof) / dof
+    import scipy.stats  # half a second to import; only the significance tests need it
+
+    return np.asarray(wt.variance) * factor * p_bar * scipy.stats.chi2.ppf(level, dof) / dof
 
 
 def significant_fraction(wt: WaveletTransform, sig: np.ndarray,

@@ -56,7 +56,9 @@ Method
 from __future__ import annotations
 
 import math
+import os
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
@@ -68,7 +70,12 @@ from coastmon.io.pages import release
 from coastmon.signals import cwt_morlet, scale_average
 
 WAVELET_BUDGET_BYTES = 128 * 2**20
-"""Memory for the wavelet coefficients of one group of stations (complex, all scales)."""
+"""Memory for the wavelet coefficients of the groups of stations transformed at once
+(complex, all scales)."""
+ANOMALY_BUDGET_BYTES = 64 * 2**20
+"""Memory for the float64 copies of the near-shore section of a block of stations."""
+WAVELET_THREADS = 4
+"""Most threads transforming groups of stations at once (one per core up to this)."""
 
 RING_GAP_LD = 2.0
 """Inner edge of the background rings, in deformation radii (the merging distance)."""
@@ -105,12 +112,19 @@ def nearshore_anomaly(section: np.ndarray, offsets_km: np.ndarray, nearshore_km:
     if not near.any():
         near = np.zeros_like(near)
         near[0] = True
-    sub = np.asarray(section[:, :, near], dtype=np.float64)
-    release(section)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
-        anomaly = sub - np.nanmean(sub, axis=0, keepdims=True)
-        return np.nanmean(anomaly, axis=2)
+    n_t, n_station = section.shape[:2]
+    out = np.empty((n_t, n_station))
+    # A block of stations at a time (the files are station-major), so the float64 copies
+    # stay within a fixed budget however long the record.
+    block = max(1, ANOMALY_BUDGET_BYTES // (16 * n_t * int(near.sum())))
+    for s0 in range(0, n_station, block):
+        sub = np.asarray(section[:, s0:s0 + block][:, :, near], dtype=np.float64)
+        release(section)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
+            anomaly = sub - np.nanmean(sub, axis=0, keepdims=True)
+            out[:, s0:s0 + block] = np.nanmean(anomaly, axis=2)
+    return out
 
 
 def _fill_gaps(x: np.ndarray) -> np.ndarray:
@@ -246,10 +260,13 @@ def band_activity(x: np.ndarray, dt: float, settings: Settings
     windows = np.empty((n_win, n_station))
     period = np.empty(n_station)
     # Stations in groups, so the wavelet coefficients stay within a fixed budget however
-    # long the record.
+    # long the record; the groups on all cores (the transforms release the GIL), each
+    # with its share of the budget.
+    workers = max(1, min(os.cpu_count() or 1, WAVELET_THREADS))
     per_station = 16 * n_time * (int(np.log2(max(n_time, 2)) / s.dj) + 1)
-    group = max(1, WAVELET_BUDGET_BYTES // per_station)
-    for g0 in range(0, n_station, group):
+    group = max(1, WAVELET_BUDGET_BYTES // workers // per_station)
+
+    def one_group(g0: int) -> None:
         g1 = min(n_station, g0 + group)
         wt = cwt_morlet(x[g0:g1], dt, dj=s.dj, omega0=s.omega0, period_band=band)
         averaged = scale_average(wt, band)
@@ -259,6 +276,9 @@ def band_activity(x: np.ndarray, dt: float, settings: Settings
         in_band = (wt.periods >= band[0]) & (wt.periods <= band[1])
         mean_power = wt.power[:, in_band].mean(axis=-1)
         period[g0:g1] = wt.periods[in_band][np.argmax(mean_power, axis=-1)]
+
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        list(pool.map(one_group, range(0, n_station, group)))
     return full, windows, period
 
 

@@ -32,8 +32,29 @@ import pandas as pd
 import xarray as xr
 from scipy.ndimage import gaussian_filter1d
 
+from coastmon.compiled import compiled
 from coastmon.grid.metrics import haversine_m
 from coastmon.io.pages import release
+
+
+@compiled()
+def _lagged_sums(part, prev, sums):  # pragma: no cover - compiled
+    """Add a block of (steps, points) to the sums of :func:`time_mean_error`; ``prev``
+    holds the last step of the previous block (NaN before the first) and is updated."""
+    for t in range(part.shape[0]):
+        for p in range(part.shape[1]):
+            a = prev[p]
+            b = np.float64(part[t, p])
+            if np.isfinite(b):
+                sums[0, p] += 1.0
+                sums[1, p] += b
+                sums[2, p] += b * b
+                if np.isfinite(a):
+                    sums[3, p] += a * b
+                    sums[4, p] += 1.0
+                    sums[5, p] += a
+                    sums[6, p] += b
+            prev[p] = b
 
 
 def time_mean_error(values: np.ndarray, block: int = 256) -> tuple[np.ndarray, np.ndarray]:
@@ -47,34 +68,14 @@ def time_mean_error(values: np.ndarray, block: int = 256) -> tuple[np.ndarray, n
     lagged products that touch them). NaN where fewer than three steps are finite.
     """
     shape = values.shape[1:]
-    n = np.zeros(shape)
-    s1 = np.zeros(shape)
-    s2 = np.zeros(shape)
-    lag = np.zeros(shape)
-    n_lag = np.zeros(shape)
-    s_lag_a = np.zeros(shape)
-    s_lag_b = np.zeros(shape)
-    prev = None
+    sums = np.zeros((7, int(np.prod(shape))))   # n, s1, s2, lag, n_lag, s_lag_a, s_lag_b
+    prev = np.full(sums.shape[1], np.nan)
     for start in range(0, values.shape[0], block):
-        part = np.asarray(values[start:start + block], dtype=np.float64)
+        part = np.ascontiguousarray(values[start:start + block]).reshape(
+            -1, sums.shape[1])
         release(values)
-        if prev is not None:
-            part_l = np.concatenate([prev[None], part], axis=0)
-        else:
-            part_l = part
-        ok = np.isfinite(part)
-        x = np.where(ok, part, 0.0)
-        n += ok.sum(axis=0)
-        s1 += x.sum(axis=0)
-        s2 += (x * x).sum(axis=0)
-        a, b = part_l[:-1], part_l[1:]
-        both = np.isfinite(a) & np.isfinite(b)
-        a0, b0 = np.where(both, a, 0.0), np.where(both, b, 0.0)
-        lag += (a0 * b0).sum(axis=0)
-        s_lag_a += a0.sum(axis=0)
-        s_lag_b += b0.sum(axis=0)
-        n_lag += both.sum(axis=0)
-        prev = part[-1]
+        _lagged_sums(part, prev, sums)
+    n, s1, s2, lag, n_lag, s_lag_a, s_lag_b = (x.reshape(shape) for x in sums)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = s1 / n
         var = np.maximum(s2 / n - mean**2, 0.0)
@@ -186,11 +187,13 @@ def jet_spacing_km(anomaly: np.ndarray, frame, ray_km: np.ndarray, min_km: float
 
 
 def plume_axes(series: xr.Dataset, frame, sources: pd.DataFrame, gate_offset_km: float,
-               start_km: float = 0.0) -> tuple[list[dict], float]:
+               start_km: float = 0.0, mean_error: tuple[np.ndarray, np.ndarray] | None = None
+               ) -> tuple[list[dict], float]:
     """Plume axis for every source (in rank order) and the coast-wide jet spacing (km);
-    the axes' end tests apply from ``start_km`` offshore (see :func:`trace_plume`)."""
+    the axes' end tests apply from ``start_km`` offshore (see :func:`trace_plume`).
+    ``mean_error``: :func:`time_mean_error` of ``ray_u`` when already computed."""
     ray_km = np.asarray(series["ray_km"].values, dtype=float)
-    ubar, error = time_mean_error(series["ray_u"].values)
+    ubar, error = mean_error or time_mean_error(series["ray_u"].values)
     anomaly = along_shore_anomaly(ubar, frame)
     axes = [trace_plume(anomaly, frame, int(row["station"]), ray_km, error, start_km=start_km)
             for _, row in sources.iterrows()]

@@ -1,0 +1,163 @@
+"""Shortcuts that keep long records cheap give the numbers of the full computation.
+
+Issue 21: the analyses of the sampled series must not cost more than they need as the
+record grows. Each shortcut is checked here against the straightforward computation it
+replaces (written out in the test, as it stood before the shortcut).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.fft
+
+from coastmon.signals.propagation import detrend_time
+from coastmon.sources.feed import PAD_FACTOR, along_derivative, directional_components
+
+
+def _full_directional_components(field, dt_days, dd_km, band_days):
+    """The directional split transforming every frequency and every distance back
+    (the computation before issue 21)."""
+    data = detrend_time(field)
+    n_t, n_d = data.shape
+    n_pad = PAD_FACTOR * n_d
+    spec = scipy.fft.fft(scipy.fft.rfft(data, axis=0), n=n_pad, axis=1)
+    freq = scipy.fft.rfftfreq(n_t, dt_days)
+    kappa = scipy.fft.fftfreq(n_pad, dd_km)
+    in_band = (freq >= 1.0 / band_days[1]) & (freq <= 1.0 / band_days[0]) & (freq > 0)
+    directional = ~np.isclose(np.abs(kappa), 0.5 / dd_km) & (kappa != 0)
+    d_t = 2j * np.pi * freq[:, None] / 86400.0
+
+    def back(part):
+        return scipy.fft.irfft(scipy.fft.ifft(part, axis=1), n=n_t, axis=0)[:, :n_d]
+
+    out = {}
+    for name, side in (("plus", kappa < 0), ("minus", kappa > 0)):
+        part = np.where(in_band[:, None] & (directional & side)[None, :], spec, 0.0)
+        q = back(part)
+        out[name] = (q, back(part * d_t), along_derivative(q, dd_km * 1000.0))
+    return out
+
+
+@pytest.mark.parametrize("columns", [None, (0, 60), (10, 33), (0, 3), (1, 4), (55, 60),
+                                     (57, 60), (30, 31)])
+def test_directional_split_on_a_window_equals_the_full_split(columns):
+    rng = np.random.default_rng(21)
+    field = rng.standard_normal((1500, 60)).cumsum(axis=0)
+    full = _full_directional_components(field, 1.0, 10.0, (10.0, 120.0))
+    part = directional_components(field, 1.0, 10.0, (10.0, 120.0), columns=columns)
+    a, b = columns or (0, 60)
+    for name in ("plus", "minus"):
+        for got, want in zip(part[name], full[name], strict=True):
+            assert got.shape == (1500, b - a)
+            # check: the full two-dimensional transform (common practice, no source):
+            # the same transforms on fewer rows and columns, equal to rounding
+            np.testing.assert_allclose(got, want[:, a:b], rtol=1e-12,
+                                       atol=1e-12 * np.abs(want).max())
+
+
+def _numpy_time_mean_error(values, block=256):
+    """Time mean and standard error with numpy sums per block (before issue 21)."""
+    shape = values.shape[1:]
+    n, s1, s2, lag, n_lag, s_a, s_b = (np.zeros(shape) for _ in range(7))
+    prev = None
+    for start in range(0, values.shape[0], block):
+        part = np.asarray(values[start:start + block], dtype=np.float64)
+        part_l = part if prev is None else np.concatenate([prev[None], part], axis=0)
+        ok = np.isfinite(part)
+        x = np.where(ok, part, 0.0)
+        n += ok.sum(axis=0)
+        s1 += x.sum(axis=0)
+        s2 += (x * x).sum(axis=0)
+        a, b = part_l[:-1], part_l[1:]
+        both = np.isfinite(a) & np.isfinite(b)
+        a0, b0 = np.where(both, a, 0.0), np.where(both, b, 0.0)
+        lag += (a0 * b0).sum(axis=0)
+        s_a += a0.sum(axis=0)
+        s_b += b0.sum(axis=0)
+        n_lag += both.sum(axis=0)
+        prev = part[-1]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = s1 / n
+        var = np.maximum(s2 / n - mean**2, 0.0)
+        cov = lag / n_lag - (s_a / n_lag) * (s_b / n_lag)
+        r1 = np.clip(np.where(var > 0, cov / var, 0.0), 0.0, 0.99)
+        n_eff = np.maximum(n * (1.0 - r1) / (1.0 + r1), 1.0)
+        se = np.sqrt(var * n / np.maximum(n - 1, 1) / n_eff)
+    few = n < 3
+    return np.where(few, np.nan, mean), np.where(few, np.nan, se)
+
+
+def test_compiled_time_mean_error_equals_numpy_sums():
+    from coastmon.sources.plumes import time_mean_error
+
+    rng = np.random.default_rng(5)
+    values = (0.1 + rng.standard_normal((1000, 12, 9)).cumsum(axis=0) * 0.01).astype(np.float32)
+    values[rng.random(values.shape) < 0.05] = np.nan       # scattered gaps
+    values[:, 3, 4] = np.nan                                # never valid
+    values[:998, 5, 5] = np.nan                             # too few steps
+    values[:, 7, 2] = 0.25                                  # constant
+    got = time_mean_error(values, block=64)
+    want = _numpy_time_mean_error(values, block=64)
+    for g, w in zip(got, want, strict=True):
+        assert np.array_equal(np.isnan(g), np.isnan(w))
+        # check: common practice, no source (the same sums in another order)
+        np.testing.assert_allclose(g, w, rtol=1e-10, atol=1e-14)
+
+
+def test_band_activity_on_threads_equals_each_station_alone():
+    from coastmon.config import Settings
+    from coastmon.signals import cwt_morlet, scale_average
+    from coastmon.sources.detect import band_activity
+
+    settings = Settings()
+    s = settings.signals
+    x = np.random.default_rng(8).standard_normal((9, 900)).cumsum(axis=1)
+    full, windows, period = band_activity(x, 1.0, settings)
+    for i in range(x.shape[0]):
+        wt = cwt_morlet(x[i:i + 1], 1.0, dj=s.dj, omega0=s.omega0,
+                        period_band=s.eddy_period_days)
+        averaged = scale_average(wt, s.eddy_period_days)
+        # check: common practice, no source (the same transform of one station alone)
+        np.testing.assert_allclose(full[i], averaged.mean(), rtol=1e-12)
+        assert np.isfinite(windows[:, i]).all() and period[i] > 0
+
+
+def test_block_bootstrap_by_counts_equals_the_loop_over_resamples():
+    from coastmon.sources.feed import block_bootstrap_means
+
+    series = np.random.default_rng(2).standard_normal((700, 5, 3))
+    for block in (1, 7, 64, 700):
+        got = block_bootstrap_means(series, block, 50, np.random.default_rng(9))
+        # the loop over resamples (before issue 21), with the same draws
+        rng = np.random.default_rng(9)
+        n_blocks = int(np.ceil(700 / block))
+        csum = np.concatenate([np.zeros((1, 5, 3)), np.cumsum(series, axis=0)])
+        starts = rng.integers(0, 700 - block + 1, size=(50, n_blocks))
+        want = np.stack([(csum[s + block] - csum[s]).sum(axis=0) / (n_blocks * block)
+                         for s in starts])
+        # check: Künsch 1989 (moving-block bootstrap), the same sums in another order
+        np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-14)
+
+
+def test_nearshore_anomaly_by_station_blocks_equals_all_at_once(monkeypatch):
+    import warnings
+
+    from coastmon.sources import detect
+
+    rng = np.random.default_rng(4)
+    section = rng.standard_normal((300, 11, 7)).astype(np.float32)
+    section[rng.random(section.shape) < 0.1] = np.nan
+    section[:, 4, :] = np.nan                                  # a station never valid
+    offsets = np.array([0.0, 10, 20, 30, 40, 60, 80])
+    near = offsets <= 30.0
+    sub = section[:, :, near].astype(np.float64)               # all stations at once
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        want = np.nanmean(sub - np.nanmean(sub, axis=0, keepdims=True), axis=2)
+    monkeypatch.setattr(detect, "ANOMALY_BUDGET_BYTES", 16 * 300 * 4 * 3)  # 3 stations
+    got = detect.nearshore_anomaly(section, offsets, 30.0)
+    # check: common practice, no source (the same means, a block of stations at a time;
+    # numpy may add the time steps in another order for a narrower block: last-bit changes)
+    assert np.array_equal(np.isnan(got), np.isnan(want))
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-15)
