@@ -247,6 +247,8 @@ class Products:
     series: xr.Dataset
     bootstrap_feeds: np.ndarray
     warnings: list[str] = field(default_factory=list)
+    untested_capes: list[str] = field(default_factory=list)
+    """Ids of the capes where no station could be tested for a source (coast ends)."""
 
 
 def _analyse(series: xr.Dataset, frame, capes: pd.DataFrame, settings: Settings,
@@ -353,7 +355,8 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     if len(ranked):
         spectra = spectra.assign(source_feed_table(ranked))
     return Products(stats, profiles, ranked, gates_df, axes, spacing, spectra, spin,
-                    100.0 * c_rossby, series, boot, warnings)
+                    100.0 * c_rossby, series, boot, warnings,
+                    [str(c) for c in blind["cape_id"]] if len(blind) else [])
 
 
 def source_feed_table(ranked: pd.DataFrame) -> dict[str, xr.DataArray]:
@@ -459,9 +462,15 @@ def build_layers(coastline, capes: pd.DataFrame, products: Products, settings: S
     plumes = gpd.GeoDataFrame(pd.DataFrame(plume_rows, columns=["source_rank", "zonal_extent_km",
                                                                 "jet_spacing_km"]),
                               geometry=gpd.GeoSeries(plume_geoms, crs=crs), crs=crs)
+    cape_layer = capes_layer(capes)
+    if len(cape_layer):
+        # Whether a source could be looked for at the cape (not at coast ends: methods.md §5)
+        cape_layer["source_test"] = np.where(
+            cape_layer["cape_id"].astype(str).isin(products.untested_capes),
+            "untested (coast end)", "tested")
     return {
         "coastline": coastline_layer(coastline),
-        "capes": capes_layer(capes),
+        "capes": cape_layer,
         "sources": sources,
         "gates": gates,
         "plume_axes": plumes,

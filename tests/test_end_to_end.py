@@ -110,6 +110,13 @@ def test_output_contract_is_complete(default_run):
             "dist_to_cape_km", "alongshore_km", "west_speed_cm_s"}
     assert need <= set(src.columns)
     assert (src["feed_lo"] <= src["feed_w_per_m"]).all() and (src["feed_w_per_m"] <= src["feed_hi"]).all()
+    capes = gpd.read_file(out / "map.gpkg", layer="capes")
+    # every cape says whether a source could be looked for there; the three source capes of
+    # the planted truth lie far from the domain's ends, so they were tested
+    assert set(capes["source_test"]) <= {"tested", "untested (coast end)"}
+    for cape_id in src["cape_id"]:
+        if cape_id:
+            assert capes.loc[capes["cape_id"] == cape_id, "source_test"].item() == "tested"
     with xr.open_dataset(out / "results.nc") as ds:
         assert "eke" in ds and ds["eke"].attrs["units"] == "m2 s-2"
     run = json.loads((out / "run.json").read_text())

@@ -100,6 +100,7 @@ SHAPEFILE_FIELDS = {
     "protrusion_km": "protr_km",
     "alongshore_km": "along_km",
     "normal_az_deg": "norm_az",
+    "source_test": "src_test",
     "scale_km": "scale_km",
     "length_km": "length_km",
     "zonal_extent_km": "zext_km",

@@ -55,6 +55,7 @@ _CAPE_COLUMNS = (
     ("protrusion_km", "Protrusion (km)", "{:.0f}"),
     ("alongshore_km", "Along-shore (km)", "{:.0f}"),
     ("position", "Position", None),
+    ("source_test", "Source test", None),
 )
 _NUMERIC = {"rank", "feed_w_per_m", "interval", "structural", "persistence", "dist_to_cape_km",
             "alongshore_km", "west_speed_cm_s", "curvature_per_km", "scale_km",
