@@ -78,11 +78,9 @@ from coastmon.sources import (
     rank_sources,
 )
 from coastmon.sources.detect import (
-    RING_GAP_LD,
-    RING_MIN_COVER,
-    RING_OUTER_LD,
-    WAVELET_BUDGET_BYTES,
+    coast_end_km,
     nearshore_anomaly,
+    series_per_group,
     time_step_days,
     untested_capes,
 )
@@ -319,7 +317,7 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     if len(blind):
         names = ", ".join(f"{c.cape_id} ({position_text(c.lon, c.lat)})"
                           for c in blind.itertuples(index=False))
-        reach = (RING_GAP_LD + RING_MIN_COVER * (RING_OUTER_LD - RING_GAP_LD)) * ld_km
+        reach = coast_end_km(ld_km)
         warnings.append(
             f"{len(blind)} of {len(capes)} cape(s) could not be tested for a source: {names}. "
             f"{'They lie' if len(blind) > 1 else 'It lies'} where the coast on one side is "
@@ -386,8 +384,7 @@ def source_spectra(series: xr.Dataset, frame, ranked: pd.DataFrame, settings: Se
     x = np.nan_to_num(zeta[:, ranked["station"].values.astype(int)].T)
     # Sources in groups, so the coefficients stay within a fixed budget however long the
     # record (each source's transform is independent of the others).
-    n_scales = int(np.log2(max(x.shape[1], 2)) / s.dj) + 1
-    group = max(1, WAVELET_BUDGET_BYTES // (16 * x.shape[1] * n_scales))
+    group = series_per_group(x.shape[1], s.dj)
     spectra = []
     for g0 in range(0, x.shape[0], group):
         wt = cwt_morlet(x[g0:g0 + group], dt, dj=s.dj, omega0=s.omega0)

@@ -6,6 +6,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 from coastmon.config import Settings
 from coastmon.report.figures import (
@@ -146,12 +147,9 @@ def write_figures_and_report(stage: Path, prep, products, layers: dict, settings
                   "feed_struct_hi", "gate_status", "persistence", "cape_id",
                   "dist_to_cape_km", "alongshore_km", "west_speed_cm_s", "rank_stability",
                   "lon", "lat"]
-    if len(capes):
-        capes = capes.assign(source_test=np.where(
-            capes["cape_id"].astype(str).isin(products.untested_capes),
-            "untested (coast end)", "tested"))
     write_report(stage / "report.html", title="Coastal vorticity sources and their westward feed",
                  summary=summary,
                  sources=src[[c for c in table_cols if c in src.columns]] if len(src) else src,
-                 capes=capes, figures=figures, provenance=provenance,
+                 capes=pd.DataFrame(layers["capes"].drop(columns="geometry")),
+                 figures=figures, provenance=provenance,
                  warnings=products.warnings)

@@ -103,7 +103,7 @@ def qg_energy_flux_x(psi: ArrayLike, psi_xt: ArrayLike, beta: float, rho0: float
     Multiplying the potential-vorticity equation by :math:`-\\psi` gives
     :math:`\\partial_t e + \\nabla\\cdot\\mathbf F = 0` with
     :math:`\\mathbf F = -\\rho_0(\\psi\\nabla\\psi_t + \\tfrac12\\beta\\psi^2\\hat{\\mathbf x})`
-    (Vallis 2017, chapter 6; Pedlosky 1987, chapter 3). Its time mean for a plane wave is
+    (Vallis 2017, chapter 6; Gill 1982, chapter 12). Its time mean for a plane wave is
     :math:`c_{gx}\\,\\bar e`, the group-velocity flux, reached here without the group
     velocity.
     """

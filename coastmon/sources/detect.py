@@ -234,6 +234,16 @@ def local_background(values: np.ndarray, s_km: np.ndarray, segment_id: np.ndarra
     return out
 
 
+def series_per_group(n_time: int, dj: float, budget_bytes: int | None = None) -> int:
+    """How many series of ``n_time`` steps to transform at once so that their complex
+    Morlet coefficients (all scales at spacing ``dj``) stay within ``budget_bytes``
+    (default ``WAVELET_BUDGET_BYTES``)."""
+    if budget_bytes is None:
+        budget_bytes = WAVELET_BUDGET_BYTES
+    per_series = 16 * n_time * (int(np.log2(max(n_time, 2)) / dj) + 1)
+    return max(1, budget_bytes // per_series)
+
+
 def band_activity(x: np.ndarray, dt: float, settings: Settings
                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Eddy-band variance of many series, over the whole record and per window.
@@ -263,8 +273,7 @@ def band_activity(x: np.ndarray, dt: float, settings: Settings
     # long the record; the groups on all cores (the transforms release the GIL), each
     # with its share of the budget.
     workers = max(1, min(os.cpu_count() or 1, WAVELET_THREADS))
-    per_station = 16 * n_time * (int(np.log2(max(n_time, 2)) / s.dj) + 1)
-    group = max(1, WAVELET_BUDGET_BYTES // workers // per_station)
+    group = series_per_group(n_time, s.dj, WAVELET_BUDGET_BYTES // workers)
 
     def one_group(g0: int) -> None:
         g1 = min(n_station, g0 + group)
@@ -484,12 +493,20 @@ def alongshore_profiles(series: xr.Dataset, frame, settings: Settings, ld_km: fl
     )
 
 
+def coast_end_km(ld_km: float) -> float:
+    """Distance from the end of a coast segment within which a station has no local
+    background: the inner gap of a ring plus the share of the ring that must lie on the
+    coast (``RING_GAP_LD + RING_MIN_COVER (RING_OUTER_LD - RING_GAP_LD)`` deformation
+    radii, 4 L_d)."""
+    return (RING_GAP_LD + RING_MIN_COVER * (RING_OUTER_LD - RING_GAP_LD)) * ld_km
+
+
 def untested_capes(profiles: xr.Dataset, frame, capes: pd.DataFrame, reach_km: float
                    ) -> pd.DataFrame:
     """The capes where no station within ``reach_km`` along the same coast segment could
-    be tested (no local background: the cape lies within about ``RING_GAP_LD +
-    RING_MIN_COVER (RING_OUTER_LD - RING_GAP_LD)`` deformation radii of the end of its segment, e.g. an open domain edge, or on a small
-    island). A source there can be neither found nor ruled out."""
+    be tested (no local background: the cape lies within about :func:`coast_end_km` of
+    the end of its segment, e.g. an open domain edge, or on a small island). A source
+    there can be neither found nor ruled out."""
     if capes is None or len(capes) == 0:
         return capes.iloc[0:0] if capes is not None else pd.DataFrame()
     st = frame.stations

@@ -585,7 +585,8 @@ def _damaged(ds: xr.Dataset, t0: int, t1: int, detail: str) -> InputError:
             else f"steps {t0} to {t1 - 1}")
     return InputError(
         f"A stored chunk of the input cannot be decoded ({detail}); the file is damaged or "
-        "truncated (or its decompression library failed on it)", where=f"{', '.join(files) or 'the input'}, time {span}",
+        "truncated (or its decompression library failed on it)",
+        where=f"{', '.join(files) or 'the input'}, time {span}",
         todo="Check the file with a NetCDF or Zarr tool, or copy it again")
 
 

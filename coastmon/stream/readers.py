@@ -309,9 +309,10 @@ class _Worker:
         tail = self.log.read().decode("utf-8", "replace").strip().splitlines()[-3:]
         said = f" It said: {' / '.join(tail)}" if tail else ""
         code = self.proc.returncode
-        if code is not None and code < 0 and -code in CRASH_SIGNALS:
-            how = (f"crashed (signal {-code}, {signal.Signals(-code).name}), most likely in "
-                   "a decompression library given a damaged chunk")
+        crash = self._crash_signal()
+        if crash:
+            how = (f"crashed (signal {crash}), most likely in a decompression library given "
+                   "a damaged chunk")
         elif code is not None and code < 0:
             how = f"was killed (signal {-code}), most likely by the system for lack of memory"
         else:
