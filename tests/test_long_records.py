@@ -56,6 +56,32 @@ def test_directional_split_on_a_window_equals_the_full_split(columns):
                                        atol=1e-12 * np.abs(want).max())
 
 
+@pytest.mark.parametrize("n_t", [1500, 1501, 730])
+def test_band_samples_keep_the_time_means_of_products(n_t):
+    from coastmon.sources.feed import band_sample_count
+
+    rng = np.random.default_rng(n_t)
+    field = rng.standard_normal((n_t, 40)).cumsum(axis=0)
+    n_s = band_sample_count(n_t, 1.0, 10.0)
+    assert n_s < n_t / 4
+    full = _full_directional_components(field, 1.0, 10.0, (10.0, 120.0))
+    part = directional_components(field, 1.0, 10.0, (10.0, 120.0), columns=(5, 25),
+                                  n_out=n_s)
+    for name in ("plus", "minus"):
+        for i in range(3):
+            for j in range(i, 3):
+                want = (full[name][i][:, 5:25] * full[name][j][:, 5:25]).mean(axis=0)
+                got = (part[name][i] * part[name][j]).mean(axis=0)
+                scale = np.sqrt((full[name][i] ** 2).mean() * (full[name][j] ** 2).mean())
+                # check: sampling theorem and Parseval's theorem (Bracewell, The Fourier
+                # Transform and Its Applications, ch. 10 and 6): a product of two parts of
+                # highest harmonic K has degree 2K, and its mean over N > 2K equally
+                # spaced samples is its constant term, the mean over every step
+                np.testing.assert_allclose(got, want, rtol=0, atol=1e-11 * scale)
+    with pytest.raises(ValueError):
+        directional_components(field, 1.0, 10.0, (10.0, 120.0), n_out=n_s // 2)
+
+
 def _numpy_time_mean_error(values, block=256):
     """Time mean and standard error with numpy sums per block (before issue 21)."""
     shape = values.shape[1:]

@@ -133,9 +133,44 @@ def eddy_energy_per_mass(u: np.ndarray, v: np.ndarray, p: np.ndarray | None = No
     return 0.5 * e
 
 
+def band_sample_count(n_t: int, dt_days: float, shortest_days: float) -> int:
+    r"""Fewest equally spaced samples of a record that keep the time mean of a product of
+    two of its band-limited parts exact.
+
+    A part holding only the record's Fourier harmonics :math:`1 \le m \le K`, with
+    :math:`K = \lfloor n_t \Delta t / P_{min} \rfloor` the harmonic of the shortest period
+    :math:`P_{min}`, is a trigonometric polynomial of degree K; the product of two is one of
+    degree 2K, and the mean of a trigonometric polynomial of degree below N over N equally
+    spaced points is its constant term. So N > 2K samples over the record give the same time
+    means of products (energies, the sums of the least-squares speed) as all :math:`n_t`
+    steps, to rounding; this is the sampling theorem applied to the squared signal
+    (Bracewell, *The Fourier Transform and Its Applications*, sampling theorem and
+    Parseval's theorem). The count is rounded up to a fast transform length and is never
+    more than ``n_t``.
+
+    Parameters
+    ----------
+    n_t : int
+        Steps of the record.
+    dt_days : float
+        Time step (days).
+    shortest_days : float
+        Shortest period kept in the band (days).
+
+    Returns
+    -------
+    int
+        The number of samples, ``2 K + 2 <= N <= n_t``.
+    """
+    k_max = int(np.floor(n_t * dt_days / shortest_days + 1e-9))
+    need = scipy.fft.next_fast_len(2 * k_max + 2, real=True)
+    return int(min(n_t, need))
+
+
 def directional_components(field: np.ndarray, dt_days: float, dd_km: float,
                            band_days: tuple[float, float],
-                           columns: tuple[int, int] | None = None
+                           columns: tuple[int, int] | None = None,
+                           n_out: int | None = None
                            ) -> dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]]:
     r"""Band-limited parts of a Hovmöller field travelling toward +d and toward −d.
 
@@ -169,13 +204,18 @@ def directional_components(field: np.ndarray, dt_days: float, dd_km: float,
         Shortest and longest period kept (days).
     columns : (int, int), optional
         The distances ``start:stop`` to return (default: all).
+    n_out : int, optional
+        Return the parts at ``n_out`` equally spaced times over the record instead of at
+        every step (the band-limited signal evaluated there, exactly; default: every step).
+        With ``n_out >= band_sample_count(...)`` time means of products of the parts are
+        those of the full series (:func:`band_sample_count`).
 
     Returns
     -------
     dict
         ``{"plus": (q, q_t, q_d), "minus": (q, q_t, q_d)}``: each part and its
         derivatives in time (per second) and distance (per metre), shape
-        ``(time, stop - start)``.
+        ``(n_out, stop - start)``.
     """
     data = detrend_time(field)
     n_t, n_d = data.shape
@@ -189,19 +229,25 @@ def directional_components(field: np.ndarray, dt_days: float, dd_km: float,
     spec = scipy.fft.fft(scipy.fft.rfft(data, axis=0)[rows], n=n_pad, axis=1)
     directional = ~np.isclose(np.abs(kappa), 0.5 / dd_km) & (kappa != 0)
     d_t = 2j * np.pi * freq[rows, None] / 86400.0
+    n_out = n_t if n_out is None else int(n_out)
+    if rows.size and 2 * rows[-1] >= n_out:
+        raise ValueError(f"{n_out} samples cannot hold harmonic {rows[-1]} of the band")
 
-    def back(part: np.ndarray) -> np.ndarray:
-        full = np.zeros((freq.size, hi - lo), dtype=np.complex128)
-        full[rows] = scipy.fft.ifft(part, axis=1)[:, lo:hi]
-        return scipy.fft.irfft(full, n=n_t, axis=0)
+    def back(line: np.ndarray) -> np.ndarray:
+        # The band's harmonics placed in a spectrum of n_out samples: the same
+        # trigonometric polynomial, evaluated at n_out equally spaced times.
+        full = np.zeros((n_out // 2 + 1, hi - lo), dtype=np.complex128)
+        full[rows] = line
+        return scipy.fft.irfft(full, n=n_out, axis=0) * (n_out / n_t)
 
     out = {}
     keep = slice(start - lo, stop - lo)
     for name, side in (("plus", kappa < 0), ("minus", kappa > 0)):
         part = np.where((directional & side)[None, :], spec, 0.0)
-        q = back(part)
+        line = scipy.fft.ifft(part, axis=1)[:, lo:hi]   # back along the line, once
+        q = back(line)
         q_d = along_derivative(q, dd_km * 1000.0)
-        out[name] = (q[:, keep], back(part * d_t)[:, keep], q_d[:, keep])
+        out[name] = (q[:, keep], back(line * d_t)[:, keep], q_d[:, keep])
     return out
 
 
@@ -346,6 +392,21 @@ def decorrelation_steps(x: np.ndarray) -> float:
     return float(below[0]) if below.size else float(n)
 
 
+def bootstrap_block(energy: np.ndarray, ratio: float = 1.0) -> int:
+    """Block length (in samples of ``energy``) of the feed's moving-block bootstrap.
+
+    Twice the e-folding lag of the energy series (:func:`decorrelation_steps`), at least
+    ten record steps and at most a quarter of the record: the rule is stated in record
+    steps, and ``ratio`` (record steps per sample of ``energy``; 1 when the series has one
+    sample per step) converts it, so that a series sampled more sparsely
+    (:func:`band_sample_count`) is resampled in blocks of the same duration.
+    """
+    n = energy.shape[0]
+    lag = decorrelation_steps(energy) * ratio                # record steps
+    block = min(max(2 * np.ceil(lag), 10), max(int(n * ratio) // 4, 1))
+    return int(max(1, round(block / ratio)))
+
+
 def net_flux_density(means: np.ndarray, max_speed_m_s: float) -> np.ndarray:
     r"""Net westward energy flux density per unit mass, :math:`E^-c^- - E^+c^+`, per ray.
 
@@ -372,7 +433,9 @@ class GateSet:
 
     ``series`` and ``means`` hold, per ray, the energy per unit mass and the two sums of
     the least-squares speed, for the westward then the eastward part (six series); the
-    nominal gate is configuration 0 of ``configs``.
+    nominal gate is configuration 0 of ``configs``. The series are sampled every
+    ``step_days`` (:func:`band_sample_count` samples over the record, often fewer than the
+    record's steps); their time means are those of the series at every step.
     """
 
     station: np.ndarray          # (g,) station indices
@@ -385,6 +448,8 @@ class GateSet:
     pwork: np.ndarray            # (g,) westward <u'p'>/rho0, m3 s-3 (NaN without SSH)
     ssh_var: np.ndarray          # (g,) SSH variance in the window, m2 (NaN without SSH)
     has_ssh: bool
+    step_days: float = 1.0       # time between two samples of ``series``
+    record_step_days: float = 1.0  # time step of the record itself
 
 
 def structural_configs(settings: Settings) -> list[tuple[float, float]]:
@@ -424,16 +489,21 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
     On each westward ray the band-limited westward and eastward parts of u, v (and of
     :func:`potential_energy_velocity` of SSH) are computed over the longest run of sea
     points that holds the whole window (:func:`directional_components`), then reduced to
-    per-ray time series over the window of each gate configuration. Rays on all cores.
+    per-ray time series over the window of each gate configuration. The parts are
+    evaluated at :func:`band_sample_count` times over the record, which keeps every time
+    mean exact and makes the work after the transforms independent of the record's step.
+    Rays on all cores.
     """
     src = settings.sources
     band = tuple(float(b) for b in settings.signals.eddy_period_days)
     ray_km = np.asarray(series["ray_km"].values, dtype=float)
     configs = structural_configs(settings)
     n_t = series.sizes["time"]
+    n_s = band_sample_count(n_t, dt_days, band[0])
+    step = dt_days * n_t / n_s
     has_ssh = "ray_ssh" in series
     if ray_km.size < 4:
-        return _empty_gates(n_t, configs, has_ssh)
+        return _empty_gates(n_s, configs, has_ssh, step, dt_days)
     dd_km = float(np.median(np.diff(ray_km)))
     windows = [_window(ray_km, o, max(w, 2 * dd_km)) for o, w in configs]
     gate_i = int(np.argmin(np.abs(ray_km - src.gate_offset_km)))
@@ -469,13 +539,13 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
                 and run[1] <= hi]
         first = min(int(windows[k][0]) for k in used) - lo
         last = max(int(windows[k][-1]) for k in used) - lo + 1
-        parts = [directional_components(f, dt_days, dd_km, band, columns=(first, last))
-                 for f in fields]
+        parts = [directional_components(f, dt_days, dd_km, band, columns=(first, last),
+                                        n_out=n_s) for f in fields]
         # Per time step, window by window; a block of steps at a time so that the
         # products stay in the processor's caches on long records.
-        stacks = np.empty((len(configs), n_t, N_SERIES))
-        for t0 in range(0, n_t, TIME_BLOCK):
-            t1 = min(n_t, t0 + TIME_BLOCK)
+        stacks = np.empty((len(configs), n_s, N_SERIES))
+        for t0 in range(0, n_s, TIME_BLOCK):
+            t1 = min(n_s, t0 + TIME_BLOCK)
             for j, name in enumerate(("plus", "minus")):  # +d is west along a westward ray
                 q = [p[name][0][t0:t1] for p in parts]
                 q_t = [p[name][1][t0:t1] for p in parts]
@@ -507,7 +577,7 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
     # released after each, so they do not pile up in memory.
     # Each ray's series goes straight into its column (no second copy of them all).
     rows = []
-    nominal = np.empty((n_t, int((direction == -1).sum()), N_SERIES))
+    nominal = np.empty((n_s, int((direction == -1).sum()), N_SERIES))
     workers = max(1, min(os.cpu_count() or 1, GATE_THREADS))
     block = 8 * workers
     with ThreadPoolExecutor(max_workers=workers) as pool:
@@ -518,7 +588,7 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
                     rows.append(r[:3] + (None,) + r[4:])
             release(ru, rv, rh)
     if not rows:
-        return _empty_gates(n_t, configs, has_ssh)
+        return _empty_gates(n_s, configs, has_ssh, step, dt_days)
     cols = list(zip(*rows, strict=True))
     return GateSet(
         station=np.asarray(cols[0], dtype=int),
@@ -531,13 +601,17 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         pwork=np.asarray(cols[6], dtype=float),
         ssh_var=np.asarray(cols[7], dtype=float),
         has_ssh=has_ssh,
+        step_days=step,
+        record_step_days=dt_days,
     )
 
 
-def _empty_gates(n_t: int, configs: list[tuple[float, float]], has_ssh: bool) -> GateSet:
+def _empty_gates(n_s: int, configs: list[tuple[float, float]], has_ssh: bool,
+                 step_days: float, dt_days: float) -> GateSet:
     e = np.zeros(0)
-    return GateSet(np.zeros(0, int), e, e, np.zeros((n_t, 0, N_SERIES)),
-                   np.zeros((len(configs), 0, N_SERIES)), configs, e, e, e, has_ssh)
+    return GateSet(np.zeros(0, int), e, e, np.zeros((n_s, 0, N_SERIES)),
+                   np.zeros((len(configs), 0, N_SERIES)), configs, e, e, e, has_ssh,
+                   step_days, dt_days)
 
 
 # --------------------------------------------------------------------------- gates
@@ -642,9 +716,8 @@ def offshore_feed(sources: pd.DataFrame, gates: GateSet, frame, settings: Settin
     rng = np.random.default_rng(src.seed)
     n_boot = src.n_bootstrap
     if gates.station.size:
-        steps = decorrelation_steps(gates.series[:, :, 0] + gates.series[:, :, 3])
-        n_t = gates.series.shape[0]
-        block = int(min(max(2 * np.ceil(steps), 10), max(n_t // 4, 1)))
+        block = bootstrap_block(gates.series[:, :, 0] + gates.series[:, :, 3],
+                                gates.step_days / gates.record_step_days)
         boot_means = block_bootstrap_means(gates.series, block, n_boot, rng)  # (b, g, 6)
         boot_flux = net_flux_density(boot_means, vmax)
         boot_bg = _median_background(boot_flux, quiet)
