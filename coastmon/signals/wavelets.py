@@ -19,6 +19,7 @@ Conventions
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -101,6 +102,22 @@ def _morlet_hat(scaled_omega: np.ndarray, omega0: float) -> np.ndarray:
     """Fourier transform of the Morlet mother wavelet, pi^(-1/4) H(w) exp(-(w - w0)^2 / 2)."""
     return np.where(scaled_omega > 0.0,
                     PSI0_MORLET * np.exp(-0.5 * (scaled_omega - omega0) ** 2), 0.0)
+
+
+@functools.lru_cache(maxsize=4)
+def _scaled_morlet_hats(n_fft: int, dt: float, scales: tuple[float, ...], omega0: float
+                        ) -> np.ndarray:
+    """The normalised daughter wavelets in frequency, (scale, n_fft), read-only.
+
+    ``sqrt(2 pi s / dt) psi_hat(s omega)`` (Torrence & Compo 1998, eq. 6), the same for
+    every series of a record: kept for the next group of series of the same length.
+    """
+    omega = 2.0 * np.pi * scipy.fft.fftfreq(n_fft, dt)
+    out = np.empty((len(scales), n_fft))
+    for j, scale in enumerate(scales):
+        out[j] = np.sqrt(2.0 * np.pi * scale / dt) * _morlet_hat(scale * omega, omega0)
+    out.flags.writeable = False
+    return out
 
 
 def cwt_morlet(
@@ -214,12 +231,12 @@ def cwt_morlet(
     variance = np.mean(anomaly ** 2, axis=-1)
     n_fft = int(2 ** np.ceil(np.log2(n))) if pad else n
     x_hat = scipy.fft.fft(anomaly, n=n_fft, axis=-1, workers=-1)
-    omega = 2.0 * np.pi * scipy.fft.fftfreq(n_fft, dt)
 
+    psi_hats = _scaled_morlet_hats(n_fft, float(dt), tuple(float(sc) for sc in scales),
+                                   float(omega0))
     coefs = np.empty(data.shape[:-1] + (scales.size, n), dtype=complex)
-    for j, scale in enumerate(scales):
-        psi_hat = np.sqrt(2.0 * np.pi * scale / dt) * _morlet_hat(scale * omega, omega0)
-        coefs[..., j, :] = scipy.fft.ifft(x_hat * psi_hat, axis=-1, workers=-1)[..., :n]
+    for j in range(scales.size):
+        coefs[..., j, :] = scipy.fft.ifft(x_hat * psi_hats[j], axis=-1, workers=-1)[..., :n]
 
     edge = np.minimum(np.arange(n) + 0.5, n - 0.5 - np.arange(n))
     coi = factor * edge * dt / np.sqrt(2.0)
