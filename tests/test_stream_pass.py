@@ -349,6 +349,49 @@ def test_series_files_are_station_major(tmp_path):
     np.testing.assert_array_equal(on_disk[2], full[:, 2, :])
 
 
+def test_series_files_reserve_their_disk_before_the_pass(tmp_path, monkeypatch):
+    import ctypes
+    import errno
+
+    from coastmon.io import pages
+    from coastmon.stream import SeriesFile
+
+    shape = (500, 40, 60)
+    writer = SeriesFile(tmp_path / "ray_v.npy", shape)
+    size = (tmp_path / "ray_v.npy").stat().st_size
+    reserved = (tmp_path / "ray_v.npy").stat().st_blocks * 512
+    writer.close()
+    # check: numpy .npy format — header plus 4 bytes per value
+    assert size >= 4 * np.prod(shape)
+    if pages._FALLOCATE is not None and reserved:
+        # check: Linux fallocate(2) manual page — the blocks are allocated at once, so
+        # the file holds its whole size on disk before any value is written (skipped in
+        # effect where the file system cannot reserve blocks)
+        assert reserved >= 4 * np.prod(shape)
+
+    def full_disk(fd, mode, offset, length):
+        ctypes.set_errno(errno.ENOSPC)
+        return -1
+
+    monkeypatch.setattr(pages, "_FALLOCATE", full_disk)
+    # check: Linux fallocate(2) manual page — ENOSPC: not enough space left; the series
+    # file says so when it is created, before the pass reads anything
+    with pytest.raises(OSError) as info:
+        SeriesFile(tmp_path / "ray_u.npy", shape)
+    assert info.value.errno == errno.ENOSPC
+
+    def unsupported(fd, mode, offset, length):
+        ctypes.set_errno(errno.EOPNOTSUPP)
+        return -1
+
+    monkeypatch.setattr(pages, "_FALLOCATE", unsupported)
+    # a file system that cannot reserve blocks: nothing reserved, the series still work
+    writer = SeriesFile(tmp_path / "ray_w.npy", (3, 2, 2))
+    writer.write(0, np.ones((3, 2, 2), np.float32))
+    writer.close()
+    np.testing.assert_array_equal(writer.open(), np.ones((3, 2, 2)))
+
+
 @pytest.mark.parametrize("buffer_bytes", [1, 600, 2**20])
 def test_series_blocks_gathered_or_not_land_where_they_belong(tmp_path, monkeypatch,
                                                                buffer_bytes):

@@ -11,7 +11,11 @@ last release, and a scan over blocks of time maps only those blocks.
 
 from __future__ import annotations
 
+import ctypes
+import ctypes.util
+import errno
 import mmap
+import os
 
 import numpy as np
 
@@ -35,3 +39,38 @@ def release(*arrays) -> None:
             handle.madvise(advice)
         except (OSError, ValueError):  # closed or not allowed: nothing to release
             pass
+
+
+def _libc_fallocate():
+    """libc's ``fallocate`` (Linux), or None where there is none."""
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or None, use_errno=True)
+        func = libc.fallocate
+    except (OSError, AttributeError):
+        return None
+    func.argtypes = (ctypes.c_int, ctypes.c_int, ctypes.c_int64, ctypes.c_int64)
+    func.restype = ctypes.c_int
+    return func
+
+
+_FALLOCATE = _libc_fallocate() if os.name == "posix" else None
+
+
+def preallocate(fd: int, size: int) -> bool:
+    """Reserve ``size`` bytes of disk for an open file before it is written.
+
+    Blocks reserved at once make the many positioned writes of the series several times
+    cheaper on file systems that otherwise allocate while writing back (measured: 1 GB in
+    0.2 s instead of 1.6–2.1 s on ext4, docs/performance.md), and a disk too small for the
+    series fails here, before the pass, with ENOSPC. Only the system call itself is used:
+    where the file system cannot reserve blocks (no emulation by writing zeros), nothing
+    is done and False is returned.
+    """
+    if _FALLOCATE is None or size <= 0:
+        return False
+    if _FALLOCATE(fd, 0, 0, int(size)) == 0:
+        return True
+    err = ctypes.get_errno()
+    if err in (errno.ENOSPC, errno.EDQUOT):
+        raise OSError(err, os.strerror(err))
+    return False

@@ -46,6 +46,7 @@ from coastmon.errors import InputError, SettingsError
 from coastmon.grid.metrics import GridMetrics
 from coastmon.grid.operators import gradient
 from coastmon.io.damage import ChunkDecodeError
+from coastmon.io.pages import preallocate
 from coastmon.stream import kernels, readers
 from coastmon.stream.moments import MomentState, grid_signature, time_text
 from coastmon.stream.readers import ProcessReader, read_chunk
@@ -448,9 +449,15 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
     probe = frame.split(np.zeros((1, n_points), dtype=np.float32))
     sec_shape, ray_shape = probe[0].shape[1:], probe[1].shape[1:]
     files = {}
-    for name in series_names:
-        for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
-            files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy", (nt, *shape))
+    try:  # each file reserves its disk when created: a full disk stops the pass here
+        for name in series_names:
+            for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
+                files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy",
+                                                     (nt, *shape))
+    except OSError:
+        for writer in files.values():
+            writer.close()
+        raise
 
     valid_steps = np.zeros(nt, dtype=np.int64)
     state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
@@ -632,6 +639,11 @@ class SeriesFile:
         self.n_time = nt
         self.step_bytes = 4 * int(np.prod(rest))  # one station, one step
         self.fd = os.open(path, os.O_WRONLY)
+        try:
+            preallocate(self.fd, self.offset + ns * nt * self.step_bytes)
+        except OSError:
+            os.close(self.fd)
+            raise
         self._held: list[np.ndarray] = []
         self._held_t0 = 0
         self._held_steps = 0
