@@ -187,3 +187,35 @@ def test_nearshore_anomaly_by_station_blocks_equals_all_at_once(monkeypatch):
     # numpy may add the time steps in another order for a narrower block: last-bit changes)
     assert np.array_equal(np.isnan(got), np.isnan(want))
     np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-15)
+
+
+def test_alongshore_current_by_station_blocks_equals_all_at_once(monkeypatch):
+    import warnings
+
+    import pandas as pd
+    import xarray as xr
+
+    from coastmon.sources import detect
+
+    rng = np.random.default_rng(8)
+    u = rng.standard_normal((200, 9, 5)).astype(np.float32)
+    v = rng.standard_normal((200, 9, 5)).astype(np.float32)
+    v[rng.random(v.shape) < 0.3] = np.nan
+    offsets = np.array([0.0, 10, 20, 40, 80])
+    series = xr.Dataset({"section_u": (("time", "station", "offset"), u),
+                         "section_v": (("time", "station", "offset"), v)},
+                        coords={"offset_km": ("offset", offsets)})
+    # a coast running north along 10 W: along-shore flow is v
+    frame = type("Frame", (), {"stations": pd.DataFrame({
+        "segment_id": np.zeros(9, int), "alongshore_km": np.arange(9) * 10.0,
+        "lon": np.full(9, -10.0), "lat": 30.0 + np.arange(9) * 0.09})})()
+    whole = detect.alongshore_current(series, frame, 20.0)
+    monkeypatch.setattr(detect, "ANOMALY_BUDGET_BYTES", 16 * 200 * 3 * 2)  # 2 stations
+    blocks = detect.alongshore_current(series, frame, 20.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        want = np.nanmean(v[:, :, :3].astype(np.float64), axis=2)
+    # check: common practice, no source — on a meridional coast the along-shore current is
+    # the near-shore mean of v, whichever block of stations it is formed in
+    np.testing.assert_allclose(whole, want, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(blocks, whole, rtol=1e-12, atol=1e-15)

@@ -378,10 +378,20 @@ def alongshore_current(series: xr.Dataset, frame, nearshore_km: float) -> np.nda
     if not near.any():
         near = np.zeros_like(near)
         near[0] = True
+    su, sv = series["section_u"].values, series["section_v"].values
+    n_t, n_station = su.shape[:2]
+    u = np.empty((n_t, n_station))
+    v = np.empty((n_t, n_station))
+    # A block of stations at a time (station-major files), so the float64 copies and the
+    # mapped pages stay within a fixed budget however long the record.
+    block = max(1, ANOMALY_BUDGET_BYTES // (16 * n_t * int(near.sum())))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
-        u = np.nanmean(np.asarray(series["section_u"].values[:, :, near], float), axis=2)
-        v = np.nanmean(np.asarray(series["section_v"].values[:, :, near], float), axis=2)
+        for s0 in range(0, n_station, block):
+            for section, out in ((su, u), (sv, v)):
+                sub = np.asarray(section[:, s0:s0 + block][:, :, near], dtype=np.float64)
+                release(section)
+                out[:, s0:s0 + block] = np.nanmean(sub, axis=2)
     st = frame.stations
     east = np.zeros(len(st))
     north = np.zeros(len(st))
