@@ -89,6 +89,7 @@ from coastmon.sources.plumes import time_mean_error
 from coastmon.stream import prestart_readers, run_pass
 from coastmon.stream.pass_ import closing_spare_readers
 from coastmon.stream.readers import close_spares
+from coastmon.threads import one_blas_thread
 
 
 # --------------------------------------------------------------------------- preparation
@@ -265,6 +266,7 @@ def _analyse(series: xr.Dataset, frame, capes: pd.DataFrame, settings: Settings,
     return profiles, found, gates, ranked, gates_df, boot, axes, spacing
 
 
+@one_blas_thread
 def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataFrame,
                    settings: Settings, ld_km: float) -> Products:
     """Signals, sources, feeds, plumes and spin-up from the pass's small outputs."""

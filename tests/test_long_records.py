@@ -219,3 +219,23 @@ def test_alongshore_current_by_station_blocks_equals_all_at_once(monkeypatch):
     # the near-shore mean of v, whichever block of stations it is formed in
     np.testing.assert_allclose(whole, want, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(blocks, whole, rtol=1e-12, atol=1e-15)
+
+
+def test_analyses_run_with_one_blas_thread_and_restore_it():
+    from threadpoolctl import threadpool_info
+
+    from coastmon import pipeline
+    from coastmon.threads import one_blas_thread
+
+    def blas_threads():
+        return [p["num_threads"] for p in threadpool_info() if p["user_api"] == "blas"]
+
+    np.ones((4, 4)) @ np.ones(4)                     # the BLAS library is loaded
+    before = blas_threads()
+    seen = one_blas_thread(blas_threads)()
+    # check: threadpoolctl documentation (threadpool_limits sets the library's thread
+    # count inside the block and restores it after)
+    assert seen and all(n == 1 for n in seen)
+    assert blas_threads() == before
+    # the analyses of the series (the threaded part of analyze and update) are wrapped
+    assert pipeline.analyse_series.__wrapped__ is not None
