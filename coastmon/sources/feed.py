@@ -136,19 +136,21 @@ def eddy_energy_per_mass(u: np.ndarray, v: np.ndarray, p: np.ndarray | None = No
 
 
 def band_sample_count(n_t: int, dt_days: float, shortest_days: float) -> int:
-    r"""Fewest equally spaced samples of a record that keep the time mean of a product of
-    two of its band-limited parts exact.
+    r"""Fewest equally spaced samples of a record that carry the products of its
+    band-limited parts without loss.
 
     A part holding only the record's Fourier harmonics :math:`1 \le m \le K`, with
     :math:`K = \lfloor n_t \Delta t / P_{min} \rfloor` the harmonic of the shortest period
-    :math:`P_{min}`, is a trigonometric polynomial of degree K; the product of two is one of
-    degree 2K, and the mean of a trigonometric polynomial of degree below N over N equally
-    spaced points is its constant term. So N > 2K samples over the record give the same time
-    means of products (energies, the sums of the least-squares speed) as all :math:`n_t`
-    steps, to rounding; this is the sampling theorem applied to the squared signal
-    (Bracewell, *The Fourier Transform and Its Applications*, sampling theorem and
-    Parseval's theorem). The count is rounded up to a fast transform length and is never
-    more than ``n_t``.
+    :math:`P_{min}`, is a trigonometric polynomial of degree K; the product of two (an
+    energy, a term of the least-squares speed) is one of degree 2K. Sampled at N > 4K
+    equally spaced times it is sampled above its Nyquist rate, so the N samples determine
+    it (sampling theorem) and its mean over them is its mean over every step (Parseval's
+    theorem; Bracewell, *The Fourier Transform and Its Applications*): the time means are
+    those of all :math:`n_t` steps to rounding, and the series keep their slow
+    fluctuations, which the bootstrap resamples. (N > 2K would keep the means but fold the
+    products' fast fluctuations onto slow ones and change the bootstrap's spread: measured
+    12 % narrower intervals on the long benchmark record.) The count is rounded up to a
+    fast transform length and is never more than ``n_t``.
 
     Parameters
     ----------
@@ -162,10 +164,10 @@ def band_sample_count(n_t: int, dt_days: float, shortest_days: float) -> int:
     Returns
     -------
     int
-        The number of samples, ``2 K + 2 <= N <= n_t``.
+        The number of samples, ``4 K + 2 <= N <= n_t``.
     """
     k_max = int(np.floor(n_t * dt_days / shortest_days + 1e-9))
-    need = scipy.fft.next_fast_len(2 * k_max + 2, real=True)
+    need = scipy.fft.next_fast_len(4 * k_max + 2, real=True)
     return int(min(n_t, need))
 
 
@@ -406,33 +408,61 @@ def decorrelation_steps(x: np.ndarray) -> float:
     Used for the bootstrap block length; common practice (e.g. Bretherton et al. 1999 for
     effective sample size).
     """
+    acf = _mean_autocorrelation(x)
+    if acf.size == 0:
+        return 1.0
+    below = np.flatnonzero(acf < np.exp(-1))
+    return float(below[0]) if below.size else float(acf.size)
+
+
+def bootstrap_block(energy: np.ndarray, ratio: float = 1.0) -> int:
+    """Block length (in samples of ``energy``) of the feed's moving-block bootstrap.
+
+    Twice the e-folding lag of the energy series in record steps, rounded up (the first
+    whole lag at which the mean autocorrelation is below 1/e, as
+    :func:`decorrelation_steps`), at least ten record steps and at most a quarter of the
+    record. ``ratio`` is the number of record steps per sample of ``energy`` (1 when the
+    series has one sample per step): for a series sampled more sparsely
+    (:func:`band_sample_count`) the lag is where the autocorrelation, interpolated
+    linearly between samples, crosses 1/e, converted to record steps and rounded up as
+    for the full series, and the block is converted back to samples; so it lasts as long
+    as the full series' block. The block duration matters: on the long benchmark record a
+    block of 37 instead of 34 days narrowed the feed intervals by 9 %, while the sparse
+    series with the same 34-day block gave the full series' widths to 1 %.
+    """
+    n = energy.shape[0]
+    acf = _mean_autocorrelation(energy)
+    below = np.flatnonzero(acf < np.exp(-1))
+    if acf.size == 0:
+        lag = 1.0                                      # no variance: as decorrelation_steps
+    elif ratio == 1.0:
+        lag = float(below[0]) if below.size else float(n)
+    else:
+        if not below.size:
+            crossing = float(n)
+        elif below[0] == 0:
+            crossing = 0.0
+        else:
+            i = int(below[0])
+            crossing = i - 1 + (acf[i - 1] - np.exp(-1)) / (acf[i - 1] - acf[i])
+        lag = float(np.ceil(crossing * ratio - 1e-9))
+    block = min(max(2 * lag, 10), max(int(n * ratio) // 4, 1))
+    return int(max(1, round(block / ratio)))
+
+
+def _mean_autocorrelation(x: np.ndarray) -> np.ndarray:
+    """Mean over the columns of ``x`` of their autocorrelation at lags 0..n-1 (columns
+    without variance left out; empty when none has any)."""
     x = np.asarray(x, dtype=float)
     x = x - x.mean(axis=0)
     n = x.shape[0]
     var = (x**2).sum(axis=0)
     ok = var > 0
     if not ok.any():
-        return 1.0
+        return np.zeros(0)
     x = x[:, ok] / np.sqrt(var[ok])
     spec = np.fft.rfft(x, n=2 * n, axis=0)
-    acf = np.fft.irfft(np.abs(spec) ** 2, axis=0)[:n].mean(axis=1)
-    below = np.flatnonzero(acf < np.exp(-1))
-    return float(below[0]) if below.size else float(n)
-
-
-def bootstrap_block(energy: np.ndarray, ratio: float = 1.0) -> int:
-    """Block length (in samples of ``energy``) of the feed's moving-block bootstrap.
-
-    Twice the e-folding lag of the energy series (:func:`decorrelation_steps`), at least
-    ten record steps and at most a quarter of the record: the rule is stated in record
-    steps, and ``ratio`` (record steps per sample of ``energy``; 1 when the series has one
-    sample per step) converts it, so that a series sampled more sparsely
-    (:func:`band_sample_count`) is resampled in blocks of the same duration.
-    """
-    n = energy.shape[0]
-    lag = decorrelation_steps(energy) * ratio                # record steps
-    block = min(max(2 * np.ceil(lag), 10), max(int(n * ratio) // 4, 1))
-    return int(max(1, round(block / ratio)))
+    return np.fft.irfft(np.abs(spec) ** 2, axis=0)[:n].mean(axis=1)
 
 
 def net_flux_density(means: np.ndarray, max_speed_m_s: float) -> np.ndarray:
