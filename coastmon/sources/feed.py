@@ -148,8 +148,9 @@ def band_sample_count(n_t: int, dt_days: float, shortest_days: float) -> int:
     theorem; Bracewell, *The Fourier Transform and Its Applications*): the time means are
     those of all :math:`n_t` steps to rounding, and the series keep their slow
     fluctuations, which the bootstrap resamples. (N > 2K would keep the means but fold the
-    products' fast fluctuations onto slow ones and change the bootstrap's spread: measured
-    12 % narrower intervals on the long benchmark record.) The count is rounded up to a
+    products' fast fluctuations onto slow ones; with it the feed intervals of the long
+    benchmark record came out 7–12 % narrower, partly through a block length rounded to
+    whole samples, see :func:`bootstrap_block`.) The count is rounded up to a
     fast transform length and is never more than ``n_t``.
 
     Parameters
@@ -261,11 +262,10 @@ def _band_rows(field: np.ndarray, rows: np.ndarray) -> np.ndarray:
 
     Each distance is detrended (a least-squares line in time; the same numbers as
     :func:`coastmon.signals.propagation.detrend_time` to rounding) and transformed with
-    the time axis last, a few distances at a time: each group stays within
-    :data:`FORWARD_BLOCK_BYTES`, so that on long records two threads transforming rays
-    side by side work in their caches instead of contending for memory (measured on
-    23 360 steps: 2 threads took 49 ms per field of 60 distances before, about the time of
-    one thread alone).
+    the time axis last (contiguous rows), a few distances at a time, so that the float64
+    copy stays within :data:`FORWARD_BLOCK_BYTES` however long the record. (Two threads
+    transforming rays side by side were once no faster than one on long records; the
+    cause was the BLAS library's spinning threads, see :mod:`coastmon.threads`.)
     """
     n_t, n_d = field.shape
     ramp = np.arange(n_t, dtype=np.float64) - 0.5 * (n_t - 1)
