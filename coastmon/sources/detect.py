@@ -108,23 +108,39 @@ def nearshore_anomaly(section: np.ndarray, offsets_km: np.ndarray, nearshore_km:
     -------
     (time, station) anomaly about each station's time mean; NaN where never valid.
     """
+    near = _nearshore_offsets(offsets_km, nearshore_km)
+    out = np.empty(section.shape[:2])
+    for cols, sub in _station_blocks(section, near):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
+            anomaly = sub - np.nanmean(sub, axis=0, keepdims=True)
+            out[:, cols] = np.nanmean(anomaly, axis=2)
+    return out
+
+
+def _nearshore_offsets(offsets_km, nearshore_km: float) -> np.ndarray:
+    """Which section offsets are near shore (within ``nearshore_km``; the first if none)."""
     near = np.asarray(offsets_km) <= nearshore_km
     if not near.any():
         near = np.zeros_like(near)
         near[0] = True
+    return near
+
+
+def _station_blocks(section, near: np.ndarray):
+    """The near-shore offsets of a (time, station, offset) series, float64, a block of
+    stations at a time: yields ``(slice of stations, (time, block, near) array)``.
+
+    The files are station-major, so a block maps only its stations' pages, released after
+    each; the float64 copies stay within :data:`ANOMALY_BUDGET_BYTES` however long the
+    record.
+    """
     n_t, n_station = section.shape[:2]
-    out = np.empty((n_t, n_station))
-    # A block of stations at a time (the files are station-major), so the float64 copies
-    # stay within a fixed budget however long the record.
     block = max(1, ANOMALY_BUDGET_BYTES // (16 * n_t * int(near.sum())))
     for s0 in range(0, n_station, block):
         sub = np.asarray(section[:, s0:s0 + block][:, :, near], dtype=np.float64)
         release(section)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
-            anomaly = sub - np.nanmean(sub, axis=0, keepdims=True)
-            out[:, s0:s0 + block] = np.nanmean(anomaly, axis=2)
-    return out
+        yield slice(s0, s0 + block), sub
 
 
 def _fill_gaps(x: np.ndarray) -> np.ndarray:
@@ -373,25 +389,13 @@ def alongshore_current(series: xr.Dataset, frame, nearshore_km: float) -> np.nda
     """Near-shore velocity along the coast, (time, station), positive towards increasing
     ``alongshore_km``; the tangent at a station is the bearing between its neighbours on
     the same segment."""
-    offsets = np.asarray(series["offset_km"].values)
-    near = offsets <= nearshore_km
-    if not near.any():
-        near = np.zeros_like(near)
-        near[0] = True
-    su, sv = series["section_u"].values, series["section_v"].values
-    n_t, n_station = su.shape[:2]
-    u = np.empty((n_t, n_station))
-    v = np.empty((n_t, n_station))
-    # A block of stations at a time (station-major files), so the float64 copies and the
-    # mapped pages stay within a fixed budget however long the record.
-    block = max(1, ANOMALY_BUDGET_BYTES // (16 * n_t * int(near.sum())))
+    near = _nearshore_offsets(series["offset_km"].values, nearshore_km)
+    u, v = (np.empty(series["section_u"].shape[:2]) for _ in range(2))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
-        for s0 in range(0, n_station, block):
-            for section, out in ((su, u), (sv, v)):
-                sub = np.asarray(section[:, s0:s0 + block][:, :, near], dtype=np.float64)
-                release(section)
-                out[:, s0:s0 + block] = np.nanmean(sub, axis=2)
+        for name, out in (("section_u", u), ("section_v", v)):
+            for cols, sub in _station_blocks(series[name].values, near):
+                out[:, cols] = np.nanmean(sub, axis=2)
     st = frame.stations
     east = np.zeros(len(st))
     north = np.zeros(len(st))

@@ -57,7 +57,7 @@ import xarray as xr
 
 from coastmon.config import Settings
 from coastmon.io.pages import release
-from coastmon.signals.propagation import OMEGA_EARTH
+from coastmon.signals.propagation import OMEGA_EARTH, detrend_time
 
 G = 9.80665
 """Standard gravity (m s-2)."""
@@ -260,23 +260,19 @@ def _band_rows(field: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """Harmonics ``rows`` of the time transform of each distance of a detrended field,
     ``(distance, len(rows))``.
 
-    Each distance is detrended (a least-squares line in time; the same numbers as
-    :func:`coastmon.signals.propagation.detrend_time` to rounding) and transformed with
-    the time axis last (contiguous rows), a few distances at a time, so that the float64
-    copy stays within :data:`FORWARD_BLOCK_BYTES` however long the record. (Two threads
-    transforming rays side by side were once no faster than one on long records; the
-    cause was the BLAS library's spinning threads, see :mod:`coastmon.threads`.)
+    Each distance is detrended (:func:`coastmon.signals.propagation.detrend_time`) and
+    transformed with the time axis last (contiguous rows, about a quarter faster on long
+    records), a few distances at a time, so that the float64 copies stay within
+    :data:`FORWARD_BLOCK_BYTES` however long the record. (Two threads transforming rays
+    side by side were once no faster than one on long records; the cause was the BLAS
+    library's spinning threads, see :mod:`coastmon.threads`.)
     """
     n_t, n_d = field.shape
-    ramp = np.arange(n_t, dtype=np.float64) - 0.5 * (n_t - 1)
-    denom = float(ramp @ ramp)
     out = np.empty((n_d, rows.size), dtype=np.complex128)
     group = max(1, FORWARD_BLOCK_BYTES // (8 * max(n_t, 1)))
     for d0 in range(0, n_d, group):
-        lines = np.array(field[:, d0:d0 + group].T, dtype=np.float64, order="C")
-        lines -= lines.mean(axis=1, keepdims=True)
-        if denom > 0:
-            lines -= np.multiply.outer(lines @ ramp / denom, ramp)
+        lines = detrend_time(np.array(field[:, d0:d0 + group].T, dtype=np.float64,
+                                      order="C"), axis=1)
         out[d0:d0 + group] = scipy.fft.rfft(lines, axis=1, overwrite_x=True)[:, rows]
     return out
 
@@ -402,67 +398,51 @@ def block_bootstrap_means(series: np.ndarray, block: int, n_boot: int,
     return out.reshape((n_boot,) + series.shape[1:])
 
 
-def decorrelation_steps(x: np.ndarray) -> float:
+def decorrelation_lag(x: np.ndarray) -> float:
     """e-folding lag (in samples) of the mean autocorrelation of the columns of ``x``.
 
-    Used for the bootstrap block length; common practice (e.g. Bretherton et al. 1999 for
+    Where the mean autocorrelation first falls below 1/e, interpolated linearly between
+    that lag and the one before (so a series sampled sparsely gives the lag in between
+    its samples); the record length when it never does, 1 when no column varies. Used
+    for the bootstrap block length; common practice (e.g. Bretherton et al. 1999 for
     effective sample size).
     """
-    acf = _mean_autocorrelation(x)
-    if acf.size == 0:
-        return 1.0
-    below = np.flatnonzero(acf < np.exp(-1))
-    return float(below[0]) if below.size else float(acf.size)
-
-
-def bootstrap_block(energy: np.ndarray, ratio: float = 1.0) -> int:
-    """Block length (in samples of ``energy``) of the feed's moving-block bootstrap.
-
-    Twice the e-folding lag of the energy series in record steps, rounded up (the first
-    whole lag at which the mean autocorrelation is below 1/e, as
-    :func:`decorrelation_steps`), at least ten record steps and at most a quarter of the
-    record. ``ratio`` is the number of record steps per sample of ``energy`` (1 when the
-    series has one sample per step): for a series sampled more sparsely
-    (:func:`band_sample_count`) the lag is where the autocorrelation, interpolated
-    linearly between samples, crosses 1/e, converted to record steps and rounded up as
-    for the full series, and the block is converted back to samples; so it lasts as long
-    as the full series' block. The block duration matters: on the long benchmark record a
-    block of 37 instead of 34 days narrowed the feed intervals by 9 %, while the sparse
-    series with the same 34-day block gave the full series' widths to 1 %.
-    """
-    n = energy.shape[0]
-    acf = _mean_autocorrelation(energy)
-    below = np.flatnonzero(acf < np.exp(-1))
-    if acf.size == 0:
-        lag = 1.0                                      # no variance: as decorrelation_steps
-    elif ratio == 1.0:
-        lag = float(below[0]) if below.size else float(n)
-    else:
-        if not below.size:
-            crossing = float(n)
-        elif below[0] == 0:
-            crossing = 0.0
-        else:
-            i = int(below[0])
-            crossing = i - 1 + (acf[i - 1] - np.exp(-1)) / (acf[i - 1] - acf[i])
-        lag = float(np.ceil(crossing * ratio - 1e-9))
-    block = min(max(2 * lag, 10), max(int(n * ratio) // 4, 1))
-    return int(max(1, round(block / ratio)))
-
-
-def _mean_autocorrelation(x: np.ndarray) -> np.ndarray:
-    """Mean over the columns of ``x`` of their autocorrelation at lags 0..n-1 (columns
-    without variance left out; empty when none has any)."""
     x = np.asarray(x, dtype=float)
     x = x - x.mean(axis=0)
     n = x.shape[0]
     var = (x**2).sum(axis=0)
     ok = var > 0
     if not ok.any():
-        return np.zeros(0)
+        return 1.0
     x = x[:, ok] / np.sqrt(var[ok])
     spec = np.fft.rfft(x, n=2 * n, axis=0)
-    return np.fft.irfft(np.abs(spec) ** 2, axis=0)[:n].mean(axis=1)
+    acf = np.fft.irfft(np.abs(spec) ** 2, axis=0)[:n].mean(axis=1)
+    below = np.flatnonzero(acf < np.exp(-1))
+    if not below.size:
+        return float(n)
+    i = int(below[0])
+    if i == 0:
+        return 0.0
+    return i - 1 + float((acf[i - 1] - np.exp(-1)) / (acf[i - 1] - acf[i]))
+
+
+def bootstrap_block(energy: np.ndarray, ratio: float = 1.0) -> int:
+    """Block length (in samples of ``energy``) of the feed's moving-block bootstrap.
+
+    Twice the e-folding lag of the energy series (:func:`decorrelation_lag`) in record
+    steps, rounded up to a whole step, at least ten record steps and at most a quarter of
+    the record. ``ratio`` is the number of record steps per sample of ``energy`` (1 when
+    the series has one sample per step): a series sampled more sparsely
+    (:func:`band_sample_count`) has its lag converted to record steps and rounded up as
+    for the full series, and the block converted back to samples, so it lasts as long as
+    the full series' block. The block duration matters: on the long benchmark record a
+    block of 37 instead of 34 days narrowed the feed intervals by 9 %, while the sparse
+    series with the same 34-day block gave the full series' widths to 1 %.
+    """
+    n = energy.shape[0]
+    lag = float(np.ceil(decorrelation_lag(energy) * ratio - 1e-9))
+    block = min(max(2 * lag, 10), max(int(n * ratio) // 4, 1))
+    return int(max(1, round(block / ratio)))
 
 
 def net_flux_density(means: np.ndarray, max_speed_m_s: float) -> np.ndarray:

@@ -449,25 +449,21 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
     probe = frame.split(np.zeros((1, n_points), dtype=np.float32))
     sec_shape, ray_shape = probe[0].shape[1:], probe[1].shape[1:]
     files = {}
-    try:  # each file reserves its disk when created: a full disk stops the pass here
-        for name in series_names:
-            for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
-                files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy",
-                                                     (nt, *shape))
-    except OSError:
-        for writer in files.values():
-            writer.close()
-        raise
-
     valid_steps = np.zeros(nt, dtype=np.int64)
     state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
                               grid_signature(metrics.lon, metrics.lat))
     ncpu = os.cpu_count() or 1
     grid_size = metrics.shape[0] * metrics.shape[1]
     timings = dict.fromkeys(("read_s", "kernel_s", "sample_s", "merge_s", "write_s"), 0.0)
-    client = _client(settings.scheduler) if settings.scheduler else None
-    reader = None
+    client = reader = None
     try:
+        # Each series file reserves its disk when created: a full disk stops the pass here,
+        # before anything is read (the files made so far are closed below).
+        for name in series_names:
+            for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
+                files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy",
+                                                     (nt, *shape))
+        client = _client(settings.scheduler) if settings.scheduler else None
         if client is not None:
             nthreads = sum(client.nthreads().values()) or 1
             workers = max(1, len(client.nthreads()))
