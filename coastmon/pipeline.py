@@ -29,6 +29,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import dask
+import dask.local
 import geopandas as gpd
 import numpy as np
 import pandas as pd
@@ -89,7 +91,7 @@ from coastmon.sources.plumes import time_mean_error
 from coastmon.stream import prestart_readers, run_pass
 from coastmon.stream.pass_ import closing_spare_readers
 from coastmon.stream.readers import close_spares
-from coastmon.threads import one_blas_thread
+from coastmon.threads import import_in_background, one_blas_thread
 
 
 # --------------------------------------------------------------------------- preparation
@@ -138,7 +140,18 @@ def open_with_notes(inputs: list[str | Path], settings: Settings) -> tuple[xr.Da
 
 
 def prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
-    """Open the inputs lazily and build grid metrics, coastline, capes and frame."""
+    """Open the inputs lazily and build grid metrics, coastline, capes and frame.
+
+    The coordinates and the mask are read with dask's synchronous scheduler, given as the
+    function itself: they are small, and given no scheduler or one by name, dask first
+    looks for a dask.distributed client, importing that package (a sixth of a second)
+    even when no cluster is used.
+    """
+    with dask.config.set(scheduler=dask.local.get_sync):
+        return _prepare(inputs, settings)
+
+
+def _prepare(inputs: list[str | Path], settings: Settings) -> Prepared:
     ds, notes = open_with_notes(inputs, settings)
     prestart_readers(ds, settings.stream)  # they import their libraries meanwhile
     try:
@@ -175,6 +188,11 @@ def time_in_days(time: xr.DataArray) -> np.ndarray:
     delta = pd.to_timedelta(idx - idx[0])
     return np.asarray(delta.total_seconds(), dtype=float) / 86400.0
 
+
+REPORT_MODULES = ("coastmon.report.build",)
+"""Imported on a side thread during the streaming pass (:func:`import_in_background`):
+the figures' libraries take a third of a second to import, the pass's main thread
+mostly waits on reads meanwhile."""
 
 FEW_WINDOWS = 6
 """Fewest windows of the longest eddy period for the sensitivity measured in
@@ -631,6 +649,7 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings,
     timings["prepare_s"] = time.perf_counter() - t
     with staging_dir(out) as stage, owned_dir("coastmon-work-") as work:
         t = time.perf_counter()
+        import_in_background(*REPORT_MODULES)
         try:
             result = run_pass(prep.ds, prep.metrics, prep.frame, settings.stream, Path(work))
         except OSError as exc:

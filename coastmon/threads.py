@@ -9,11 +9,16 @@ take the cores the work needs: on the 23 360-step benchmark record the gates too
 and 42 s of processor time with the library's threads, 15.0 s and 26.7 s with one
 (docs/performance.md). :func:`one_blas_thread` limits the library to one thread for the
 duration of a call (``threadpoolctl``), and restores it after.
+
+:func:`import_in_background` imports modules needed later (the figures) on a thread of
+their own while the streaming pass waits on its reads.
 """
 
 from __future__ import annotations
 
 import functools
+import importlib
+import threading
 from collections.abc import Callable
 from typing import ParamSpec, TypeVar
 
@@ -32,3 +37,22 @@ def one_blas_thread(func: Callable[P, R]) -> Callable[P, R]:
             return func(*args, **kwargs)
 
     return wrapper
+
+
+def import_in_background(*modules: str) -> threading.Thread:
+    """Import ``modules`` on a daemon thread, so that a later import finds them loaded.
+
+    An import that fails here is left for the later, real import to report; Python's
+    per-module import locks make the later import wait for one still in progress.
+    """
+
+    def load() -> None:
+        for name in modules:
+            try:
+                importlib.import_module(name)
+            except Exception:  # reported by the import that needs the module
+                return
+
+    thread = threading.Thread(target=load, name="coastmon-imports", daemon=True)
+    thread.start()
+    return thread

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
+import tempfile
 
 import pytest
 
@@ -86,12 +88,14 @@ def test_an_internal_error_is_reported_without_a_traceback(tmp_path, monkeypatch
         raise KeyError("planted bug")
 
     monkeypatch.setattr(coastmon.pipeline, "coast", broken)
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))  # the report stays in tmp_path
     assert main(["coast", "x.nc", "--out", str(tmp_path / "o")]) == 1
     err = capsys.readouterr().err
     # check: common practice, no source (one paragraph, details saved for the bug report)
     assert "internal error" in err and "Traceback" not in err
     saved = err.split("traceback is in ")[1].split(";")[0]
     assert "planted bug" in open(saved).read()
+    assert os.path.dirname(saved) == str(tmp_path)
 
 
 def test_the_command_starts_without_the_slow_scipy_modules():

@@ -318,3 +318,50 @@ def test_long_records_are_drawn_as_block_means(tmp_path):
     path = wavelet_figure(tmp_path / "long.png", t, periods, power, power / 1.5,
                           np.minimum(t, t[::-1]) + 4.0, field[1])
     assert _decode(path).shape[1] <= 1400
+
+
+@pytest.mark.parametrize("decades", [(1.5, 12.0), (1e-6, 1e-2)])
+def test_log_colour_bars_are_labelled_in_plain_text(decades):
+    from matplotlib.colors import LogNorm
+    from matplotlib.figure import Figure
+
+    from coastmon.report.figures import _plain_log_colorbar
+
+    fig = Figure(figsize=(2, 4), dpi=DPI)
+    ax = fig.add_subplot()
+    mesh = ax.pcolormesh(np.geomspace(*decades, 16).reshape(4, 4), norm=LogNorm(*decades))
+    bar = fig.colorbar(mesh, ax=ax)
+    _plain_log_colorbar(bar)
+    fig.canvas.draw()
+    axis = bar.ax.yaxis
+    shown = [(loc, t.get_text()) for minor in (False, True)
+             for loc, t in zip(axis.get_ticklocs(minor=minor), axis.get_ticklabels(minor=minor),
+                               strict=True)
+             if decades[0] * 0.999 <= loc <= decades[1] * 1.001 and t.get_text()]
+    # check: common practice, no source — a log scale is labelled at its decades (and at
+    # some of the 2…9 multiples when it spans few decades), here in plain text, never in
+    # mathtext (no "$"), each label the number at its tick
+    digits = str.maketrans("⁻⁰¹²³⁴⁵⁶⁷⁸⁹", "-0123456789")
+    assert len(shown) >= 2 and not any("$" in text for _, text in shown)
+    for loc, text in shown:
+        value = 10.0 ** int(text[2:].translate(digits)) if text.startswith("10") and \
+            len(text) > 2 and not text[2].isdigit() else float(text)
+        assert value == pytest.approx(loc, rel=1e-9), (loc, text)
+    if decades[1] / decades[0] > 1e3:   # many decades: the decades alone
+        assert [text for _, text in sorted(shown)] == ["10⁻⁶", "10⁻⁵", "10⁻⁴", "0.001", "0.01"]
+    else:                               # under one decade: some multiples too
+        assert "10" in {text for _, text in shown}
+        assert any(not np.isclose(np.log10(loc) % 1.0, 0.0) for loc, _ in shown)
+
+
+def test_cape_labels_that_would_overlap_are_left_out():
+    from coastmon.report.figures import _apart
+
+    x = np.array([0.0, 1000.0])
+    labels = [("C30.3N012.9W", 100.0), ("C30.4N012.9W", 105.0), ("C31.0N013.0W", 400.0)]
+    kept = _apart(labels, x, width_in=7.0, fontsize=7.0)
+    # check: common practice, no source — 12 characters at 7 pt are about 50 pt wide, and
+    # 1000 km over 85 % of 7 in (428 pt) is 2.3 km per pt: labels 5 km apart collide,
+    # 300 km apart do not
+    assert kept == [labels[0], labels[2]]
+    assert _apart(labels, x, width_in=700.0, fontsize=7.0) == labels

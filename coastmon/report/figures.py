@@ -33,7 +33,7 @@ from matplotlib.colors import LogNorm, Normalize, TwoSlopeNorm
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
-from matplotlib.ticker import FuncFormatter
+from matplotlib.ticker import FuncFormatter, LogFormatter
 
 from coastmon.io.atomic import atomic_path
 from coastmon.io.position import lat_text, lon_text
@@ -136,6 +136,36 @@ def _lon_text(x: float, _pos: object = None) -> str:
 
 def _lat_text(y: float, _pos: object = None) -> str:
     return lat_text(round(y, 9), "g", "°")
+
+
+_SUPERSCRIPT = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+
+
+class _PlainLogFormatter(LogFormatter):
+    """matplotlib's choice of which logarithmic ticks to label (minor ones too when the
+    scale spans few decades), written as plain numbers: ``0.1``, ``2``, ``10``, and
+    ``10⁻⁵`` beyond a thousandth or ten thousand.
+
+    matplotlib's own labels for a logarithmic scale are mathtext, whose parser costs about
+    a tenth of a second per new label.
+    """
+
+    def __call__(self, x: float, pos: object = None) -> str:
+        if not super().__call__(x, pos) or not np.isfinite(x) or x <= 0:
+            return ""
+        if 1e-3 <= x < 1e4:
+            return f"{x:g}"
+        exponent = float(np.log10(x))
+        if abs(exponent - round(exponent)) < 1e-6:
+            return "10" + str(int(round(exponent))).translate(_SUPERSCRIPT)
+        mantissa, power = f"{x:.0e}".split("e")
+        return f"{mantissa}×10" + str(int(power)).translate(_SUPERSCRIPT)
+
+
+def _plain_log_colorbar(bar) -> None:
+    """Label a colour bar of a logarithmic norm with :class:`_PlainLogFormatter`."""
+    bar.ax.yaxis.set_major_formatter(_PlainLogFormatter(10.0, labelOnlyBase=True))
+    bar.ax.yaxis.set_minor_formatter(_PlainLogFormatter(10.0, labelOnlyBase=False))
 
 
 def _geo_axes(ax: Axes, lat2d: np.ndarray) -> None:
@@ -362,7 +392,7 @@ def alongshore_figure(
         ``(label with units, values per station)`` for each panel, top to bottom.
     capes_km
         ``(cape_id, distance)`` of each cape: thin grey lines through every panel,
-        labelled in the top panel.
+        labelled in the top panel where the label has room (:func:`_apart`).
     sources_km
         ``(rank, distance)`` of each source: dashed vermilion lines, labelled ``#rank``.
     """
@@ -386,7 +416,7 @@ def alongshore_figure(
         if n > 1:
             _panel_letter(ax, i)
     top = axes[0]
-    for name, km in capes_km:
+    for name, km in _apart(capes_km, x, fig.get_figwidth(), fontsize=7.0):
         top.annotate(str(name), (km, 1.0), xycoords=("data", "axes fraction"),
                      xytext=(0, 2), textcoords="offset points", ha="center", va="bottom",
                      fontsize=7, color="0.3", annotation_clip=False)
@@ -403,6 +433,28 @@ def alongshore_figure(
     if handles:
         axes[-1].legend(handles=handles, loc="upper right", framealpha=0.9)
     return _save(fig, path)
+
+
+def _apart(labels: Sequence[tuple[str, float]], x: np.ndarray, width_in: float,
+           fontsize: float) -> list[tuple[str, float]]:
+    """The labels ``(text, position)`` that fit side by side along an axis spanning ``x``.
+
+    From west to east along the coast, a label is kept when it does not reach into the
+    last one kept (width estimated at 0.6 em per character, the axis at 85 % of the figure
+    width); the others are left out, so neighbouring capes do not print over each other.
+    """
+    finite = x[np.isfinite(x)]
+    if not len(labels) or finite.size < 2 or finite.max() <= finite.min():
+        return list(labels)
+    km_per_pt = (finite.max() - finite.min()) / (0.85 * width_in * 72.0)
+    kept: list[tuple[str, float]] = []
+    right = -np.inf
+    for text, km in sorted(labels, key=lambda item: item[1]):
+        half = 0.5 * (0.6 * fontsize * len(str(text)) + 4.0) * km_per_pt
+        if km - half >= right:
+            kept.append((text, km))
+            right = km + half
+    return kept
 
 
 MAX_COLUMNS = 600
@@ -569,7 +621,9 @@ def wavelet_figure(
         Line2D([], [], color="black", linewidth=1.0, label="significant (red-noise test)"),
         Patch(facecolor="white", edgecolor="0.35", hatch="xx", label="cone of influence"),
     ], loc="lower left", framealpha=0.9)
-    fig.colorbar(mesh, ax=ax_w, label=power_label, extend=extend)
+    bar = fig.colorbar(mesh, ax=ax_w, label=power_label, extend=extend)
+    if isinstance(norm, LogNorm):
+        _plain_log_colorbar(bar)
     return _save(fig, path)
 
 

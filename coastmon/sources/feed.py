@@ -579,8 +579,12 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         last = max(int(windows[k][-1]) for k in used) - lo + 1
         parts = [directional_components(f, dt_days, dd_km, band, columns=(first, last),
                                         n_out=n_s) for f in fields]
-        # Per time step, window by window; a block of steps at a time so that the
-        # products stay in the processor's caches on long records.
+        # Per time step, window by window: the window means of the three products are
+        # one matrix product with the windows' averaging weights. A block of steps at a
+        # time, so that the products stay in the processor's caches on long records.
+        weights = np.zeros((last - first, len(used)))
+        for i, k in enumerate(used):
+            weights[windows[k] - lo - first, i] = 1.0 / windows[k].size
         stacks = np.empty((len(configs), n_s, N_SERIES))
         for t0 in range(0, n_s, TIME_BLOCK):
             t1 = min(n_s, t0 + TIME_BLOCK)
@@ -588,14 +592,10 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
                 q = [p[name][0][t0:t1] for p in parts]
                 q_t = [p[name][1][t0:t1] for p in parts]
                 q_d = [p[name][2][t0:t1] for p in parts]
-                q2 = sum(x ** 2 for x in q)
-                num = sum(-a * b for a, b in zip(q_t, q_d, strict=True))
-                den = sum(x ** 2 for x in q_d)
-                for k in used:
-                    sel = windows[k] - lo - first
-                    stacks[k, t0:t1, 3 * j] = 0.5 * q2[:, sel].mean(axis=1)
-                    stacks[k, t0:t1, 3 * j + 1] = num[:, sel].mean(axis=1)
-                    stacks[k, t0:t1, 3 * j + 2] = den[:, sel].mean(axis=1)
+                products = np.stack([0.5 * sum(x ** 2 for x in q),
+                                     sum(-a * b for a, b in zip(q_t, q_d, strict=True)),
+                                     sum(x ** 2 for x in q_d)])      # (3, time, distance)
+                stacks[used, t0:t1, 3 * j:3 * j + 3] = (products @ weights).transpose(2, 1, 0)
         means = np.full((len(configs), N_SERIES), np.nan)
         for k in used:
             means[k] = stacks[k].mean(axis=0)

@@ -38,6 +38,7 @@ from pathlib import Path
 
 import dask
 import dask.array as da
+import dask.local
 import numpy as np
 import xarray as xr
 
@@ -80,7 +81,9 @@ def read_chunk(arrays, t0: int, t1: int) -> tuple[list, float]:
     lazy = [one_block(b) for b in blocks if isinstance(b, da.Array)]
     try:
         if lazy:
-            computed = iter(dask.compute(*lazy, scheduler="synchronous"))
+            # The scheduler given as the function: by name, dask imports
+            # dask.distributed to look for a client first (a sixth of a second).
+            computed = iter(dask.compute(*lazy, scheduler=dask.local.get_sync))
             blocks = [next(computed) if isinstance(b, da.Array) else b for b in blocks]
         blocks = [None if b is None else np.asarray(b.values if isinstance(b, xr.DataArray)
                                                      else b) for b in blocks]
@@ -166,7 +169,7 @@ def serve() -> None:
     _small_chunk_cache()
     chunks.set_decode_threads(1)  # the processes are the parallelism here
     xr.set_options(file_cache_maxsize=open_files)
-    dask.config.set(scheduler="synchronous")
+    dask.config.set(scheduler=dask.local.get_sync)
     slots = [_map(fd, slot_bytes) for fd in fds]
     while True:
         try:
