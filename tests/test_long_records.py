@@ -261,3 +261,21 @@ def test_analyses_run_with_one_blas_thread_and_restore_it():
     assert blas_threads() == before
     # the analyses of the series (the threaded part of analyze and update) are wrapped
     assert pipeline.analyse_series.__wrapped__ is not None
+
+
+@pytest.mark.parametrize("n_t", [8, 1500, 1501])
+def test_trend_is_removed_in_spectral_space(n_t):
+    from coastmon.sources.feed import _band_rows
+
+    rng = np.random.default_rng(n_t)
+    field = rng.standard_normal((n_t, 5)) + np.outer(np.arange(n_t), rng.standard_normal(5))
+    rows = np.arange(1, n_t // 2 + 1)
+    # check: scipy.signal.detrend (a general-purpose reference library) followed by the
+    # transform; the ramp's harmonics n/(w - 1) are the geometric series sum of t w^t
+    import scipy.signal
+
+    want = scipy.fft.rfft(scipy.signal.detrend(field, axis=0, type="linear"), axis=0)[rows].T
+    np.testing.assert_allclose(_band_rows(field, rows), want, rtol=1e-10,
+                               atol=1e-10 * np.abs(want).max())
+    with pytest.raises(ValueError):
+        _band_rows(field, np.arange(0, 3))

@@ -57,7 +57,7 @@ import xarray as xr
 
 from coastmon.config import Settings
 from coastmon.io.pages import release
-from coastmon.signals.propagation import OMEGA_EARTH, detrend_time
+from coastmon.signals.propagation import OMEGA_EARTH
 
 G = 9.80665
 """Standard gravity (m s-2)."""
@@ -238,42 +238,57 @@ def directional_components(field: np.ndarray, dt_days: float, dd_km: float,
     if rows.size and 2 * rows[-1] >= n_out:
         raise ValueError(f"{n_out} samples cannot hold harmonic {rows[-1]} of the band")
 
-    def back(line: np.ndarray) -> np.ndarray:
-        # The band's harmonics placed in a spectrum of n_out samples: the same
-        # trigonometric polynomial, evaluated at n_out equally spaced times.
-        full = np.zeros((n_out // 2 + 1, hi - lo), dtype=np.complex128)
-        full[rows] = line
-        return scipy.fft.irfft(full, n=n_out, axis=0) * (n_out / n_t)
-
+    # Back along the line once per side, then back in time: the band's harmonics placed
+    # in a spectrum of n_out samples (the same trigonometric polynomial, evaluated at
+    # n_out equally spaced times), both sides and their time derivatives in one transform
+    # with time last.
+    full = np.zeros((4, hi - lo, n_out // 2 + 1), dtype=np.complex128)
+    for j, side in enumerate((kappa < 0, kappa > 0)):     # plus, minus
+        part = np.where((directional & side)[None, :], spec, 0.0)
+        line = scipy.fft.ifft(part, axis=1)[:, lo:hi].T
+        full[2 * j][:, rows] = line
+        full[2 * j + 1][:, rows] = line * d_t.T
+    series = scipy.fft.irfft(full, n=n_out, axis=2, overwrite_x=True)
+    series *= n_out / n_t
     out = {}
     keep = slice(start - lo, stop - lo)
-    for name, side in (("plus", kappa < 0), ("minus", kappa > 0)):
-        part = np.where((directional & side)[None, :], spec, 0.0)
-        line = scipy.fft.ifft(part, axis=1)[:, lo:hi]   # back along the line, once
-        q = back(line)
+    for j, name in enumerate(("plus", "minus")):
+        q = series[2 * j].T                                   # (time, distance) views
         q_d = along_derivative(q, dd_km * 1000.0)
-        out[name] = (q[:, keep], back(line * d_t)[:, keep], q_d[:, keep])
+        out[name] = (q[:, keep], series[2 * j + 1].T[:, keep], q_d[:, keep])
     return out
 
 
 def _band_rows(field: np.ndarray, rows: np.ndarray) -> np.ndarray:
-    """Harmonics ``rows`` of the time transform of each distance of a detrended field,
+    r"""Harmonics ``rows`` of the time transform of each distance of a detrended field,
     ``(distance, len(rows))``.
 
-    Each distance is detrended (:func:`coastmon.signals.propagation.detrend_time`) and
-    transformed with the time axis last (contiguous rows, about a quarter faster on long
-    records), a few distances at a time, so that the float64 copies stay within
-    :data:`FORWARD_BLOCK_BYTES` however long the record. (Two threads transforming rays
-    side by side were once no faster than one on long records; the cause was the BLAS
-    library's spinning threads, see :mod:`coastmon.threads`.)
+    Each distance is transformed with the time axis last (contiguous rows, about a quarter
+    faster on long records), a few distances at a time, so that the float64 copies stay
+    within :data:`FORWARD_BLOCK_BYTES` however long the record. The least-squares line of
+    :func:`coastmon.signals.propagation.detrend_time` is removed in spectral space: for
+    harmonic :math:`m \ge 1` of n steps the constant has no component and the centred ramp
+    :math:`t - (n-1)/2` has :math:`\sum_t t\,w^t = n/(w - 1)`, :math:`w = e^{-2\pi i m/n}`
+    (geometric series, since :math:`w^n = 1`), so only the slope is computed in time. The
+    same numbers as detrending first, to rounding, without the passes over the series that
+    subtracting the line takes. (Two threads transforming rays side by side were once no
+    faster than one on long records; the cause was the BLAS library's spinning threads,
+    see :mod:`coastmon.threads`.)
     """
     n_t, n_d = field.shape
+    rows = np.asarray(rows)
+    if rows.size and rows.min() < 1:
+        raise ValueError("the band's harmonics start at 1 (the mean is not in the band)")
+    t = np.arange(n_t, dtype=np.float64) - 0.5 * (n_t - 1)
+    denom = float(t @ t)
+    ramp = n_t / (np.exp(-2j * np.pi * rows / n_t) - 1.0)   # the ramp's harmonics
     out = np.empty((n_d, rows.size), dtype=np.complex128)
     group = max(1, FORWARD_BLOCK_BYTES // (8 * max(n_t, 1)))
     for d0 in range(0, n_d, group):
-        lines = detrend_time(np.array(field[:, d0:d0 + group].T, dtype=np.float64,
-                                      order="C"), axis=1)
-        out[d0:d0 + group] = scipy.fft.rfft(lines, axis=1, overwrite_x=True)[:, rows]
+        lines = np.array(field[:, d0:d0 + group].T, dtype=np.float64, order="C")
+        slope = (lines @ t) / denom if denom > 0 else np.zeros(lines.shape[0])
+        spec = scipy.fft.rfft(lines, axis=1, overwrite_x=True)[:, rows]
+        out[d0:d0 + group] = spec - slope[:, None] * ramp[None, :]
     return out
 
 
