@@ -64,6 +64,7 @@ from coastmon.io.ingest import open_dataset
 from coastmon.io.owned import owned_dir
 from coastmon.io.position import position_text
 from coastmon.io.results import CAUTIONS, write_results
+from coastmon.report.process import FigureProcess, start_figure_process
 from coastmon.signals import (
     cwt_morlet,
     default_deformation_radius_km,
@@ -530,31 +531,43 @@ def versions() -> dict[str, str]:
 
 # --------------------------------------------------------------------------- outputs
 def write_outputs(stage: Path, prep: Prepared, products: Products, settings: Settings,
-                  provenance: dict[str, Any], series: xr.Dataset | None = None) -> None:
+                  provenance: dict[str, Any], series: xr.Dataset | None = None,
+                  figure_process: FigureProcess | None = None) -> None:
     """Write every output of the contract into the staging folder.
 
-    ``series`` defaults to the series the products were computed from.
+    ``series`` defaults to the series the products were computed from. With a
+    ``figure_process`` (:mod:`coastmon.report.process`), the figures that need no GIS
+    layers are drawn there while this process writes the other outputs; nothing is
+    written into the staging folder after this returns or raises.
     """
-    from coastmon.report.build import write_figures_and_report
+    from coastmon.report.build import start_figures, write_figures_and_report
 
     series = products.series if series is None else series
     if "time_days" not in series.coords:
         series = series.assign_coords(time_days=("time", time_in_days(series["time"])))
-    layers = build_layers(prep.coastline, prep.capes, products, settings)
-    write_layers(layers, stage, settings.output.gis)
-    ds = prep.ds
-    t0, t1 = ds["time"].values[0], ds["time"].values[-1]
-    write_results(stage / "results.nc", products.stats, products.profiles,
-                  with_feed_bootstrap(products.spectra, products.bootstrap_feeds),
-                  attrs={"velocity_kind": ds.attrs.get("velocity_kind", "velocity"),
-                         "depth_m": ds.attrs.get("depth_m"),
-                         "deformation_radius_km": prep.ld_km,
-                         "jet_spacing_km": products.jet_spacing_km,
-                         "spinup_length_needed_days": products.spinup.length_needed_days},
-                  time_bounds=(str(t0), str(t1)))
-    if settings.output.figures or settings.output.report:
-        write_figures_and_report(stage, prep, products, layers, settings, provenance,
-                                 series=series)
+    drawing = settings.output.figures or settings.output.report
+    try:
+        started = start_figures(stage, prep, products, settings, series,
+                                figure_process) if drawing else []
+        layers = build_layers(prep.coastline, prep.capes, products, settings)
+        write_layers(layers, stage, settings.output.gis)
+        ds = prep.ds
+        t0, t1 = ds["time"].values[0], ds["time"].values[-1]
+        write_results(stage / "results.nc", products.stats, products.profiles,
+                      with_feed_bootstrap(products.spectra, products.bootstrap_feeds),
+                      attrs={"velocity_kind": ds.attrs.get("velocity_kind", "velocity"),
+                             "depth_m": ds.attrs.get("depth_m"),
+                             "deformation_radius_km": prep.ld_km,
+                             "jet_spacing_km": products.jet_spacing_km,
+                             "spinup_length_needed_days": products.spinup.length_needed_days},
+                      time_bounds=(str(t0), str(t1)))
+        if drawing:
+            write_figures_and_report(stage, prep, products, layers, settings, provenance,
+                                     series=series, started=started)
+    except BaseException:
+        if figure_process is not None:
+            figure_process.settle()   # no figure lands in a folder being cleaned up
+        raise
     atomic_write_text(stage / "run.json", json.dumps(provenance, indent=2, default=str))
 
 
@@ -642,6 +655,19 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings,
     t = time.perf_counter()
     inputs = [Path(p) for p in inputs]
     out = check_out_dir(Path(out), inputs)
+    # Started first: it imports matplotlib while this process builds the geometry.
+    drawer = start_figure_process(settings.output.figures or settings.output.report)
+    try:
+        products = _analyze(inputs, out, settings, add_to_stage, timings, t, drawer)
+    finally:
+        if drawer is not None:
+            drawer.close()
+    return AnalyzeResult(out, products, timings)
+
+
+def _analyze(inputs: list[Path], out: Path, settings: Settings,
+             add_to_stage: Callable[[Path], None] | None, timings: dict[str, float],
+             t: float, drawer: FigureProcess | None) -> Products:
     prep = prepare(inputs, settings)
     days = time_in_days(prep.ds["time"])
     check_record_length(days.size, float(np.median(np.diff(days))), settings,
@@ -673,13 +699,13 @@ def analyze(inputs: list[str | Path], out: str | Path, settings: Settings,
             "grid_shape": list(prep.metrics.shape),
             "deformation_radius_km": prep.ld_km,
         }
-        write_outputs(stage, prep, products, settings, provenance)
+        write_outputs(stage, prep, products, settings, provenance, figure_process=drawer)
         timings["outputs_s"] = time.perf_counter() - t
         # Written again so that run.json also carries the time the outputs took.
         atomic_write_text(stage / "run.json", json.dumps(provenance, indent=2, default=str))
         if add_to_stage is not None:
             add_to_stage(stage)
-    return AnalyzeResult(out, products, timings)
+    return products
 
 
 # --------------------------------------------------------------------------- coast only

@@ -513,7 +513,8 @@ def test_update_with_new_data_of_fill_values_is_refused(state, tmp_path, capsys)
 
 
 def _reader_children() -> list[int]:
-    """Process ids of this process's children that run a coastmon reader (Linux /proc)."""
+    """Process ids of this process's children that run a coastmon reader or the figure
+    process (Linux /proc)."""
     me, found = os.getpid(), []
     for entry in Path("/proc").iterdir():
         if not entry.name.isdigit():
@@ -524,7 +525,7 @@ def _reader_children() -> list[int]:
         except OSError:
             continue
         ppid = int(stat.rsplit(")", 1)[1].split()[1])
-        if ppid == me and "read_worker" in cmd:
+        if ppid == me and ("read_worker" in cmd or "draw_worker" in cmd):
             found.append(int(entry.name))
     return found
 

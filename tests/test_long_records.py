@@ -279,3 +279,19 @@ def test_trend_is_removed_in_spectral_space(n_t):
                                atol=1e-10 * np.abs(want).max())
     with pytest.raises(ValueError):
         _band_rows(field, np.arange(0, 3))
+
+
+def test_modules_imported_in_the_background_are_loaded_after_and_failures_left_silent():
+    import subprocess
+    import sys
+
+    # check: common practice, no source — in a fresh interpreter, a module imported on the
+    # side thread is in sys.modules once the thread ends, and a module that cannot be
+    # imported stops the thread quietly (the real import later reports it)
+    code = ("import sys; from coastmon.threads import import_in_background; "
+            "t = import_in_background('colorsys', 'no_such_module_here', 'this'); t.join(); "
+            "print('colorsys' in sys.modules, 'this' in sys.modules)")
+    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         timeout=120)
+    assert run.returncode == 0, run.stderr
+    assert run.stdout.split() == ["True", "False"] and "Traceback" not in run.stderr

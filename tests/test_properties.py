@@ -236,9 +236,11 @@ def test_safe_forms_pass_the_scanner():
                         "allow_pickle=False)\nds.eval('a + b')\n") == []
 
 
-PICKLE_BETWEEN_OWN_PROCESSES = {"stream/readers.py": ["pickle"]}
-"""The one allowed use: the streaming pass hands its lazy arrays to the reader processes it
-starts, and gets their answers back, over the anonymous pipes to them (no file, no socket)."""
+PICKLE_BETWEEN_OWN_PROCESSES = {"stream/readers.py": ["pickle"], "report/process.py": ["pickle"],
+                                "report/draw_worker.py": ["pickle"]}
+"""The allowed uses: the streaming pass hands its lazy arrays to the reader processes it
+starts, and analyze hands figure jobs to the figure process it starts, and each gets the
+answers back, over the anonymous pipes to them (no file, no socket)."""
 
 
 def test_package_never_deserialises_code_or_pickles():
@@ -263,3 +265,27 @@ def test_pickle_in_the_readers_only_crosses_pipes_to_their_own_processes():
         "pickle.dumps((arrays, self.fds, slot_bytes, self.layout, open_files))",
     }
     assert "requests = sys.stdin.buffer" in source
+
+
+def test_pickle_in_the_figure_process_only_crosses_pipes_to_it():
+    root = Path(coastmon.__file__).parent / "report"
+
+    def calls(name):
+        source = (root / name).read_text()
+        return source, {ast.unparse(node.func) + "(" + ", ".join(ast.unparse(a)
+                                                               for a in node.args) + ")"
+                        for node in ast.walk(ast.parse(source))
+                        if isinstance(node, ast.Call)
+                        and ast.unparse(node.func).startswith("pickle.")}
+
+    # check: common practice, no source (unpickle only what one's own process wrote)
+    _, parent = calls("process.py")
+    assert parent == {"pickle.dump((name, args, kwargs), self.proc.stdin)",  # its stdin
+                      "pickle.load(self.proc.stdout)"}       # the stdout of the child
+    source, child = calls("draw_worker.py")
+    assert child == {
+        "pickle.load(jobs)",               # its stdin, from the process that started it
+        "pickle.dumps(answer)", "pickle.loads(data)",   # its own answer, checked
+        "pickle.dumps(('error', RuntimeError(f'{type(answer[1]).__name__}: {answer[1]}')))",
+    }
+    assert "jobs = sys.stdin.buffer" in source

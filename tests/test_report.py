@@ -365,3 +365,68 @@ def test_cape_labels_that_would_overlap_are_left_out():
     # 300 km apart do not
     assert kept == [labels[0], labels[2]]
     assert _apart(labels, x, width_in=700.0, fontsize=7.0) == labels
+
+
+# ------------------------------------------------------------------ the figure process
+
+
+def _hovmoller_args(path):
+    t = np.arange(0.0, 720.0, 3.0)
+    d = np.arange(0.0, 600.0, 10.0)
+    tt, dd = np.meshgrid(t, d, indexing="ij")
+    return (path, t, d, np.sin(2 * np.pi * (dd - 1.73 * tt) / 150.0), "ζ (10⁻⁵ s⁻¹)")
+
+
+def test_the_figure_process_draws_the_same_picture(tmp_path):
+    from coastmon.report.process import FigureProcess, drawn
+
+    here = hovmoller_figure(*_hovmoller_args(tmp_path / "here.png"), speed_m_s=0.02)
+    process = FigureProcess()
+    try:
+        job = process.submit("hovmoller_figure", *_hovmoller_args(tmp_path / "there.png"),
+                             speed_m_s=0.02)
+        there = drawn(job, lambda: pytest.fail("the figure process was lost"))
+        # an error of the figure function comes back as itself
+        bad = process.submit("alongshore_figure", tmp_path / "bad.png", np.arange(3.0), [])
+        with pytest.raises(ValueError, match="at least one panel"):
+            bad.result(timeout=120)
+        with pytest.raises(ValueError):
+            process.submit("not_a_figure")
+    finally:
+        process.close()
+    assert process.proc.returncode == 0
+    # check: common practice, no source — the same function on the same numbers with the
+    # same libraries draws the same pixels in either process
+    np.testing.assert_array_equal(_decode(there), _decode(here))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["here.png", "there.png"]
+
+
+def test_a_figure_of_a_lost_process_is_drawn_here(tmp_path):
+    from coastmon.report.process import FigureProcess, drawn
+
+    process = FigureProcess()
+    process.proc.kill()
+    process.proc.wait()
+    try:
+        args = _hovmoller_args(tmp_path / "h.png")
+        job = process.submit("hovmoller_figure", *args)
+        path = drawn(job, lambda: hovmoller_figure(*args))
+    finally:
+        process.close()
+    # check: common practice, no source — a helper that dies costs time, never an output
+    assert path == tmp_path / "h.png"
+    _decode(path)
+
+
+def test_an_unused_figure_process_ends_at_once():
+    import time
+
+    from coastmon.report.process import FigureProcess
+
+    process = FigureProcess()
+    start = time.perf_counter()
+    process.close()
+    # check: common practice, no source — a run that stops early (an input error) does not
+    # wait for the helper to finish importing its libraries
+    assert time.perf_counter() - start < 1.0
+    assert process.proc.returncode is not None
