@@ -460,3 +460,30 @@ def test_southern_hemisphere_shedder_feeds_west(tmp_path, monkeypatch):
     # potential energy uses |f|), the feed is positive and matches the bookkeeping on its gate
     assert shed["gate_status"] == "ok" and shed["feed_lo"] > 0
     assert shed["feed_w_per_m"] == pytest.approx(planted, rel=0.25)
+
+
+@pytest.mark.parametrize("n_points", [32, 60, 90])
+def test_directional_split_of_a_plane_wave_does_not_depend_on_the_line_length(n_points):
+    from coastmon.sources.feed import directional_components
+
+    # A wave travelling toward +d (west along a westward ray) on lines of 310, 590 and
+    # 890 km, the window (100-260 km) the same: the line's length is a setting
+    # (coast.ray_length_km), not a property of the flow, and must not change the answer.
+    dt_days, dd_km, amplitude = 1.0, 10.0, 0.1
+    t = np.arange(730)[:, None] * dt_days
+    d = np.arange(n_points)[None, :] * dd_km
+    for wavelength_km in (150.0, 200.0, 330.0):
+        for period_days in (30.0, 60.0, 91.25):
+            field = amplitude * np.cos(2 * np.pi * (d / wavelength_km - t / period_days) + 0.3)
+            parts = directional_components(field, dt_days, dd_km, (10.0, 120.0),
+                                           columns=(10, 27))
+            q, q_t, q_d = parts["plus"]
+            energy = (q**2).mean() / (0.5 * amplitude**2)
+            leak = (parts["minus"][0] ** 2).mean() / (0.5 * amplitude**2)
+            speed = -(q_t * q_d).mean() / (q_d**2).mean()
+            phase_speed = wavelength_km * 1000.0 / (period_days * 86400.0)
+            # check: common practice, no source — the mean of cos² is 1/2, all of it
+            # travelling toward +d; Gill 1982 §12.4, a plane wave's crests move at ω/k
+            assert energy == pytest.approx(1.0, abs=0.05), (wavelength_km, period_days)
+            assert leak < 0.01
+            assert speed == pytest.approx(phase_speed, rel=0.05)
