@@ -430,3 +430,30 @@ def test_an_unused_figure_process_ends_at_once():
     # wait for the helper to finish importing its libraries
     assert time.perf_counter() - start < 1.0
     assert process.proc.returncode is not None
+
+
+@pytest.mark.skipif(not hasattr(__import__("signal"), "SIGSTOP"), reason="needs SIGSTOP")
+def test_a_hung_figure_process_is_ended_and_the_figure_drawn_here(tmp_path, monkeypatch):
+    import signal
+
+    import coastmon.report.process as proc
+    from coastmon.report.process import FigureProcess, drawn
+
+    monkeypatch.setattr(proc, "FIGURE_TIMEOUT_S", 3.0)
+    process = FigureProcess()
+    try:
+        process.proc.send_signal(signal.SIGSTOP)          # it never answers
+        args = _hovmoller_args(tmp_path / "h.png")
+        job = process.submit("hovmoller_figure", *args)
+        path = drawn(job, lambda: hovmoller_figure(*args))
+        # the next figure does not wait again: the process is gone
+        later = process.submit("hovmoller_figure", *_hovmoller_args(tmp_path / "k.png"))
+        with pytest.raises(proc.ProcessLost):
+            later.result(timeout=30)
+    finally:
+        process.close()
+    # check: common practice, no source — a helper that hangs costs a bounded wait, never
+    # an output, and is not left behind
+    assert path == tmp_path / "h.png"
+    _decode(path)
+    assert process.proc.returncode is not None

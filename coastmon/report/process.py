@@ -11,7 +11,8 @@ other figures. Each figure is written by its own function, atomically, as when d
 Jobs and answers are pickled through the pipes between the two processes only, as for the
 reader processes of the pass (:mod:`coastmon.stream.readers`); nothing read from a file is
 unpickled. A figure the process cannot draw because it has stopped (killed, out of memory,
-failed to start) is drawn here instead (:func:`drawn`): the outputs never depend on it.
+failed to start) or hangs (no answer within :data:`FIGURE_TIMEOUT_S`; it is then ended) is
+drawn here instead (:func:`drawn`): the outputs never depend on it.
 An error of the figure function itself (a full disk, say) comes back and is raised here.
 """
 
@@ -28,6 +29,10 @@ from collections.abc import Callable
 from concurrent.futures import Future, wait
 from pathlib import Path
 
+FIGURE_TIMEOUT_S = 120.0
+"""Longest wait for one figure of the process (each takes about a second): beyond it the
+process is taken as hung, ended, and the figure drawn here."""
+
 FIGURES = ("alongshore_figure", "hovmoller_figure", "map_figure", "ranking_figure",
            "spinup_figure", "wavelet_figure")
 """The functions of :mod:`coastmon.report.figures` the process may be asked to call."""
@@ -35,6 +40,14 @@ FIGURES = ("alongshore_figure", "hovmoller_figure", "map_figure", "ranking_figur
 
 class ProcessLost(Exception):
     """The figure process stopped before answering; the figure is drawn here instead."""
+
+
+class _Job(Future):
+    """The future of one figure, knowing the process that draws it."""
+
+    def __init__(self, process: FigureProcess) -> None:
+        super().__init__()
+        self.process = process
 
 
 class FigureProcess:
@@ -66,7 +79,7 @@ class FigureProcess:
         """Ask the process to call ``coastmon.report.figures.<name>(*args, **kwargs)``."""
         if name not in FIGURES:
             raise ValueError(f"{name} is not a figure function")
-        future: Future = Future()
+        future = _Job(self)
         self.used = True
         self.pending.append(future)
         self.jobs.put((future, name, args, kwargs))
@@ -96,6 +109,11 @@ class FigureProcess:
                 future.set_result(Path(value))
             else:
                 future.set_exception(value)
+
+    def stop(self) -> None:
+        """End the process now (it is hung): what it was asked is answered with
+        :class:`ProcessLost`."""
+        self.proc.kill()
 
     def settle(self) -> None:
         """Cancel the figures not yet started and wait for the one being drawn."""
@@ -136,10 +154,15 @@ def start_figure_process(enabled: bool) -> FigureProcess | None:
 
 def drawn(job: Future | Path, draw: Callable[[], Path]) -> Path:
     """The path of a figure: ``job`` itself, the answer of the figure process, or, when the
-    process stopped before drawing it, ``draw()`` here."""
+    process stopped before drawing it or gave no answer within :data:`FIGURE_TIMEOUT_S`
+    (it is then ended), ``draw()`` here."""
     if not isinstance(job, Future):
         return job
     try:
-        return job.result()
+        return job.result(timeout=FIGURE_TIMEOUT_S)
+    except TimeoutError:
+        if isinstance(job, _Job):
+            job.process.stop()
+        return draw()
     except ProcessLost:
         return draw()
