@@ -71,7 +71,6 @@ class FigureProcess:
             env=env)
         self.jobs: queue.SimpleQueue = queue.SimpleQueue()
         self.pending: list[Future] = []
-        self.used = False
         self.thread = threading.Thread(target=self._run, name="coastmon-figures", daemon=True)
         self.thread.start()
 
@@ -80,7 +79,6 @@ class FigureProcess:
         if name not in FIGURES:
             raise ValueError(f"{name} is not a figure function")
         future = _Job(self)
-        self.used = True
         self.pending.append(future)
         self.jobs.put((future, name, args, kwargs))
         return future
@@ -120,14 +118,13 @@ class FigureProcess:
         for future in self.pending:
             future.cancel()
         wait(self.pending)
-        self.pending = []
 
     def close(self) -> None:
         """Wait for the submitted figures, then end the process (at the end of its input;
         at once when it was given none, e.g. when the run stopped on an input error)."""
         self.jobs.put(None)
         self.thread.join()
-        if not self.used:
+        if not self.pending:
             self.proc.kill()
         try:
             self.proc.stdin.close()

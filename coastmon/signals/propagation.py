@@ -146,25 +146,17 @@ def _complete_block(field: np.ndarray) -> tuple[np.ndarray, tuple[int, int]]:
 
 
 
-def detrend_time(data: np.ndarray, axis: int = 0) -> np.ndarray:
-    """Remove a least-squares straight line in time at every distance of a (time, distance)
-    array, or of a (distance, time) array with ``axis=1``.
+def detrend_time(data: np.ndarray) -> np.ndarray:
+    """Remove a least-squares straight line in time (axis 0) at every distance.
 
     Closed-form normal equations for the line ``a + b t`` (the same result as
-    ``scipy.signal.detrend(data, axis=axis, type="linear")``, without a general solver).
-    With time on the last axis of a C-ordered array the result is C-ordered too (rows of
-    time, as a transform along them wants).
+    ``scipy.signal.detrend(data, axis=0, type="linear")``, without a general solver).
     """
     data = np.asarray(data, dtype=np.float64)
-    axis = axis % data.ndim
-    n = data.shape[axis]
+    n = data.shape[0]
     t = np.arange(n, dtype=np.float64) - 0.5 * (n - 1)
-    denom = float(np.sum(t * t))
-    if axis and axis == data.ndim - 1:                          # time last
-        mean = data.mean(axis=-1, keepdims=True)
-        slope = (data @ t) / denom if denom > 0 else np.zeros(data.shape[:-1])
-        return data - mean - slope[..., None] * t
     mean = data.mean(axis=0)
+    denom = float(np.sum(t * t))
     slope = (t @ data) / denom if denom > 0 else np.zeros_like(mean)
     return data - mean - np.multiply.outer(t, slope)
 
