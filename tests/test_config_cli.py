@@ -98,11 +98,14 @@ def test_an_internal_error_is_reported_without_a_traceback(tmp_path, monkeypatch
     assert os.path.dirname(saved) == str(tmp_path)
 
 
-def test_the_command_starts_without_the_slow_scipy_modules():
+def test_the_command_starts_without_the_slow_modules():
     # check: common practice, no source (scipy.signal and scipy.stats take about a second
-    # to import; the functions that need them import them when they run)
+    # to import, pint with its unit registry half a second, matplotlib a third: the
+    # functions that need them import them when they run; matplotlib is imported on a side
+    # thread during the pass and in the figure process)
     code = ("import sys, coastmon.cli, coastmon.pipeline; "
-            "print([m for m in ('scipy.signal', 'scipy.stats') if m in sys.modules])")
+            "print([m for m in ('scipy.signal', 'scipy.stats', 'pint', 'matplotlib') "
+            "if m in sys.modules])")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)
     assert out.stdout.strip() == "[]"

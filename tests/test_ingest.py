@@ -69,6 +69,8 @@ def test_udunits_strings_convert_like_pint():
         # check: pint (unit definitions of the reference library)
         assert scale_factor(udunits, target, "test") == pytest.approx(expected, rel=1e-12)
     assert udunits_to_pint("m s-1") == "m * s**-1"
+    # check: pint — the same unit spelled the same way (answered without loading pint) is 1
+    assert scale_factor("m s-1", "m s-1", "test") == ureg.Quantity(1.0, "m/s").to("m/s").magnitude
     # check: pint, degrees to radians
     assert scale_factor("degrees", "radian", "test") == pytest.approx(np.pi / 180, rel=1e-12)
 

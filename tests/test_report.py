@@ -392,13 +392,51 @@ def test_the_figure_process_draws_the_same_picture(tmp_path):
             bad.result(timeout=120)
         with pytest.raises(ValueError):
             process.submit("not_a_figure")
+        # it answered everything: it did not crash (it is ended on close, not left to unwind)
+        assert process.proc.poll() is None
     finally:
         process.close()
-    assert process.proc.returncode == 0
+    assert process.proc.returncode is not None
     # check: common practice, no source — the same function on the same numbers with the
     # same libraries draws the same pixels in either process
     np.testing.assert_array_equal(_decode(there), _decode(here))
     assert sorted(p.name for p in tmp_path.iterdir()) == ["here.png", "there.png"]
+
+
+@pytest.mark.skipif(not hasattr(__import__("signal"), "SIGSTOP"), reason="needs SIGSTOP")
+def test_figures_the_process_has_not_started_are_drawn_here_once(tmp_path):
+    import signal
+    import time
+
+    from coastmon.report.process import FigureProcess, drawn, take_back
+
+    process = FigureProcess()
+    try:
+        process.proc.send_signal(signal.SIGSTOP)          # busy with the first figure
+        jobs = []
+        for name in ("a", "b", "c"):
+            args = _hovmoller_args(tmp_path / f"{name}.png")
+            jobs.append((process.submit("hovmoller_figure", *args),
+                         lambda args=args: hovmoller_figure(*args)))
+        deadline = time.monotonic() + 30
+        while not jobs[0][0].running() and time.monotonic() < deadline:
+            time.sleep(0.01)
+        here = take_back(jobs)
+        process.proc.send_signal(signal.SIGCONT)
+        paths = [mine or drawn(job, lambda: pytest.fail("the process was lost"))
+                 for (job, _), mine in zip(jobs, here, strict=True)]
+    finally:
+        process.close()
+    # check: common practice, no source — work sharing: the two figures the process had not
+    # started are drawn here, from the last one back, and cancelled there (each drawn once);
+    # the one it was drawing comes from it
+    assert here[0] is None and here[1:] == [tmp_path / "b.png", tmp_path / "c.png"]
+    assert jobs[0][0].done() and not jobs[0][0].cancelled()
+    assert jobs[1][0].cancelled() and jobs[2][0].cancelled()
+    assert paths == [tmp_path / f"{n}.png" for n in "abc"]
+    for p in paths:
+        _decode(p)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.png", "b.png", "c.png"]
 
 
 def test_a_figure_of_a_lost_process_is_drawn_here(tmp_path):

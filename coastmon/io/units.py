@@ -13,10 +13,12 @@ from __future__ import annotations
 
 import re
 from functools import lru_cache
-
-import pint
+from typing import TYPE_CHECKING
 
 from coastmon.errors import InputError
+
+if TYPE_CHECKING:
+    import pint
 
 _POWER = re.compile(r"^([A-Za-z_]+)(\^|\*\*)?([+-]?\d+)$")
 _SEPARATOR = re.compile(r"(?<=[A-Za-z0-9_])\.(?=[A-Za-z_])")
@@ -24,6 +26,8 @@ _SEPARATOR = re.compile(r"(?<=[A-Za-z0-9_])\.(?=[A-Za-z_])")
 
 @lru_cache(maxsize=1)
 def _registry() -> pint.UnitRegistry:
+    import pint  # half a second with its registry: only for units that need converting
+
     return pint.UnitRegistry()
 
 
@@ -92,7 +96,11 @@ def scale_factor(units: str | None, target: str, where: str, default: str | None
                 todo=f"Add a units attribute (for example '{target}') to the variable",
             )
         units = default
+    if udunits_to_pint(str(units)) == udunits_to_pint(target):
+        return 1.0  # the same unit spelled the same way: nothing to convert
     ureg = _registry()
+    import pint
+
     try:
         source = ureg.Quantity(1.0, udunits_to_pint(str(units)))
         return float(source.to(udunits_to_pint(target)).magnitude)

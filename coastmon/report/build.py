@@ -14,7 +14,7 @@ import pandas as pd
 from coastmon.config import Settings
 from coastmon.report import figures as _figures
 from coastmon.report.html import write_report
-from coastmon.report.process import FigureProcess, drawn
+from coastmon.report.process import FigureProcess, drawn, take_back
 from coastmon.signals import (
     cwt_morlet,
     lag1_autocorrelation,
@@ -159,7 +159,10 @@ def write_figures_and_report(stage: Path, prep, products, layers: dict, settings
                                sp.threshold, sp.length_needed_days if sp.settled else None)
     later.append(("Spin-up: pattern correlation of the running time mean with the "
                   "full-record mean against averaging length.", p))
-    figures.extend((caption, drawn(job, local)) for caption, job, local in started)
+    # The figures the process has not started yet are drawn here, from the last one back.
+    here = take_back([(job, local) for _, job, local in started])
+    figures.extend((caption, mine or drawn(job, local))
+                   for (caption, job, local), mine in zip(started, here, strict=True))
     figures.extend(later)
     if not settings.output.report:
         return

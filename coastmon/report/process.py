@@ -6,7 +6,9 @@ core, whatever the record (docs/performance.md), while the other core waits.
 so that it imports matplotlib while this process builds the geometry on the other core,
 and later draws the figures handed to it (by the name of their function in
 :mod:`coastmon.report.figures`) while this process writes the other outputs and draws the
-other figures. Each figure is written by its own function, atomically, as when drawn here.
+other figures; this process then draws the handed-over figures the other has not started,
+from the last one back (:func:`take_back`), so that neither waits while figures remain.
+Each figure is written by its own function, atomically, as when drawn here.
 
 Jobs and answers are pickled through the pipes between the two processes only, as for the
 reader processes of the pass (:mod:`coastmon.stream.readers`); nothing read from a file is
@@ -120,12 +122,15 @@ class FigureProcess:
         wait(self.pending)
 
     def close(self) -> None:
-        """Wait for the submitted figures, then end the process (at the end of its input;
-        at once when it was given none, e.g. when the run stopped on an input error)."""
+        """End the process once the figures submitted so far are answered (or cancelled).
+
+        Each figure is written before its answer, so after the last answer the process
+        holds nothing unfinished: it is ended at once rather than left to unwind its
+        interpreter (a third of a second of matplotlib's clean-up the run would wait for).
+        """
         self.jobs.put(None)
         self.thread.join()
-        if not self.pending:
-            self.proc.kill()
+        self.proc.kill()
         try:
             self.proc.stdin.close()
         except OSError:
@@ -163,3 +168,22 @@ def drawn(job: Future | Path, draw: Callable[[], Path]) -> Path:
         return draw()
     except ProcessLost:
         return draw()
+
+
+def take_back(jobs: list[tuple[Future | Path, Callable[[], Path]]]) -> list[Path | None]:
+    """Draw here the figures the process has not started, from the last one back, while it
+    draws from the first one on; stop at the first that it has started (or answered).
+
+    Both processes then share the figures, whichever finishes its own work first taking
+    more of them. Returns, per job, the path drawn here, or None where the job is left to
+    the process (:func:`drawn` gives it).
+    """
+    out: list[Path | None] = [None] * len(jobs)
+    for i in range(len(jobs) - 1, -1, -1):
+        job, draw = jobs[i]
+        if not isinstance(job, Future) or not job.cancel():
+            break
+        out[i] = draw()
+    return out
+
+
