@@ -10,6 +10,7 @@ import scipy.signal
 from coastmon.errors import RecordError, SettingsError
 from coastmon.signals import (
     C_DELTA_MORLET6,
+    band_power,
     cwt_morlet,
     delta_reconstruction_factor,
     fourier_factor,
@@ -82,6 +83,25 @@ def test_band_limited_transform_matches_pycwt_on_its_scales() -> None:
     np.testing.assert_allclose(band.power, np.abs(w_ref[keep]) ** 2, rtol=1e-6,
                                atol=1e-9 * band.power.max())  # check: pycwt reference library
     np.testing.assert_array_equal(band.coefs, full.coefs[keep])
+
+
+def test_band_power_is_the_band_of_the_pycwt_transform_reduced() -> None:
+    x = np.random.default_rng(8).standard_normal((3, 700)).cumsum(axis=-1)
+    averaged, scale_mean, periods = band_power(x, 1.0, (10.0, 120.0), dj=0.125)
+    for row in range(3):
+        w_ref, scales_ref, freqs_ref, _, _, _ = pycwt.cwt(
+            x[row] - x[row].mean(), 1.0, 0.125, 2.0 / fourier_factor(6.0), -1, pycwt.Morlet(6.0))
+        keep = (1.0 / freqs_ref >= 10.0) & (1.0 / freqs_ref <= 120.0)
+        power = np.abs(w_ref[keep]) ** 2
+        np.testing.assert_allclose(periods, 1.0 / freqs_ref[keep], rtol=1e-12)  # check: pycwt reference library
+        expected = 0.125 / C_DELTA_MORLET6 * (power / scales_ref[keep][:, None]).sum(axis=0)
+        np.testing.assert_allclose(averaged[row], expected, rtol=1e-6,
+                                   atol=1e-9 * expected.max())  # check: Torrence & Compo 1998, eq. 24 on pycwt's coefficients
+        np.testing.assert_allclose(scale_mean[row], power.mean(axis=-1), rtol=1e-6)  # check: Torrence & Compo 1998, eq. 22 on pycwt's coefficients
+    # the same numbers as reducing the whole band-limited transform (no coefficients held)
+    wt = cwt_morlet(x, 1.0, dj=0.125, period_band=(10.0, 120.0))
+    np.testing.assert_array_equal(averaged, scale_average(wt, (10.0, 120.0)))
+    np.testing.assert_array_equal(scale_mean, wt.power.mean(axis=-1))
 
 
 def test_significance_levels_match_pycwt() -> None:

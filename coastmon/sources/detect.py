@@ -67,7 +67,7 @@ import xarray as xr
 
 from coastmon.config import Settings
 from coastmon.io.pages import release
-from coastmon.signals import cwt_morlet, scale_average
+from coastmon.signals import band_power
 
 WAVELET_BUDGET_BYTES = 128 * 2**20
 """Memory for the wavelet coefficients of the groups of stations transformed at once
@@ -285,22 +285,22 @@ def band_activity(x: np.ndarray, dt: float, settings: Settings
     full = np.empty(n_station)
     windows = np.empty((n_win, n_station))
     period = np.empty(n_station)
-    # Stations in groups, so the wavelet coefficients stay within a fixed budget however
-    # long the record; the groups on all cores (the transforms release the GIL), each
-    # with its share of the budget.
+    # Stations in groups, so that the arrays of one scale (:func:`band_power` holds no
+    # more: the series' transform, one scale's product, coefficients and power, 64 bytes
+    # per padded step) stay within a fixed budget however long the record; the groups on
+    # all cores (the transforms release the GIL), each with its share of the budget.
     workers = max(1, min(os.cpu_count() or 1, WAVELET_THREADS))
-    group = series_per_group(n_time, s.dj, WAVELET_BUDGET_BYTES // workers)
+    n_fft = 1 << max(0, int(n_time - 1).bit_length())
+    group = max(1, WAVELET_BUDGET_BYTES // workers // (64 * n_fft))
 
     def one_group(g0: int) -> None:
         g1 = min(n_station, g0 + group)
-        wt = cwt_morlet(x[g0:g1], dt, dj=s.dj, omega0=s.omega0, period_band=band)
-        averaged = scale_average(wt, band)
+        averaged, mean_power, periods = band_power(x[g0:g1], dt, band, dj=s.dj,
+                                                   omega0=s.omega0)
         full[g0:g1] = averaged.mean(axis=-1)
         for w in range(n_win):
             windows[w, g0:g1] = averaged[..., edges[w]:edges[w + 1]].mean(axis=-1)
-        in_band = (wt.periods >= band[0]) & (wt.periods <= band[1])
-        mean_power = wt.power[:, in_band].mean(axis=-1)
-        period[g0:g1] = wt.periods[in_band][np.argmax(mean_power, axis=-1)]
+        period[g0:g1] = periods[np.argmax(mean_power, axis=-1)]
 
     with ThreadPoolExecutor(max_workers=workers) as pool:
         list(pool.map(one_group, range(0, n_station, group)))
