@@ -417,7 +417,7 @@ def test_time_mean_error_matches_the_ar1_standard_error():
     rho = 0.7
     x = lfilter([1.0], [1, -rho], rng.standard_normal((60_000, 2, 3)), axis=0)
     x[1000:1010, 0, 0] = np.nan  # gaps are left out
-    mean, se = time_mean_error(x, block=257)
+    mean, se = time_mean_error(x)
     sd = np.nanstd(x, axis=0)
     # check: von Storch & Zwiers 1999 §6.6 — SE = sigma / sqrt(n (1-rho)/(1+rho))
     np.testing.assert_allclose(se, sd / np.sqrt(60_000 * (1 - rho) / (1 + rho)), rtol=0.05)

@@ -15,7 +15,9 @@ def test_running_means_and_correlations_match_numpy():
     a[rng.random(a.shape) < 0.05] = np.nan  # missing values are skipped
     b = (np.linspace(-1, 1, 4) + rng.standard_normal((nt, 4))).astype(np.float32)
     days = 2.0 * np.arange(nt)
-    curve = spinup_curve([a, b], days, block=64)
+    # station-major storage, as the pass writes its series: the sweep reads file order
+    stored = np.swapaxes(np.ascontiguousarray(np.swapaxes(a, 0, 1)), 0, 1)
+    curve = spinup_curve([stored, b], days)
     lengths = np.round(curve.length_days / 2.0).astype(int)
     assert lengths[-1] == nt and np.all(np.diff(lengths) > 0)
 

@@ -40,25 +40,47 @@ def pattern_correlation(a: np.ndarray, b: np.ndarray) -> float:
     return float((x * y).sum() / den) if den > 0 else float("nan")
 
 
+STATIONS_AT_ONCE = 16
+"""Stations (second axis) of a field swept before its pages are released."""
+
+
 @compiled()
-def _accumulate(values, total, count):  # pragma: no cover - compiled
-    """Add the finite values of (steps, points) to the running sums and counts."""
-    for t in range(values.shape[0]):
-        for p in range(values.shape[1]):
-            x = np.float64(values[t, p])
-            if np.isfinite(x):
-                total[p] += x
-                count[p] += 1.0
+def _running_means(values, marks, out):  # pragma: no cover - compiled
+    """Running means of the finite values of (time, station, k) at the step counts
+    ``marks`` (increasing), into ``out[mark, station * k]`` (NaN where none is finite).
+
+    Station by station, time in order at each point: the series files are stored station
+    by station, so this reads them in file order; each point's sum takes its values in
+    time order, as any sweep in time would.
+    """
+    n_t, n_s, n_k = values.shape
+    total = np.zeros(n_k)
+    count = np.zeros(n_k)
+    for s in range(n_s):
+        total[:] = 0.0
+        count[:] = 0.0
+        m = 0
+        for t in range(n_t):
+            for k in range(n_k):
+                x = np.float64(values[t, s, k])
+                if np.isfinite(x):
+                    total[k] += x
+                    count[k] += 1.0
+            while m < marks.size and marks[m] == t + 1:
+                for k in range(n_k):
+                    out[m, s * n_k + k] = total[k] / count[k] if count[k] > 0.0 else np.nan
+                m += 1
 
 
 def spinup_curve(fields: list[np.ndarray], time_days: np.ndarray, threshold: float = 0.9,
-                 n_lengths: int = 40, block: int = 256) -> SpinupCurve:
+                 n_lengths: int = 40) -> SpinupCurve:
     """Running-mean convergence of one or more (time, points...) fields.
 
     The fields are joined along their point axes (e.g. u and v on every frame point).
-    Running sums (float64) are accumulated one block of time steps at a time, in one
-    compiled sweep, and the running mean is taken at each of the ``n_lengths`` record
-    lengths, so memory stays bounded whatever the record length.
+    Running sums (float64) are accumulated point by point in one compiled sweep per group
+    of stations (the second axis), in the order the series are stored, and the running
+    mean is kept at each of the ``n_lengths`` record lengths: memory holds those means
+    and one group's pages, whatever the record length.
     """
     n_t = fields[0].shape[0]
     t = np.asarray(time_days, dtype=float)
@@ -67,20 +89,16 @@ def spinup_curve(fields: list[np.ndarray], time_days: np.ndarray, threshold: flo
                               2, n_t))
     sizes = [int(np.prod(f.shape[1:])) for f in fields]
     starts = np.concatenate([[0], np.cumsum(sizes)])
-    total = np.zeros(starts[-1])
-    count = np.zeros(starts[-1])
-    snapshots = []
-    edges = np.union1d(np.append(np.arange(0, n_t, block), n_t), marks)
-    for start, stop in zip(edges[:-1], edges[1:], strict=True):
-        for f, a, b in zip(fields, starts[:-1], starts[1:], strict=True):
-            part = np.ascontiguousarray(f[start:stop]).reshape(stop - start, -1)
-            _accumulate(part, total[a:b], count[a:b])
-        if stop in marks:
-            with np.errstate(invalid="ignore", divide="ignore"):
-                snapshots.append(total / count)
-        release(*fields)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        final = total / count
+    means = np.empty((marks.size, starts[-1]))
+    for f, a in zip(fields, starts[:-1], strict=True):
+        view = f.reshape(n_t, f.shape[1] if f.ndim > 1 else 1, -1)
+        k = view.shape[2]
+        for s0 in range(0, view.shape[1], STATIONS_AT_ONCE):
+            s1 = min(view.shape[1], s0 + STATIONS_AT_ONCE)
+            _running_means(view[:, s0:s1], marks, means[:, a + s0 * k:a + s1 * k])
+            release(f)
+    snapshots = list(means)
+    final = means[-1]
     corr = np.array([pattern_correlation(s, final) for s in snapshots])
     lengths = marks[: len(corr)] * dt
     above = corr >= threshold

@@ -36,29 +36,42 @@ from coastmon.compiled import compiled
 from coastmon.grid.metrics import haversine_m
 from coastmon.io.pages import release
 
+STATIONS_AT_ONCE = 16
+"""Stations (second axis) of a series swept before its pages are released."""
+
 
 @compiled()
-def _lagged_sums(part, prev, sums):  # pragma: no cover - compiled
-    """Add a block of (steps, points) to the sums of :func:`time_mean_error`; ``prev``
-    holds the last step of the previous block (NaN before the first) and is updated."""
-    for t in range(part.shape[0]):
-        for p in range(part.shape[1]):
-            a = prev[p]
-            b = np.float64(part[t, p])
-            if np.isfinite(b):
-                sums[0, p] += 1.0
-                sums[1, p] += b
-                sums[2, p] += b * b
-                if np.isfinite(a):
-                    sums[3, p] += a * b
-                    sums[4, p] += 1.0
-                    sums[5, p] += a
-                    sums[6, p] += b
-            prev[p] = b
+def _lagged_sums(values, sums):  # pragma: no cover - compiled
+    """The sums of :func:`time_mean_error` of (time, station, k), into ``sums[:, station * k]``.
+
+    Station by station, time in order at each point (the series files are stored station
+    by station, so this reads them in file order); NaN steps are left out, and so are
+    the lagged products that touch them.
+    """
+    n_t, n_s, n_k = values.shape
+    prev = np.empty(n_k)
+    for s in range(n_s):
+        prev[:] = np.nan
+        for t in range(n_t):
+            for k in range(n_k):
+                p = s * n_k + k
+                a = prev[k]
+                b = np.float64(values[t, s, k])
+                if np.isfinite(b):
+                    sums[0, p] += 1.0
+                    sums[1, p] += b
+                    sums[2, p] += b * b
+                    if np.isfinite(a):
+                        sums[3, p] += a * b
+                        sums[4, p] += 1.0
+                        sums[5, p] += a
+                        sums[6, p] += b
+                prev[k] = b
 
 
-def time_mean_error(values: np.ndarray, block: int = 256) -> tuple[np.ndarray, np.ndarray]:
-    r"""Time mean and its standard error over the first axis, a block of steps at a time.
+def time_mean_error(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    r"""Time mean and its standard error over the first axis, a group of stations (the
+    second axis) at a time.
 
     .. math:: \mathrm{SE} = \frac{s}{\sqrt{n'}},\qquad n' = n\,\frac{1-r_1}{1+r_1}
 
@@ -68,13 +81,14 @@ def time_mean_error(values: np.ndarray, block: int = 256) -> tuple[np.ndarray, n
     lagged products that touch them). NaN where fewer than three steps are finite.
     """
     shape = values.shape[1:]
+    n_t = values.shape[0]
+    view = values.reshape(n_t, shape[0] if shape else 1, -1)
+    k = view.shape[2]
     sums = np.zeros((7, int(np.prod(shape))))   # n, s1, s2, lag, n_lag, s_lag_a, s_lag_b
-    prev = np.full(sums.shape[1], np.nan)
-    for start in range(0, values.shape[0], block):
-        part = np.ascontiguousarray(values[start:start + block]).reshape(
-            -1, sums.shape[1])
+    for s0 in range(0, view.shape[1], STATIONS_AT_ONCE):
+        s1 = min(view.shape[1], s0 + STATIONS_AT_ONCE)
+        _lagged_sums(view[:, s0:s1], sums[:, s0 * k:s1 * k])
         release(values)
-        _lagged_sums(part, prev, sums)
     n, s1, s2, lag, n_lag, s_lag_a, s_lag_b = (x.reshape(shape) for x in sums)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = s1 / n
