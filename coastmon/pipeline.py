@@ -66,7 +66,7 @@ from coastmon.io.position import position_text
 from coastmon.io.results import CAUTIONS, write_results
 from coastmon.report.process import FigureProcess, start_figure_process
 from coastmon.signals import (
-    cwt_morlet,
+    band_power,
     default_deformation_radius_km,
     fourier_factor,
     long_rossby_speed,
@@ -408,13 +408,14 @@ def source_spectra(series: xr.Dataset, frame, ranked: pd.DataFrame, settings: Se
     group = series_per_group(x.shape[1], s.dj)
     spectra = []
     for g0 in range(0, x.shape[0], group):
-        wt = cwt_morlet(x[g0:g0 + group], dt, dj=s.dj, omega0=s.omega0)
-        spectra.append(wt.power.mean(axis=-1))
+        _, mean_power, periods = band_power(x[g0:g0 + group], dt, None, dj=s.dj,
+                                            omega0=s.omega0)
+        spectra.append(mean_power)
     out["source_wavelet_spectrum"] = xr.DataArray(
         np.concatenate(spectra), dims=("source", "period"),
         attrs={"long_name": "time-averaged wavelet power of near-shore relative vorticity",
                "units": "s-2"})
-    out = out.assign_coords(period=("period", wt.periods, {"long_name": "Fourier period",
+    out = out.assign_coords(period=("period", periods, {"long_name": "Fourier period",
                                                            "units": "days"}),
                             source=("source", ranked["rank"].values.astype(np.int32),
                                     {"long_name": "source rank", "units": "1"}))

@@ -165,8 +165,9 @@ def _transform(x, dt: float, dj: float, s0: float | None, J: int | None, omega0:
     return n, scales, variance, x_hat, psi_hats
 
 
-def band_power(x: np.ndarray, dt: float, period_band: tuple[float, float], dj: float = 0.125,
-               omega0: float = 6.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def band_power(x: np.ndarray, dt: float, period_band: tuple[float, float] | None,
+               dj: float = 0.125, omega0: float = 6.0
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     r"""Scale-averaged power over a band and the time-mean power at each of its scales,
     from the transform of :func:`cwt_morlet` reduced one scale at a time.
 
@@ -176,7 +177,8 @@ def band_power(x: np.ndarray, dt: float, period_band: tuple[float, float], dj: f
         \quad\text{(T\&C eq. 24)},\qquad
         \bar W^2(s_j) = \frac{1}{N}\sum_n |W_n(s_j)|^2 \quad\text{(T\&C eq. 22)},
 
-    over the scales of :func:`cwt_morlet` whose Fourier periods lie in ``period_band``.
+    over the scales of :func:`cwt_morlet` whose Fourier periods lie in ``period_band``
+    (None: all its scales, the global wavelet spectrum of T&C eq. 22 in ``scale_mean``).
     The same numbers as :func:`scale_average` of ``cwt_morlet(..., period_band=...)`` and
     that transform's ``power.mean(axis=-1)`` (each scale's coefficients are the same
     transform, summed in the same order), without holding the coefficients
@@ -192,8 +194,8 @@ def band_power(x: np.ndarray, dt: float, period_band: tuple[float, float], dj: f
     n, scales, _, x_hat, psi_hats = _transform(x, dt, dj, None, None, omega0, True,
                                                period_band)
     periods = fourier_factor(omega0) * scales
-    low, high = sorted(float(p) for p in period_band)
     if scales.size == 0:
+        low, high = sorted(float(p) for p in period_band)
         raise RecordError(
             "No wavelet scale falls in the requested band of periods",
             where=f"band {low:g}-{high:g} (same time unit as the record's step {dt:g})",
