@@ -185,5 +185,3 @@ def take_back(jobs: list[tuple[Future | Path, Callable[[], Path]]]) -> list[Path
             break
         out[i] = draw()
     return out
-
-
