@@ -572,8 +572,9 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         if direction[s] != -1:
             return None
         ok = np.isfinite(ray_lon[s])
-        u = np.asarray(ru[:, s, :], dtype=np.float64)
-        v = np.asarray(rv[:, s, :], dtype=np.float64)
+        # As stored (float32, station by station): the transforms convert each line to
+        # float64 as they read it, so no float64 copy of the whole ray is made here.
+        u, v = ru[:, s, :], rv[:, s, :]
         ok &= np.isfinite(u).all(axis=0) & np.isfinite(v).all(axis=0)
         h = None
         if has_ssh:
@@ -615,8 +616,10 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         for k in used:
             means[k] = stacks[k].mean(axis=0)
         nominal = stacks[0]
-        ua = u[:, windows[0]] - u[:, windows[0]].mean(axis=0)
-        va = v[:, windows[0]] - v[:, windows[0]].mean(axis=0)
+        uw = np.asarray(u[:, windows[0]], dtype=np.float64)
+        vw = np.asarray(v[:, windows[0]], dtype=np.float64)
+        ua = uw - uw.mean(axis=0)
+        va = vw - vw.mean(axis=0)
         kflux = float(np.mean(-ua * 0.5 * (ua**2 + va**2)))
         pwork = ssh_var = np.nan
         if has_ssh:
