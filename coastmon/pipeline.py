@@ -405,7 +405,7 @@ def source_spectra(series: xr.Dataset, frame, ranked: pd.DataFrame, settings: Se
     x = np.nan_to_num(zeta[:, ranked["station"].values.astype(int)].T)
     # Sources in groups, so the coefficients stay within a fixed budget however long the
     # record (each source's transform is independent of the others).
-    group = series_per_group(x.shape[1], s.dj)
+    group = series_per_group(x.shape[1])
     spectra = []
     for g0 in range(0, x.shape[0], group):
         _, mean_power, periods = band_power(x[g0:g0 + group], dt, None, dj=s.dj,

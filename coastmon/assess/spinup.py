@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from coastmon.compiled import compiled
-from coastmon.io.pages import release
+from coastmon.io.pages import release, station_blocks
 
 
 @dataclass
@@ -38,10 +38,6 @@ def pattern_correlation(a: np.ndarray, b: np.ndarray) -> float:
     y = b[ok] - b[ok].mean()
     den = np.sqrt((x * x).sum() * (y * y).sum())
     return float((x * y).sum() / den) if den > 0 else float("nan")
-
-
-STATIONS_AT_ONCE = 16
-"""Stations (second axis) of a field swept before its pages are released."""
 
 
 @compiled()
@@ -93,8 +89,7 @@ def spinup_curve(fields: list[np.ndarray], time_days: np.ndarray, threshold: flo
     for f, a in zip(fields, starts[:-1], strict=True):
         view = f.reshape(n_t, f.shape[1] if f.ndim > 1 else 1, -1)
         k = view.shape[2]
-        for s0 in range(0, view.shape[1], STATIONS_AT_ONCE):
-            s1 = min(view.shape[1], s0 + STATIONS_AT_ONCE)
+        for s0, s1 in station_blocks(view.shape[1]):
             _running_means(view[:, s0:s1], marks, means[:, a + s0 * k:a + s1 * k])
             release(f)
     snapshots = list(means)

@@ -19,6 +19,16 @@ import os
 
 import numpy as np
 
+STATIONS_PER_RELEASE = 16
+"""Stations of a station-by-station sweep read between two :func:`release` calls."""
+
+
+def station_blocks(n_stations: int):
+    """``(start, stop)`` of the blocks of :data:`STATIONS_PER_RELEASE` stations that a
+    sweep in file order reads before releasing the pages it mapped."""
+    for start in range(0, n_stations, STATIONS_PER_RELEASE):
+        yield start, min(n_stations, start + STATIONS_PER_RELEASE)
+
 
 def release(*arrays) -> None:
     """Unmap the pages of memory-mapped arrays (or views of them) from this process.

@@ -135,11 +135,7 @@ class FigureProcess:
             self.proc.stdin.close()
         except OSError:
             pass
-        try:
-            self.proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:  # pragma: no cover - not answering
-            self.proc.kill()
-            self.proc.wait()
+        self.proc.wait()
         self.proc.stdout.close()
         self.log.close()
 

@@ -250,14 +250,15 @@ def local_background(values: np.ndarray, s_km: np.ndarray, segment_id: np.ndarra
     return out
 
 
-def series_per_group(n_time: int, dj: float, budget_bytes: int | None = None) -> int:
-    """How many series of ``n_time`` steps to transform at once so that their complex
-    Morlet coefficients (all scales at spacing ``dj``) stay within ``budget_bytes``
-    (default ``WAVELET_BUDGET_BYTES``)."""
+def series_per_group(n_time: int, budget_bytes: int | None = None) -> int:
+    """How many series of ``n_time`` steps :func:`coastmon.signals.band_power` transforms at
+    once within ``budget_bytes`` (default ``WAVELET_BUDGET_BYTES``): it holds one scale's
+    arrays at a time (the series' transform, one scale's product, coefficients and power),
+    64 bytes per padded step and series."""
     if budget_bytes is None:
         budget_bytes = WAVELET_BUDGET_BYTES
-    per_series = 16 * n_time * (int(np.log2(max(n_time, 2)) / dj) + 1)
-    return max(1, budget_bytes // per_series)
+    n_fft = 1 << max(0, int(n_time - 1).bit_length())
+    return max(1, budget_bytes // (64 * n_fft))
 
 
 def band_activity(x: np.ndarray, dt: float, settings: Settings
@@ -285,13 +286,11 @@ def band_activity(x: np.ndarray, dt: float, settings: Settings
     full = np.empty(n_station)
     windows = np.empty((n_win, n_station))
     period = np.empty(n_station)
-    # Stations in groups, so that the arrays of one scale (:func:`band_power` holds no
-    # more: the series' transform, one scale's product, coefficients and power, 64 bytes
-    # per padded step) stay within a fixed budget however long the record; the groups on
-    # all cores (the transforms release the GIL), each with its share of the budget.
+    # Stations in groups within a fixed budget however long the record
+    # (:func:`series_per_group`); the groups on all cores (the transforms release the
+    # GIL), each with its share of the budget.
     workers = max(1, min(os.cpu_count() or 1, WAVELET_THREADS))
-    n_fft = 1 << max(0, int(n_time - 1).bit_length())
-    group = max(1, WAVELET_BUDGET_BYTES // workers // (64 * n_fft))
+    group = series_per_group(n_time, WAVELET_BUDGET_BYTES // workers)
 
     def one_group(g0: int) -> None:
         g1 = min(n_station, g0 + group)

@@ -34,10 +34,7 @@ from scipy.ndimage import gaussian_filter1d
 
 from coastmon.compiled import compiled
 from coastmon.grid.metrics import haversine_m
-from coastmon.io.pages import release
-
-STATIONS_AT_ONCE = 16
-"""Stations (second axis) of a series swept before its pages are released."""
+from coastmon.io.pages import release, station_blocks
 
 
 @compiled()
@@ -85,8 +82,7 @@ def time_mean_error(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     view = values.reshape(n_t, shape[0] if shape else 1, -1)
     k = view.shape[2]
     sums = np.zeros((7, int(np.prod(shape))))   # n, s1, s2, lag, n_lag, s_lag_a, s_lag_b
-    for s0 in range(0, view.shape[1], STATIONS_AT_ONCE):
-        s1 = min(view.shape[1], s0 + STATIONS_AT_ONCE)
+    for s0, s1 in station_blocks(view.shape[1]):
         _lagged_sums(view[:, s0:s1], sums[:, s0 * k:s1 * k])
         release(values)
     n, s1, s2, lag, n_lag, s_lag_a, s_lag_b = (x.reshape(shape) for x in sums)
