@@ -245,20 +245,12 @@ def _run(args: argparse.Namespace) -> int:
             text = pipeline.demo(args.out, variant=args.variant, progress=not args.no_progress)
             _print_result(text)
     except CoastmonError as exc:
+        if (interrupt := _interrupt_behind(exc)) is not None:
+            return _interrupted(interrupt)
         _say(f"coastmon: {exc}")
         return exc.exit_code
     except KeyboardInterrupt as exc:
-        signum = getattr(exc, "signum", int(signal.SIGINT))
-        name = getattr(exc, "name", "SIGINT")
-        owned.remove_all_registered()
-        done = owned.completed()
-        if done:
-            _say(f"coastmon: {name} arrived after the results were complete; they are kept, "
-                 f"complete, in {done[-1]} (exit status 0).")
-            return 0
-        _say(f"coastmon: interrupted ({name}); nothing was written to the output folder (its "
-             "earlier content, if any, is unchanged) and the temporary files were removed.")
-        return 128 + signum
+        return _interrupted(exc)
     except BrokenPipeError:
         _silence_stdout()
         done = owned.completed()
@@ -270,6 +262,8 @@ def _run(args: argparse.Namespace) -> int:
              "the output folder.")
         return 128 + int(getattr(signal, "SIGPIPE", 13))
     except Exception as exc:  # a bug in coastmon, not a user error: keep the details
+        if (interrupt := _interrupt_behind(exc)) is not None:
+            return _interrupted(interrupt)
         report = _save_traceback(exc)
         done = owned.completed()
         state = (f"the results in {done[-1]} are complete" if done
@@ -279,6 +273,41 @@ def _run(args: argparse.Namespace) -> int:
              "please include it when you report the problem.")
         return 1
     return 0
+
+
+def _interrupt_behind(exc: BaseException) -> KeyboardInterrupt | None:
+    """The signal behind an error that wraps it, or None.
+
+    A signal can arrive while a library runs code that turns every exception into its own
+    (Python 3.11 wraps an exception raised in a class body's ``__set_name__`` during an
+    import in a RuntimeError; a reader may turn it into "cannot read the file"). Such an
+    error is the signal, not a bug nor a bad input: it is found in the chain of causes.
+    """
+    seen: set[int] = set()
+    current: BaseException | None = exc
+    while current is not None and id(current) not in seen:
+        if isinstance(current, KeyboardInterrupt):
+            return current
+        seen.add(id(current))
+        current = current.__cause__ or current.__context__
+    return None
+
+
+def _interrupted(exc: KeyboardInterrupt) -> int:
+    """Report a run stopped by SIGINT, SIGTERM or SIGHUP; the exit status (0 if complete)."""
+    from coastmon.io import owned
+
+    signum = getattr(exc, "signum", int(signal.SIGINT))
+    name = getattr(exc, "name", "SIGINT")
+    owned.remove_all_registered()
+    done = owned.completed()
+    if done:
+        _say(f"coastmon: {name} arrived after the results were complete; they are kept, "
+             f"complete, in {done[-1]} (exit status 0).")
+        return 0
+    _say(f"coastmon: interrupted ({name}); nothing was written to the output folder (its "
+         "earlier content, if any, is unchanged) and the temporary files were removed.")
+    return 128 + signum
 
 
 def _silence_stdout() -> None:

@@ -98,6 +98,35 @@ def test_an_internal_error_is_reported_without_a_traceback(tmp_path, monkeypatch
     assert os.path.dirname(saved) == str(tmp_path)
 
 
+@pytest.mark.parametrize("wrapper", ["RuntimeError", "InputError"])
+def test_a_signal_wrapped_by_a_library_is_reported_as_the_signal(wrapper, tmp_path,
+                                                                  monkeypatch, capsys):
+    # A SIGINT landing inside a class body during an import reaches us as a RuntimeError
+    # (Python 3.11 wraps __set_name__ errors); a reader may turn one into an input error.
+    import signal
+
+    import coastmon.pipeline
+    from coastmon.errors import InputError
+    from coastmon.io.owned import Interrupted
+
+    def interrupted(*_args, **_kwargs):
+        try:
+            raise Interrupted(signal.SIGINT)
+        except Interrupted as exc:
+            if wrapper == "RuntimeError":
+                raise RuntimeError("Error calling __set_name__ on ...") from exc
+            raise InputError("Cannot read x.nc", where="x.nc") from exc
+
+    monkeypatch.setattr(coastmon.pipeline, "coast", interrupted)
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
+    # check: common practice, no source (a shell reports death by signal N as 128 + N)
+    assert main(["coast", "x.nc", "--out", str(tmp_path / "o")]) == 128 + signal.SIGINT
+    err = capsys.readouterr().err
+    assert "interrupted (SIGINT)" in err
+    assert "internal error" not in err and "Cannot read" not in err
+    assert not list(tmp_path.glob("coastmon-error-*"))
+
+
 def test_the_command_starts_without_the_slow_modules():
     # check: common practice, no source (scipy.signal and scipy.stats take about a second
     # to import, pint with its unit registry half a second, matplotlib a third: the
