@@ -137,7 +137,11 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
     workspace = kernels.Workspace() if workspace is None else workspace
     nt = u.shape[0]
     parts: dict[int, tuple] = {}
-    samples: dict[str, list] = {}
+    fields = {"u": u, "v": v, "zeta": z, "ssh": h}
+    # Station-major blocks, as the series files hold them: each sub-block's samples go
+    # straight to their place (no copies between the sampler and the file).
+    samples = {name: consts.sampler.blocks(nt) for name in ("u", "v", "zeta", "ssh")
+               if name == "zeta" or fields[name] is not None}
     valid = np.zeros(nt, dtype=np.int64)
     kernel_s = sample_s = 0.0
     for s0 in range(0, nt, consts.step_limit):
@@ -157,13 +161,13 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
         valid[s0:s1] = np.count_nonzero(np.isfinite(ub + vb).reshape(s1 - s0, -1), axis=1)
         for name, arr in (("u", ub), ("v", vb), ("zeta", zeta), ("ssh", hb)):
             if arr is not None:
-                samples.setdefault(name, []).append(consts.sampler(arr.reshape(s1 - s0, -1)))
+                consts.sampler.into(arr.reshape(s1 - s0, -1), *samples[name], s0)
         t2 = time.perf_counter()
         kernel_s += t1 - t0
         sample_s += t2 - t1
     return {
         "parts": parts,
-        "samples": {k: np.concatenate(val) for k, val in samples.items()},
+        "samples": samples,
         "valid_steps": valid,
         "kernel_s": kernel_s,
         "sample_s": sample_s,
@@ -474,7 +478,8 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             kernel_threads = max(1, ncpu // workers)
         consts = _Constants(
             gx=np.ascontiguousarray(metrics.gx), gy=np.ascontiguousarray(metrics.gy),
-            sampler=kernels.Sampler(sampler, np.asarray(frame.valid, dtype=np.bool_)),
+            sampler=kernels.Sampler(sampler, np.asarray(frame.valid, dtype=np.bool_),
+                                    *sec_shape),  # the frame's split
             ow_threshold=float(settings.ow_threshold), kernel_threads=kernel_threads,
             step_limit=max(1, CHUNK_BUDGET_BYTES // (SCRATCH_BYTES_PER_POINT * grid_size)),
         )
@@ -646,22 +651,29 @@ class SeriesFile:
 
     def write(self, t0: int, values: np.ndarray) -> None:
         """Write ``values`` ``(steps, station, k)`` at time steps ``t0, t0 + 1, ...``."""
+        self.write_stations(t0, np.swapaxes(np.asarray(values), 0, 1))
+
+    def write_stations(self, t0: int, values: np.ndarray) -> None:
+        """Write station-major ``values`` ``(station, steps, k)`` at steps ``t0, t0 + 1, ...``.
+
+        A C-ordered float32 block (as the pass's sampler makes them) is written as it is;
+        anything else is converted first.
+        """
         if self._held and t0 != self._held_t0 + self._held_steps:
             self.flush()
         if not self._held:
             self._held_t0 = t0
-        self._held.append(np.asarray(values, dtype=np.float32))
-        self._held_steps += values.shape[0]
+        self._held.append(np.ascontiguousarray(values, dtype=np.float32))
+        self._held_steps += values.shape[1]
         # steps held x bytes per station and step x stations
-        if self._held_steps * self.step_bytes * values.shape[1] >= SERIES_BUFFER_BYTES:
+        if self._held_steps * self.step_bytes * values.shape[0] >= SERIES_BUFFER_BYTES:
             self.flush()
 
     def flush(self) -> None:
         """Write the gathered blocks, station by station."""
         if not self._held:
             return
-        values = self._held[0] if len(self._held) == 1 else np.concatenate(self._held)
-        blocks = np.ascontiguousarray(np.swapaxes(values, 0, 1))
+        blocks = self._held[0] if len(self._held) == 1 else np.concatenate(self._held, axis=1)
         for s, block in enumerate(blocks):
             data = memoryview(block).cast("B")
             at = self.offset + (s * self.n_time + self._held_t0) * self.step_bytes
@@ -695,10 +707,9 @@ def _consume(out, t0, t1, state, files, frame, times, timings) -> None:
     state.merge_parts(out["parts"], t1 - t0, start, end)
     t2 = time.perf_counter()
     timings["merge_s"] += t2 - t
-    for name, samples in out["samples"].items():
-        section, rays = frame.split(samples)
-        files[f"section_{name}"].write(t0, section)
-        files[f"ray_{name}"].write(t0, rays)
+    for name, (section, rays) in out["samples"].items():   # station-major blocks
+        files[f"section_{name}"].write_stations(t0, section)
+        files[f"ray_{name}"].write_stations(t0, rays)
     timings["write_s"] += time.perf_counter() - t2
 
 
