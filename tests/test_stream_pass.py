@@ -331,6 +331,43 @@ def test_same_statistics_without_a_threadsafe_threading_layer(tmp_path):
     np.testing.assert_array_equal(np.load(tmp_path / "eke.npy"), expected)
 
 
+def test_sampler_blocks_hold_the_sparse_product_at_their_steps():
+    from scipy import sparse
+
+    from coastmon.stream import kernels
+
+    rng = np.random.default_rng(11)
+    n_st, n_off, n_ray, n_grid = 5, 3, 4, 60
+    n_pts = n_st * (n_off + n_ray)
+    rows = np.repeat(np.arange(n_pts), 4)
+    cols = rng.integers(0, n_grid, rows.size)
+    matrix = sparse.csr_matrix((rng.random(rows.size), (rows, cols)), shape=(n_pts, n_grid))
+    valid = rng.random(n_pts) > 0.1
+    x = rng.standard_normal((37, n_grid)).astype(np.float32)  # 2 blocks of 16 and 5 steps
+    x[rng.random(x.shape) < 0.3] = np.nan
+    x[:, cols[:4]] = np.nan                                  # point 0: no finite value
+    sampler = kernels.Sampler(matrix, valid, n_st, n_off)
+    section, rays = sampler.blocks(50)
+    section[:] = rays[:] = -1.0
+    sampler.into(x, section, rays, t0=5)
+    ok = np.isfinite(x)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        expected = (matrix @ np.where(ok, x, 0.0).T.astype(np.float64)) / (matrix @ ok.T)
+    expected[~valid] = np.nan
+    expected = expected.T                                    # (time, point)
+    # check: scipy.sparse product renormalised over the finite values, each step at its
+    # own place in the station-major blocks (station s, offset o is point s * O + o; ray
+    # points follow all section points)
+    np.testing.assert_allclose(section[:, 5:42], expected[:, :n_st * n_off]
+                               .reshape(37, n_st, n_off).swapaxes(0, 1), rtol=1e-6)
+    np.testing.assert_allclose(rays[:, 5:42], expected[:, n_st * n_off:]
+                               .reshape(37, n_st, n_ray).swapaxes(0, 1), rtol=1e-6)
+    assert np.isnan(section[0, 5:42, 0]).all()
+    assert (section[:, :5] == -1).all() and (rays[:, 42:] == -1).all()  # untouched
+    with pytest.raises(ValueError):
+        sampler.into(x, section, rays, t0=20)               # 37 steps do not fit after 20
+
+
 def test_series_files_are_station_major(tmp_path):
     from coastmon.stream import SeriesFile
 
