@@ -673,7 +673,7 @@ def merge_moments(
 
 SAMPLE_STEPS = 16
 """Time steps the sampler computes together: each point's indices and weights are read
-once for them (1.7 times as fast as one step at a time on the long benchmark record)."""
+once for them (1.6 times as fast as one step at a time on the long benchmark record)."""
 
 
 @compiled(parallel=True)
