@@ -306,7 +306,14 @@ def ensure_record(args: argparse.Namespace, variant: str) -> Path:
 def run_child(script: str, directory: Path, child_args: list[str], cold: bool,
               options: tuple[str, ...] = ()) -> dict:
     """Run one measurement in a fresh subprocess (after dropping the page cache if ``cold``)
-    and return its JSON record, with ``cache`` set to what was done."""
+    and return its JSON record, with ``cache`` set to what was done.
+
+    Dirty pages are written out first (``os.sync``): a record just built, or the previous
+    run's outputs, would otherwise be written back during the measured run, and once they
+    pass the kernel's dirty-page limits the run waits for the disk (a 20 000-step pass
+    measured at 25 s right after its record was written, against 14.6 s in a calm run).
+    """
+    os.sync()
     dropped = _drop_caches() if cold else False
     out = subprocess.run(
         [sys.executable, script, "--dir", str(directory), *options, "--child", *child_args],
