@@ -104,6 +104,32 @@ def test_bootstrap_block_of_band_samples_lasts_as_long_as_on_every_step():
     assert abs(days_sparse - days_every) <= ratio
 
 
+@pytest.mark.parametrize("n", [731, 1460])   # 2n = 1462 = 2·17·43, 2920 = 2^3·5·73
+def test_decorrelation_lag_is_that_of_the_direct_autocorrelation(n):
+    from coastmon.sources.feed import decorrelation_lag
+
+    rng = np.random.default_rng(n)
+    phi = 0.9
+    x = np.empty((n, 12))
+    x[0] = rng.standard_normal(12)
+    for t in range(1, n):
+        x[t] = phi * x[t - 1] + rng.standard_normal(12)
+    x[:, 3] = 0.0                                 # a column that does not vary is left out
+    # The direct autocorrelation of each varying column (numpy.correlate, no transforms),
+    # normalised by its lag-0 value, averaged over the columns; the first lag below 1/e,
+    # interpolated linearly.
+    a = x[:, np.abs(x).sum(axis=0) > 0] - x[:, np.abs(x).sum(axis=0) > 0].mean(axis=0)
+    acf = np.mean([np.correlate(c, c, "full")[n - 1:] / (c @ c) for c in a.T], axis=0)
+    i = int(np.flatnonzero(acf < np.exp(-1))[0])
+    direct = i - 1 + (acf[i - 1] - np.exp(-1)) / (acf[i - 1] - acf[i])
+    # check: numpy.correlate (the autocorrelation by its definition) — the transform-based
+    # lag equals it to rounding, whatever the padded length
+    assert decorrelation_lag(x) == pytest.approx(direct, rel=1e-12)
+    # check: Box & Jenkins (AR(1) autocorrelation phi^k): e-folding lag -1/ln(phi) = 9.5
+    # samples; a 731-step sample estimate lies within a quarter of it
+    assert decorrelation_lag(x) == pytest.approx(-1.0 / np.log(phi), rel=0.25)
+
+
 def _numpy_time_mean_error(values, block=256):
     """Time mean and standard error with numpy sums per block (before issue 21)."""
     shape = values.shape[1:]

@@ -429,9 +429,14 @@ def decorrelation_lag(x: np.ndarray) -> float:
     ok = var > 0
     if not ok.any():
         return 1.0
-    x = x[:, ok] / np.sqrt(var[ok])
-    spec = np.fft.rfft(x, n=2 * n, axis=0)
-    acf = np.fft.irfft(np.abs(spec) ** 2, axis=0)[:n].mean(axis=1)
+    # One series per row (contiguous), padded to a fast length of at least 2n - 1, which
+    # is all the linear autocorrelation needs (lags up to n - 1 do not wrap around). On a
+    # 9346-sample series this took 0.07 s where transforming the columns at length 2n
+    # (often a slow length) took 0.7-1.4 s; the result is the same to rounding.
+    lines = np.ascontiguousarray((x[:, ok] / np.sqrt(var[ok])).T)
+    n_fft = scipy.fft.next_fast_len(2 * n - 1, real=True)
+    spec = scipy.fft.rfft(lines, n=n_fft, axis=-1)
+    acf = scipy.fft.irfft(np.abs(spec) ** 2, n=n_fft, axis=-1)[:, :n].mean(axis=0)
     below = np.flatnonzero(acf < np.exp(-1))
     if not below.size:
         return float(n)
