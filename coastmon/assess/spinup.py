@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from coastmon.compiled import compiled
-from coastmon.io.pages import release, station_blocks
+from coastmon.io.pages import station_sweep
 
 
 @dataclass
@@ -87,11 +87,8 @@ def spinup_curve(fields: list[np.ndarray], time_days: np.ndarray, threshold: flo
     starts = np.concatenate([[0], np.cumsum(sizes)])
     means = np.empty((marks.size, starts[-1]))
     for f, a in zip(fields, starts[:-1], strict=True):
-        view = f.reshape(n_t, f.shape[1] if f.ndim > 1 else 1, -1)
-        k = view.shape[2]
-        for s0, s1 in station_blocks(view.shape[1]):
-            _running_means(view[:, s0:s1], marks, means[:, a + s0 * k:a + s1 * k])
-            release(f)
+        for cols, block in station_sweep(f):
+            _running_means(block, marks, means[:, a + cols.start:a + cols.stop])
     snapshots = list(means)
     final = means[-1]
     corr = np.array([pattern_correlation(s, final) for s in snapshots])

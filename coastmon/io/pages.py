@@ -23,11 +23,22 @@ STATIONS_PER_RELEASE = 16
 """Stations of a station-by-station sweep read between two :func:`release` calls."""
 
 
-def station_blocks(n_stations: int):
-    """``(start, stop)`` of the blocks of :data:`STATIONS_PER_RELEASE` stations that a
-    sweep in file order reads before releasing the pages it mapped."""
-    for start in range(0, n_stations, STATIONS_PER_RELEASE):
-        yield start, min(n_stations, start + STATIONS_PER_RELEASE)
+def station_sweep(values):
+    """A (time, station, ...) series swept in file order (the series files are station
+    major), :data:`STATIONS_PER_RELEASE` stations at a time.
+
+    Yields ``(columns, block)``: ``block`` is the ``(time, stations, k)`` view of those
+    stations (k: the trailing axes flattened, 1 when there are none) and ``columns`` the
+    slice they take in the flattened ``station * k`` point axis. The pages the block
+    mapped are released once the caller is done with it.
+    """
+    n_t = values.shape[0]
+    view = values.reshape(n_t, values.shape[1] if values.ndim > 1 else 1, -1)
+    k = view.shape[2]
+    for s0 in range(0, view.shape[1], STATIONS_PER_RELEASE):
+        s1 = min(view.shape[1], s0 + STATIONS_PER_RELEASE)
+        yield slice(s0 * k, s1 * k), view[:, s0:s1]
+        release(values)
 
 
 def release(*arrays) -> None:

@@ -120,6 +120,12 @@ def _scaled_morlet_hats(n_fft: int, dt: float, scales: tuple[float, ...], omega0
     return out
 
 
+def padded_length(n: int) -> int:
+    """Length of the zero-padded series the transforms use: the next power of two at or
+    above ``n`` (Torrence & Compo 1998, §3f)."""
+    return 1 << max(0, int(n) - 1).bit_length()
+
+
 def _transform(x, dt: float, dj: float, s0: float | None, J: int | None, omega0: float,
                pad: bool, period_band: tuple[float, float] | None) -> tuple:
     """What every scale's coefficients are made from (see :func:`cwt_morlet`): the record
@@ -157,7 +163,7 @@ def _transform(x, dt: float, dj: float, s0: float | None, J: int | None, omega0:
 
     anomaly = data - data.mean(axis=-1, keepdims=True)
     variance = np.mean(anomaly ** 2, axis=-1)
-    n_fft = int(2 ** np.ceil(np.log2(n))) if pad else n
+    n_fft = padded_length(n) if pad else n
     x_hat = scipy.fft.fft(anomaly, n=n_fft, axis=-1, workers=-1)
 
     psi_hats = _scaled_morlet_hats(n_fft, float(dt), tuple(float(sc) for sc in scales),

@@ -67,7 +67,7 @@ import xarray as xr
 
 from coastmon.config import Settings
 from coastmon.io.pages import release
-from coastmon.signals import band_power
+from coastmon.signals.wavelets import band_power, padded_length
 
 WAVELET_BUDGET_BYTES = 128 * 2**20
 """Memory for the wavelet coefficients of the groups of stations transformed at once
@@ -257,8 +257,7 @@ def series_per_group(n_time: int, budget_bytes: int | None = None) -> int:
     64 bytes per padded step and series."""
     if budget_bytes is None:
         budget_bytes = WAVELET_BUDGET_BYTES
-    n_fft = 1 << max(0, int(n_time - 1).bit_length())
-    return max(1, budget_bytes // (64 * n_fft))
+    return max(1, budget_bytes // (64 * padded_length(n_time)))
 
 
 def band_activity(x: np.ndarray, dt: float, settings: Settings

@@ -34,7 +34,7 @@ from scipy.ndimage import gaussian_filter1d
 
 from coastmon.compiled import compiled
 from coastmon.grid.metrics import haversine_m
-from coastmon.io.pages import release, station_blocks
+from coastmon.io.pages import station_sweep
 
 
 @compiled()
@@ -78,13 +78,9 @@ def time_mean_error(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     lagged products that touch them). NaN where fewer than three steps are finite.
     """
     shape = values.shape[1:]
-    n_t = values.shape[0]
-    view = values.reshape(n_t, shape[0] if shape else 1, -1)
-    k = view.shape[2]
     sums = np.zeros((7, int(np.prod(shape))))   # n, s1, s2, lag, n_lag, s_lag_a, s_lag_b
-    for s0, s1 in station_blocks(view.shape[1]):
-        _lagged_sums(view[:, s0:s1], sums[:, s0 * k:s1 * k])
-        release(values)
+    for cols, block in station_sweep(values):
+        _lagged_sums(block, sums[:, cols])
     n, s1, s2, lag, n_lag, s_lag_a, s_lag_b = (x.reshape(shape) for x in sums)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = s1 / n

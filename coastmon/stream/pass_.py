@@ -137,11 +137,9 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
     workspace = kernels.Workspace() if workspace is None else workspace
     nt = u.shape[0]
     parts: dict[int, tuple] = {}
-    fields = {"u": u, "v": v, "zeta": z, "ssh": h}
     # Station-major blocks, as the series files hold them: each sub-block's samples go
     # straight to their place (no copies between the sampler and the file).
-    samples = {name: consts.sampler.blocks(nt) for name in ("u", "v", "zeta", "ssh")
-               if name == "zeta" or fields[name] is not None}
+    samples: dict[str, tuple[np.ndarray, np.ndarray]] = {}
     valid = np.zeros(nt, dtype=np.int64)
     kernel_s = sample_s = 0.0
     for s0 in range(0, nt, consts.step_limit):
@@ -161,6 +159,8 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
         valid[s0:s1] = np.count_nonzero(np.isfinite(ub + vb).reshape(s1 - s0, -1), axis=1)
         for name, arr in (("u", ub), ("v", vb), ("zeta", zeta), ("ssh", hb)):
             if arr is not None:
+                if name not in samples:
+                    samples[name] = consts.sampler.blocks(nt)
                 consts.sampler.into(arr.reshape(s1 - s0, -1), *samples[name], s0)
         t2 = time.perf_counter()
         kernel_s += t1 - t0
@@ -545,7 +545,7 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
                 nxt = next(todo, None)
                 if nxt is not None:
                     pending.append((*nxt, submit(*nxt)))
-                _consume(out, t0, t1, state, files, frame, times, timings)
+                _consume(out, t0, t1, state, files, times, timings)
                 valid_steps[t0:t1] = out["valid_steps"]
                 done += 1
                 bar.update(1)
@@ -696,7 +696,7 @@ class SeriesFile:
         return np.swapaxes(np.load(self.path, mmap_mode="r"), 0, 1)
 
 
-def _consume(out, t0, t1, state, files, frame, times, timings) -> None:
+def _consume(out, t0, t1, state, files, times, timings) -> None:
     """Merge one chunk's moments into the running state and write its samples."""
     for key in ("read_s", "kernel_s", "sample_s"):
         timings[key] += out.get(key, 0.0)
