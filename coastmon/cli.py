@@ -173,18 +173,24 @@ def main(argv: list[str] | None = None) -> int:
     from coastmon.io import owned
 
     previous = owned.install_signal_handlers()
+    status = None
     try:
         with warnings.catch_warnings():
             _library_warnings_policy()
-            return _run(args)
+            status = _run(args)
+        return status
+    except KeyboardInterrupt as exc:
+        # Arrived outside _run's own handlers: as it was returning (the command has
+        # reported its end, so its status stands) or before it began.
+        return status if status is not None else _interrupted(exc)
     finally:
-        owned.remove_all_registered()
+        # Signals first: the run is over and reported, so neither the clean-up below nor
+        # the interpreter's shutdown may be cut short or change the status.
         if argv is None:
-            # The program itself: the run is over and reported, so a signal during the
-            # interpreter's shutdown must not change the exit status it reported.
             owned.ignore_signals()
         else:
             owned.restore_signal_handlers(previous)
+        owned.remove_all_registered()
 
 
 def _library_warnings_policy() -> None:

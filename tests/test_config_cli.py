@@ -127,6 +127,34 @@ def test_a_signal_wrapped_by_a_library_is_reported_as_the_signal(wrapper, tmp_pa
     assert not list(tmp_path.glob("coastmon-error-*"))
 
 
+@pytest.mark.parametrize("status", [0, 2])
+def test_a_signal_as_the_command_returns_keeps_its_status(status, tmp_path, monkeypatch,
+                                                          capsys):
+    # A signal landing after the run has reported its end (here: as the warnings context
+    # is left) must not turn into a traceback or change the reported status.
+    import contextlib
+    import signal
+
+    import coastmon.cli
+    from coastmon.io.owned import Interrupted
+
+    @contextlib.contextmanager
+    def interrupted_on_exit():
+        yield
+        raise Interrupted(signal.SIGINT)
+
+    monkeypatch.setattr(coastmon.cli, "_run", lambda args: status)
+    real = coastmon.cli.warnings.catch_warnings
+
+    def catch_warnings(*args, **kwargs):   # the command's own call has no arguments
+        return real(*args, **kwargs) if args or kwargs else interrupted_on_exit()
+
+    monkeypatch.setattr(coastmon.cli.warnings, "catch_warnings", catch_warnings)
+    # check: common practice, no source (a command's exit status is the one it reported)
+    assert main(["coast", "x.nc", "--out", str(tmp_path / "o")]) == status
+    assert "Traceback" not in capsys.readouterr().err
+
+
 def test_the_command_starts_without_the_slow_modules():
     # check: common practice, no source (scipy.signal and scipy.stats take about a second
     # to import, pint with its unit registry half a second, matplotlib a third: the
