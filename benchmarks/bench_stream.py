@@ -152,7 +152,9 @@ def measure_pass(path: Path, workdir: Path, read_processes: int | None = None,
     from coastmon.io import chunks
     from coastmon.io.ingest import open_dataset
     from coastmon.stream import prestart_readers, run_pass
+    from coastmon.threads import small_pages
 
+    small_pages()  # as the command line sets it (coastmon.threads)
     if library:
         chunks.eligible = lambda var: False
 

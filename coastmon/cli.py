@@ -171,9 +171,11 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 0
     from coastmon.io import owned
+    from coastmon.threads import small_pages
 
     previous = owned.install_signal_handlers()
     status = None
+    pages = small_pages()
     try:
         with warnings.catch_warnings():
             _library_warnings_policy()
@@ -191,6 +193,7 @@ def main(argv: list[str] | None = None) -> int:
         else:
             owned.restore_signal_handlers(previous)
         owned.remove_all_registered()
+        pages()
 
 
 def _library_warnings_policy() -> None:

@@ -7,6 +7,8 @@ replaces (written out in the test, as it stood before the shortcut).
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 import scipy.fft
@@ -322,3 +324,38 @@ def test_modules_imported_in_the_background_are_loaded_after_and_failures_left_s
                          timeout=120)
     assert run.returncode == 0, run.stderr
     assert run.stdout.split() == ["True", "False"] and "Traceback" not in run.stderr
+
+
+def test_numpy_gets_ordinary_pages_unless_the_user_chose():
+    import subprocess
+    import sys
+
+    # check: numpy documentation (NUMPY_MADVISE_HUGEPAGE: numpy asks for huge pages unless
+    # it is 0; read when numpy is imported) — in a fresh interpreter the switch is off
+    # after small_pages, a process started then inherits it, and restoring puts it back;
+    # a value the user set is left alone
+    code = (
+        "import os, subprocess, sys\n"
+        "try:\n"
+        "    from numpy._core.multiarray import _set_madvise_hugepage as switch\n"
+        "except ImportError:\n"
+        "    from numpy.core.multiarray import _set_madvise_hugepage as switch\n"
+        "from coastmon.threads import small_pages\n"
+        "switch(True)\n"
+        "restore = small_pages()\n"
+        "now = switch(False); switch(now)\n"
+        "child = subprocess.run([sys.executable, '-c', 'import os; "
+        "print(os.environ.get(\"NUMPY_MADVISE_HUGEPAGE\"))'], capture_output=True, text=True)"
+        ".stdout.strip()\n"
+        "restore()\n"
+        "after = switch(True)\n"
+        "print(now, child, after, os.environ.get('NUMPY_MADVISE_HUGEPAGE'))\n")
+    env = {k: v for k, v in os.environ.items() if k != "NUMPY_MADVISE_HUGEPAGE"}
+    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         timeout=120, env=env)
+    assert run.returncode == 0, run.stderr
+    assert run.stdout.split() == ["False", "0", "True", "None"]
+    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         timeout=120, env={**env, "NUMPY_MADVISE_HUGEPAGE": "1"})
+    assert run.returncode == 0, run.stderr
+    assert run.stdout.split() == ["True", "1", "True", "1"]

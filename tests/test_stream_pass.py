@@ -447,6 +447,29 @@ def test_series_blocks_gathered_or_not_land_where_they_belong(tmp_path, monkeypa
     np.testing.assert_array_equal(writer.open(), full)
 
 
+@pytest.mark.parametrize("buffer_bytes", [1, 600, 2**20])
+def test_a_written_block_may_be_reused_at_once(tmp_path, monkeypatch, buffer_bytes):
+    # The pass hands each chunk's sample blocks back for the next chunk as soon as they
+    # are written, so what the file gathers must not depend on the caller's block.
+    from coastmon.stream import SeriesFile, pass_
+
+    monkeypatch.setattr(pass_, "SERIES_BUFFER_BYTES", buffer_bytes)
+    rng = np.random.default_rng(7)
+    full = rng.standard_normal((3, 26, 2)).astype(np.float32)   # (station, time, k)
+    writer = SeriesFile(tmp_path / "s.npy", (26, 3, 2))
+    scratch = np.empty((3, 5, 2), np.float32)
+    for t0 in range(0, 26, 5):
+        steps = min(5, 26 - t0)
+        block = scratch[:, :steps] if steps == 5 else np.empty((3, steps, 2), np.float32)
+        block[...] = full[:, t0:t0 + steps]
+        writer.write_stations(t0, block)
+        block[...] = np.nan                                      # reused at once
+    writer.close()
+    # check: common practice, no source (the file holds what was written, not what the
+    # caller's block held later)
+    np.testing.assert_array_equal(np.swapaxes(writer.open(), 0, 1), full)
+
+
 FILES_SCRIPT = textwrap.dedent(
     """
     import json, os, sys

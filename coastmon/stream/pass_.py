@@ -120,11 +120,14 @@ class _Constants:
     step_limit: int
 
 
-def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> dict:
+def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None,
+                   blocks: Callable[[int], tuple[np.ndarray, np.ndarray]] | None = None
+                   ) -> dict:
     """All the work on one chunk: vorticity, eddy cores, moments per group, sampling.
 
     ``z`` is the given vorticity (the canonical ``zeta``, e.g. native C-grid vorticity) or
-    None, when the kernel computes it from u and v.
+    None, when the kernel computes it from u and v. ``blocks(n_time)`` gives the
+    station-major blocks the samples go to (:meth:`_BlockPool.take`; new ones when None).
 
     The kernels run on sub-blocks of at most ``consts.step_limit`` time steps so that
     their scratch arrays stay within :data:`CHUNK_BUDGET_BYTES` however large the
@@ -135,6 +138,7 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
     h = None if h is None else _as_float(h)
     z = None if z is None else _as_float(z)
     workspace = kernels.Workspace() if workspace is None else workspace
+    blocks = consts.sampler.blocks if blocks is None else blocks
     nt = u.shape[0]
     parts: dict[int, tuple] = {}
     # Station-major blocks, as the series files hold them: each sub-block's samples go
@@ -156,11 +160,14 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None) -> di
             else:
                 parts[g] = part
         t1 = time.perf_counter()
-        valid[s0:s1] = np.count_nonzero(np.isfinite(ub + vb).reshape(s1 - s0, -1), axis=1)
+        # Valid points per step, in the workspace's memory (not two new chunk-sized arrays).
+        both = np.add(ub, vb, out=workspace.get("u+v", ub.shape, ub.dtype))
+        finite = np.isfinite(both, out=workspace.get("finite", ub.shape, np.bool_))
+        valid[s0:s1] = np.count_nonzero(finite.reshape(s1 - s0, -1), axis=1)
         for name, arr in (("u", ub), ("v", vb), ("zeta", zeta), ("ssh", hb)):
             if arr is not None:
                 if name not in samples:
-                    samples[name] = consts.sampler.blocks(nt)
+                    samples[name] = blocks(nt)
                 consts.sampler.into(arr.reshape(s1 - s0, -1), *samples[name], s0)
         t2 = time.perf_counter()
         kernel_s += t1 - t0
@@ -220,19 +227,49 @@ def _yield_to_reader() -> None:
         pass
 
 
-def _process_read(read, groups, consts: _Constants, workspaces: queue.SimpleQueue) -> dict:
+def _process_read(read, groups, consts: _Constants, workspaces: queue.SimpleQueue,
+                  pool: _BlockPool) -> dict:
     """Local-thread task: wait for a chunk's read (done by the reader thread), then process it.
 
-    ``workspaces`` holds one kernel workspace per worker thread, reused between chunks.
+    ``workspaces`` holds one kernel workspace per worker thread, reused between chunks;
+    ``pool`` the sample blocks, handed back once written.
     """
     blocks, read_s = read.result()
     workspace = workspaces.get()
     try:
-        out = _process_block(*blocks, groups, consts, workspace)
+        out = _process_block(*blocks, groups, consts, workspace, pool.take)
     finally:
         workspaces.put(workspace)
     out["read_s"] = read_s
     return out
+
+
+class _BlockPool:
+    """Sample blocks (:meth:`kernels.Sampler.blocks`) reused from chunk to chunk.
+
+    A new block is new memory, which the system must clear before the sampler first writes
+    to it; with a new set for every chunk that came to as many bytes as the series files
+    themselves (1.1 GB on the long benchmark record), and clearing fresh pages is slow on
+    some machines (see :mod:`coastmon.threads`). The consumer gives each chunk's blocks back
+    once they are written (:func:`_consume`), so at most the chunks in flight hold blocks.
+    Thread-safe: the workers take, the main thread gives.
+    """
+
+    def __init__(self, sampler: kernels.Sampler) -> None:
+        self.sampler = sampler
+        self.lock = threading.Lock()
+        self.free: dict[int, list[tuple[np.ndarray, np.ndarray]]] = {}
+
+    def take(self, n_time: int) -> tuple[np.ndarray, np.ndarray]:
+        with self.lock:
+            spare = self.free.get(n_time)
+            if spare:
+                return spare.pop()
+        return self.sampler.blocks(n_time)
+
+    def give(self, blocks: tuple[np.ndarray, np.ndarray]) -> None:
+        with self.lock:
+            self.free.setdefault(blocks[0].shape[1], []).append(blocks)
 
 
 def _check_dataset(ds: xr.Dataset, metrics: GridMetrics) -> list[str]:
@@ -488,6 +525,7 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             window = 2 * nthreads
             submit, collect, pool = _distributed_submitter(client, ds, names, bounds, consts,
                                                            groups)
+            give_back = None  # the blocks were made by the workers
         else:
             # One reader thread reads the chunks in order, so the input is read as one
             # uninterrupted stream, while the workers compute; on compressed input a few
@@ -516,6 +554,8 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             workspaces = queue.SimpleQueue()
             for _ in range(workers):
                 workspaces.put(kernels.Workspace())
+            block_pool = _BlockPool(consts.sampler)
+            give_back = block_pool.give
             counter = iter(range(len(bounds)))
 
             def submit(t0, t1):
@@ -523,7 +563,8 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
                     read = reader.submit(next(counter), t0, t1)
                 else:
                     read = reader.submit(read_chunk, arrays, t0, t1)
-                return pool.submit(_process_read, read, groups[t0:t1], consts, workspaces)
+                return pool.submit(_process_read, read, groups[t0:t1], consts, workspaces,
+                                   block_pool)
 
             def collect(future):
                 return future.result()
@@ -545,7 +586,7 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
                 nxt = next(todo, None)
                 if nxt is not None:
                     pending.append((*nxt, submit(*nxt)))
-                _consume(out, t0, t1, state, files, times, timings)
+                _consume(out, t0, t1, state, files, times, timings, give_back)
                 valid_steps[t0:t1] = out["valid_steps"]
                 done += 1
                 bar.update(1)
@@ -624,8 +665,10 @@ class SeriesFile:
     contiguous block, so reading one station (as the per-station analyses do) touches only
     that station's pages. Blocks of time steps are written with positioned writes (no
     memory map), so the series already written do not stay in the process's memory;
-    consecutive blocks are gathered up to :data:`SERIES_BUFFER_BYTES` first, so that each
-    station gets one write per gathered block rather than one per chunk of the pass.
+    consecutive blocks smaller than :data:`SERIES_BUFFER_BYTES` are gathered in one buffer
+    of that size first (the file's own, reused, so the caller may reuse its block as soon
+    as the call returns), so that each station gets one write per gathered block rather
+    than one per chunk of the pass; larger blocks are written as they are.
     :meth:`close` writes what is gathered; :meth:`open` gives the ``(time, station, k)``
     view of the file.
     """
@@ -638,14 +681,17 @@ class SeriesFile:
         self.offset = header.offset
         del header
         self.n_time = nt
+        self.shape_rest = tuple(int(r) for r in rest)
         self.step_bytes = 4 * int(np.prod(rest))  # one station, one step
+        # Steps gathered before a write: the first count that reaches the buffer's size.
+        self.buffer_steps = max(1, -(-SERIES_BUFFER_BYTES // max(self.step_bytes * ns, 1)))
         self.fd = os.open(path, os.O_WRONLY)
         try:
             preallocate(self.fd, self.offset + ns * nt * self.step_bytes)
         except OSError:
             os.close(self.fd)
             raise
-        self._held: list[np.ndarray] = []
+        self._buffer: np.ndarray | None = None
         self._held_t0 = 0
         self._held_steps = 0
 
@@ -656,31 +702,41 @@ class SeriesFile:
     def write_stations(self, t0: int, values: np.ndarray) -> None:
         """Write station-major ``values`` ``(station, steps, k)`` at steps ``t0, t0 + 1, ...``.
 
-        A C-ordered float32 block (as the pass's sampler makes them) is written as it is;
-        anything else is converted first.
+        A C-ordered float32 block as large as the buffer (as the pass's sampler makes them
+        for the rays) is written as it is; a smaller one is copied into the buffer.
         """
-        if self._held and t0 != self._held_t0 + self._held_steps:
+        values = np.asarray(values)
+        steps = values.shape[1]
+        if self._held_steps and (t0 != self._held_t0 + self._held_steps
+                                 or self._held_steps + steps > self.buffer_steps):
             self.flush()
-        if not self._held:
+        if steps >= self.buffer_steps:
+            self._write(t0, np.ascontiguousarray(values, dtype=np.float32))
+            return
+        if self._buffer is None:
+            self._buffer = np.empty((values.shape[0], self.buffer_steps, *self.shape_rest),
+                                    dtype=np.float32)
+        if not self._held_steps:
             self._held_t0 = t0
-        self._held.append(np.ascontiguousarray(values, dtype=np.float32))
-        self._held_steps += values.shape[1]
-        # steps held x bytes per station and step x stations
-        if self._held_steps * self.step_bytes * values.shape[0] >= SERIES_BUFFER_BYTES:
+        self._buffer[:, self._held_steps:self._held_steps + steps] = values
+        self._held_steps += steps
+        if self._held_steps >= self.buffer_steps:
             self.flush()
 
     def flush(self) -> None:
         """Write the gathered blocks, station by station."""
-        if not self._held:
-            return
-        blocks = self._held[0] if len(self._held) == 1 else np.concatenate(self._held, axis=1)
+        if self._held_steps:
+            self._write(self._held_t0, self._buffer[:, :self._held_steps])
+        self._held_steps = 0
+
+    def _write(self, t0: int, blocks: np.ndarray) -> None:
+        """Write ``(station, steps, k)`` float32 blocks whose stations are each contiguous."""
         for s, block in enumerate(blocks):
             data = memoryview(block).cast("B")
-            at = self.offset + (s * self.n_time + self._held_t0) * self.step_bytes
+            at = self.offset + (s * self.n_time + t0) * self.step_bytes
             done = 0
             while done < len(data):
                 done += os.pwrite(self.fd, data[done:], at + done)
-        self._held, self._held_steps = [], 0
 
     def close(self) -> None:
         if self.fd >= 0:
@@ -689,15 +745,16 @@ class SeriesFile:
             finally:
                 os.close(self.fd)
                 self.fd = -1
-                self._held, self._held_steps = [], 0
+                self._buffer, self._held_steps = None, 0
 
     def open(self) -> np.ndarray:
         """The written series as a read-only, disk-backed ``(time, station, k)`` view."""
         return np.swapaxes(np.load(self.path, mmap_mode="r"), 0, 1)
 
 
-def _consume(out, t0, t1, state, files, times, timings) -> None:
-    """Merge one chunk's moments into the running state and write its samples."""
+def _consume(out, t0, t1, state, files, times, timings, give_back=None) -> None:
+    """Merge one chunk's moments into the running state and write its samples; the
+    written sample blocks go to ``give_back`` (:meth:`_BlockPool.give`) when given."""
     for key in ("read_s", "kernel_s", "sample_s"):
         timings[key] += out.get(key, 0.0)
     t = time.perf_counter()
@@ -710,6 +767,8 @@ def _consume(out, t0, t1, state, files, times, timings) -> None:
     for name, (section, rays) in out["samples"].items():   # station-major blocks
         files[f"section_{name}"].write_stations(t0, section)
         files[f"ray_{name}"].write_stations(t0, rays)
+        if give_back is not None:
+            give_back((section, rays))
     timings["write_s"] += time.perf_counter() - t2
 
 
