@@ -12,12 +12,18 @@ import argparse
 import os
 import signal
 import sys
+import threading
+import time
 import warnings
 from pathlib import Path
 
 from coastmon import __version__
 from coastmon.config import Settings, load_settings
 from coastmon.errors import CoastmonError, SettingsError
+
+EXIT_GRACE_S = 20.0
+"""Longest wait for the interpreter to end once the command has returned (see
+:func:`_end_within`)."""
 
 _DESCRIPTION = (
     "Find the coastal vorticity sources (capes, headlands, island tips) that feed eddy "
@@ -190,10 +196,36 @@ def main(argv: list[str] | None = None) -> int:
         # the interpreter's shutdown may be cut short or change the status.
         if argv is None:
             owned.ignore_signals()
+            _end_within(EXIT_GRACE_S, status if status is not None else 1)
         else:
             owned.restore_signal_handlers(previous)
         owned.remove_all_registered()
         pages()
+
+
+def _end_within(seconds: float, status: int) -> None:
+    """End the process with ``status`` if the interpreter has not ended ``seconds`` after
+    the command returned.
+
+    Once the command has reported its end, the interpreter waits for every non-daemon
+    thread before it exits. A signal that lands while a library starts a worker thread
+    (between the thread's start and its registration with its pool, for example the
+    threaded scheduler's pool of dask) leaves a thread that nobody will ever wake, and the
+    process would wait for it forever after printing its result (seen once in the
+    fault-injection tests). A daemon thread that outlives that wait ends the process with
+    the status already reported; on a normal exit it is stopped with the interpreter.
+    """
+
+    def end() -> None:
+        time.sleep(seconds)
+        for stream in (sys.stdout, sys.stderr):
+            try:
+                stream.flush()
+            except (OSError, ValueError):
+                pass
+        os._exit(status)
+
+    threading.Thread(target=end, name="coastmon-exit", daemon=True).start()
 
 
 def _library_warnings_policy() -> None:
