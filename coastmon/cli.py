@@ -196,11 +196,12 @@ def main(argv: list[str] | None = None) -> int:
         # the interpreter's shutdown may be cut short or change the status.
         if argv is None:
             owned.ignore_signals()
-            _end_within(EXIT_GRACE_S, status if status is not None else 1)
         else:
             owned.restore_signal_handlers(previous)
         owned.remove_all_registered()
         pages()
+        if argv is None:  # the clean-up is done: nothing may keep the process from ending
+            _end_within(EXIT_GRACE_S, status if status is not None else 1)
 
 
 def _end_within(seconds: float, status: int) -> None:
