@@ -459,9 +459,8 @@ def test_a_written_block_may_be_reused_at_once(tmp_path, monkeypatch, buffer_byt
     writer = SeriesFile(tmp_path / "s.npy", (26, 3, 2))
     scratch = np.empty((3, 5, 2), np.float32)
     for t0 in range(0, 26, 5):
-        steps = min(5, 26 - t0)
-        block = scratch[:, :steps] if steps == 5 else np.empty((3, steps, 2), np.float32)
-        block[...] = full[:, t0:t0 + steps]
+        block = scratch[:, :min(5, 26 - t0)]
+        block[...] = full[:, t0:t0 + block.shape[1]]
         writer.write_stations(t0, block)
         block[...] = np.nan                                      # reused at once
     writer.close()

@@ -681,7 +681,7 @@ class SeriesFile:
         self.offset = header.offset
         del header
         self.n_time = nt
-        self.shape_rest = tuple(int(r) for r in rest)
+        self.station_shape = (ns, *(int(r) for r in rest))  # (station, k...) of one step
         self.step_bytes = 4 * int(np.prod(rest))  # one station, one step
         # Steps gathered before a write: the first count that reaches the buffer's size.
         self.buffer_steps = max(1, -(-SERIES_BUFFER_BYTES // max(self.step_bytes * ns, 1)))
@@ -714,8 +714,8 @@ class SeriesFile:
             self._write(t0, np.ascontiguousarray(values, dtype=np.float32))
             return
         if self._buffer is None:
-            self._buffer = np.empty((values.shape[0], self.buffer_steps, *self.shape_rest),
-                                    dtype=np.float32)
+            ns, *rest = self.station_shape
+            self._buffer = np.empty((ns, self.buffer_steps, *rest), dtype=np.float32)
         if not self._held_steps:
             self._held_t0 = t0
         self._buffer[:, self._held_steps:self._held_steps + steps] = values
