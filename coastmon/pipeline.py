@@ -298,11 +298,11 @@ def analyse_series(stats: xr.Dataset, series: xr.Dataset, frame, capes: pd.DataF
     if short:
         warnings.append(short)
     # The two sweeps over whole series that need no source run beside the others.
-    fields = [series[name].values for name in ("section_u", "section_v", "ray_u", "ray_v")
+    fields = [series[name].data for name in ("section_u", "section_v", "ray_u", "ray_v")
               if name in series]
     with ThreadPoolExecutor(max_workers=1) as pool:
         spin_job = pool.submit(spinup_curve, fields, series["time_days"].values)
-        ray_u_job = pool.submit(time_mean_error, series["ray_u"].values)
+        ray_u_job = pool.submit(time_mean_error, series["ray_u"].data)
         profiles, found, gates, ranked, gates_df, boot, axes, spacing = _analyse(
             series, frame, capes, settings, ld_km, dt, ray_u_job)
         spin = spin_job.result()
@@ -420,7 +420,7 @@ def source_spectra(series: xr.Dataset, frame, ranked: pd.DataFrame, settings: Se
                             source=("source", ranked["rank"].values.astype(np.int32),
                                     {"long_name": "source rank", "units": "1"}))
     top = int(ranked["station"].values[0])
-    ray = np.asarray(series["ray_zeta"].values[:, top, :], dtype=np.float64)
+    ray = np.asarray(series["ray_zeta"].data[:, top, :], dtype=np.float64)
     ok = np.isfinite(ray).all(axis=0)
     if ok.sum() >= 4:
         dd = float(np.median(np.diff(series["ray_km"].values)))

@@ -523,3 +523,99 @@ def test_input_files_are_let_go_after_the_pass_reads_them(tmp_path):
     # file it has read open would grow with the number of files, here 8)
     assert usage["open"] <= 4, usage
     assert usage["cache"] <= 4 * 2**20, usage
+
+
+def shared_ray_frame(shape, sea, rng, n_stations=6, n_offsets=2, n_rays=5,
+                     missing_weight=False) -> StandInFrame:
+    """A frame whose rays interpolate from a small pool of grid points (as neighbouring
+    stations' rays do on a grid coarse beside the station spacing), with one empty row;
+    the pool holds a land point when ``missing_weight``."""
+    n_points = n_stations * (n_offsets + n_rays)
+    sea_idx = np.flatnonzero(sea.ravel())
+    pool = sea_idx[:9].copy()
+    if missing_weight:
+        pool[0] = np.flatnonzero(~sea.ravel())[0]
+    rows, cols, vals = [], [], []
+    for p in range(n_points - 1):
+        pick = rng.choice(sea_idx if p < n_stations * n_offsets else pool, size=4,
+                          replace=False)
+        w = rng.uniform(0.1, 1.0, size=4)
+        rows += [p] * 4
+        cols += list(pick)
+        vals += list(w / w.sum())
+    sampler = sparse.csr_matrix((vals, (rows, cols)), shape=(n_points, shape[0] * shape[1]))
+    valid = np.ones(n_points, dtype=bool)
+    valid[-1] = False
+    stations = pd.DataFrame({"station_id": np.arange(n_stations),
+                             "alongshore_km": 10.0 * np.arange(n_stations)})
+    return StandInFrame(sampler, valid, stations, np.array([0.0, 10.0]),
+                        10.0 * np.arange(1, n_rays + 1))
+
+
+@pytest.mark.parametrize("missing_weight", [False, True])
+def test_rays_from_stored_grid_points_equal_the_written_rays(tmp_path, missing_weight):
+    from coastmon.stream.rays import RayField
+
+    ds, metrics, sea, rng = make_dataset()
+    ds = ds.astype(np.float32)    # the pass's u, v and ssh are float32, as read
+    frame = shared_ray_frame(metrics.shape, sea, rng, missing_weight=missing_weight)
+    points = run_pass(ds, metrics, frame, SETTINGS, tmp_path / "points")
+    written = run_pass(ds, metrics, frame, SETTINGS, tmp_path / "rays", ray_points=False)
+    assert isinstance(points.series["ray_u"].data, RayField)
+    assert not isinstance(written.series["ray_u"].data, RayField)
+    # 6 stations x 5 ray points drawn from 9 grid points: 9 series written instead of 30
+    assert points.series["ray_u"].data.points.shape == (9, 40)
+    for name in ("u", "v", "ssh"):
+        # check: common practice, no source — the same float64 sums of the same float32
+        # values in the same order give the same float32 numbers, bit for bit
+        np.testing.assert_array_equal(points.series[f"ray_{name}"].values,
+                                      written.series[f"ray_{name}"].values)
+    # vorticity is computed in float64 and rounded to float32 at the grid points instead
+    # of after interpolation: a difference of float32 rounding
+    np.testing.assert_allclose(points.series["ray_zeta"].values,
+                               written.series["ray_zeta"].values, rtol=3e-7, atol=1e-12)
+    u = ds["u"].values.astype(np.float64)
+    expected = np.empty((u.shape[0], frame.sampler.shape[0]))
+    for t in range(u.shape[0]):
+        flat = u[t].ravel()
+        ok = np.isfinite(flat)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            expected[t] = (frame.sampler @ np.where(ok, flat, 0.0)) / (frame.sampler @ ok)
+    expected[:, ~frame.valid] = np.nan
+    # check: scipy.sparse product applied to each time step, renormalised over the
+    # finite values (an independent computation of the rays)
+    np.testing.assert_allclose(points.series["ray_u"].values, frame.split(expected)[1],
+                               rtol=1e-6)
+    assert np.isnan(points.series["ray_u"].values[:, -1, -1]).all()
+    assert points.series["section_u"].dims == ("time", "station", "offset")
+    assert points.series["ray_v"].dims == ("time", "station", "ray")
+
+
+def test_ray_field_indexes_like_the_array_it_stands_for(tmp_path):
+    from coastmon.io.pages import release, station_sweep
+    from coastmon.stream import rays
+
+    ds, metrics, sea, rng = make_dataset(nt=23)
+    frame = shared_ray_frame(metrics.shape, sea, rng)
+    field = run_pass(ds, metrics, frame, SETTINGS, tmp_path).series["ray_v"].data
+    assert isinstance(field, rays.RayField)
+    full = np.asarray(field)
+    assert full.shape == field.shape == (23, 6, 5) and full.dtype == np.float32
+    # check: numpy indexing rules (basic indexing; orthogonal for two integer arrays)
+    for key in [(slice(None), 2, slice(None)), (slice(None), 3, 1), (slice(2, 9), 4),
+                (slice(None), slice(1, 5), slice(None)), (Ellipsis, 2), 5, (-1, -1, -1),
+                (slice(None), slice(None, None, 2), slice(1, 4))]:
+        np.testing.assert_array_equal(field[key], full[key], err_msg=str(key))
+    np.testing.assert_array_equal(field[np.array([1, 4])][:, :, np.array([0, 3])],
+                                  full[np.array([1, 4])][:, :, np.array([0, 3])])
+    swept = np.concatenate([block for _, block in station_sweep(field)], axis=1)
+    np.testing.assert_array_equal(swept, full)
+    release(field)        # a no-op on its memory-mapped grid points, never an error
+    with pytest.raises(ValueError):
+        field.reshape(23, -1)
+    with pytest.raises(IndexError):
+        field[:, 6]
+    # a frame whose rays draw on as many grid points as they have points keeps the rays
+    plain = make_frame(metrics.shape, sea, rng)
+    s, o, r = len(plain.stations), plain.offsets_km.size, plain.ray_km.size
+    assert rays.plan_ray_points(plain.sampler, plain.valid, s, o, r) is None

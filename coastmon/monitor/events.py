@@ -230,7 +230,7 @@ def _offshore_speed(series: xr.Dataset, near: np.ndarray, s: int, frame: Any,
     if r_station is not None and max_lag >= 2 and "ray_zeta" in series \
             and probes[1] > probes[0]:
         for k in probes:
-            probe = np.asarray(series["ray_zeta"].values[:, r_station, k], dtype=float)
+            probe = np.asarray(series["ray_zeta"].data[:, r_station, k], dtype=float)
             if np.isfinite(probe).sum() < 10:
                 break
             lag, r = offshore_lag(near, probe - np.nanmean(probe), max_lag, min_corr)

@@ -947,7 +947,8 @@ def _update(state_dir: Path, paths: list[Path], settings: Settings, allow_gaps: 
     steps = plan.new
     if np.all(np.diff(steps) == 1):
         steps = slice(int(steps[0]), int(steps[-1]) + 1)
-    passed = run_pass(ds.isel(time=steps), metrics, frame, settings.stream, work / "pass")
+    passed = run_pass(ds.isel(time=steps), metrics, frame, settings.stream, work / "pass",
+                      ray_points=False)  # the stored parts hold the rays themselves
     timings["stream_pass_s"] = time.perf_counter() - t
     notes += pipeline.coverage_notes(ds.isel(time=steps), passed)
     merged = passed.state if moments is None else merge_states(moments, passed.state)

@@ -54,7 +54,7 @@ def _top_source_figures(figdir: Path, prep, products, settings: Settings, series
         rank = int(row["rank"])
         s = int(row["station"])
         direction = float(prep.frame.stations["ray_dir"].values[s]) or -1.0
-        hov = np.asarray(series["ray_zeta"].values[:, s, :], dtype=float)
+        hov = np.asarray(series["ray_zeta"].data[:, s, :], dtype=float)
         if np.isfinite(hov).any():
             speed = row["west_speed_cm_s"] / 100.0 * (-direction)
             rossby = products.rossby_speed_cm_s / 100.0 * (-direction)

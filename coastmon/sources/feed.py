@@ -565,8 +565,8 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
     dd_km = float(np.median(np.diff(ray_km)))
     windows = [_window(ray_km, o, max(w, 2 * dd_km)) for o, w in configs]
     gate_i = int(np.argmin(np.abs(ray_km - src.gate_offset_km)))
-    ru, rv = series["ray_u"].values, series["ray_v"].values
-    rh = series["ray_ssh"].values if has_ssh else None
+    ru, rv = series["ray_u"].data, series["ray_v"].data   # arrays or RayFields
+    rh = series["ray_ssh"].data if has_ssh else None
     direction = frame.stations["ray_dir"].values
     ray_lat, ray_lon = frame.ray_lat, frame.ray_lon
     st_lat = frame.stations["lat"].values

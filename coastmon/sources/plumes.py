@@ -199,7 +199,7 @@ def plume_axes(series: xr.Dataset, frame, sources: pd.DataFrame, gate_offset_km:
     the axes' end tests apply from ``start_km`` offshore (see :func:`trace_plume`).
     ``mean_error``: :func:`time_mean_error` of ``ray_u`` when already computed."""
     ray_km = np.asarray(series["ray_km"].values, dtype=float)
-    ubar, error = mean_error or time_mean_error(series["ray_u"].values)
+    ubar, error = mean_error or time_mean_error(series["ray_u"].data)
     anomaly = along_shore_anomaly(ubar, frame)
     axes = [trace_plume(anomaly, frame, int(row["station"]), ray_km, error, start_km=start_km)
             for _, row in sources.iterrows()]

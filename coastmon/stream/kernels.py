@@ -690,7 +690,7 @@ def _sample_split(indptr, cols, weights, valid, x, first, second, t0):  # pragma
             out = first if part == 0 else second
             width = out.shape[2]
             base = 0 if part == 0 else n_st * first.shape[2]
-            for s in range(n_st):
+            for s in range(out.shape[0]):
                 for j in range(width):
                     p = base + s * width + j
                     num[:] = 0.0
@@ -709,6 +709,44 @@ def _sample_split(indptr, cols, weights, valid, x, first, second, t0):  # pragma
     return 0
 
 
+@compiled()
+def _sample_stored(indptr, cols, weights, valid, points, r0, out):  # pragma: no cover
+    # Rows r0, r0 + 1, ... of the sampling matrix applied to stored grid-point series
+    # ``points`` (grid point, time), with the arithmetic of _sample_split (the same
+    # float64 sums in the same order), into ``out`` (time, row). The sums run without
+    # the finiteness test first (a loop the compiler vectorises); a step whose sum is not
+    # finite met a missing value and is summed again as _sample_split sums it. Where
+    # every value is finite both give the same numbers: the same products added in the
+    # same order, and the weights' sum is then the same at every step.
+    nt = points.shape[1]
+    num = np.zeros(nt)
+    for j in range(out.shape[1]):
+        p = r0 + j
+        num[:] = 0.0
+        w_sum = 0.0
+        for k in range(indptr[p], indptr[p + 1]):
+            c = cols[k]
+            w = weights[k]
+            w_sum += w
+            for i in range(nt):
+                num[i] += w * np.float64(points[c, i])
+        for i in range(nt):
+            if not valid[p]:
+                out[i, j] = np.nan
+            elif np.isfinite(num[i]):
+                out[i, j] = num[i] / w_sum if w_sum != 0.0 else np.nan
+            else:
+                n_i = 0.0
+                d_i = 0.0
+                for k in range(indptr[p], indptr[p + 1]):
+                    val = np.float64(points[cols[k], i])
+                    if np.isfinite(val):
+                        n_i += weights[k] * val
+                        d_i += weights[k]
+                out[i, j] = n_i / d_i if d_i != 0.0 else np.nan
+    return 0
+
+
 def concurrent_calls_safe() -> bool:
     """Whether several threads may run the parallel kernels at once.
 
@@ -721,6 +759,23 @@ def concurrent_calls_safe() -> bool:
            one.copy(), one.copy(), np.zeros((3, 1, 1)), np.zeros((6, 1, 1)),
            np.zeros((4, 1, 1)), one.copy())
     return numba.threading_layer() != "workqueue"
+
+
+def sorted_entries(matrix) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The non-zeros of a sparse matrix row by row, each row's in column order:
+    ``(rows, cols, weights)`` (int64, int64, float64), the order the samplers sum in."""
+    coo = matrix.tocoo()
+    order = np.lexsort((coo.col, coo.row))
+    return (np.asarray(coo.row[order], dtype=np.int64),
+            np.ascontiguousarray(coo.col[order], dtype=np.int64),
+            np.ascontiguousarray(coo.data[order], dtype=np.float64))
+
+
+def row_pointers(rows: np.ndarray, n_rows: int) -> np.ndarray:
+    """CSR row pointers of sorted row indices."""
+    indptr = np.zeros(n_rows + 1, dtype=np.int64)
+    np.cumsum(np.bincount(rows, minlength=n_rows), out=indptr[1:])
+    return indptr
 
 
 class Sampler:
@@ -738,32 +793,36 @@ class Sampler:
     and the file.
     """
 
-    def __init__(self, matrix, valid: np.ndarray, n_stations: int, n_offsets: int) -> None:
-        coo = matrix.tocoo()
-        order = np.lexsort((coo.col, coo.row))    # row by row, each in column order
-        rows = np.asarray(coo.row[order], dtype=np.int64)
-        self.cols = np.ascontiguousarray(coo.col[order], dtype=np.int64)
-        self.weights = np.ascontiguousarray(coo.data[order], dtype=np.float64)
-        self.indptr = np.zeros(matrix.shape[0] + 1, dtype=np.int64)
-        np.cumsum(np.bincount(rows, minlength=matrix.shape[0]), out=self.indptr[1:])
+    def __init__(self, matrix, valid: np.ndarray, n_stations: int, n_offsets: int,
+                 grid_points: int | None = None) -> None:
+        rows, self.cols, self.weights = sorted_entries(matrix)
+        self.indptr = row_pointers(rows, matrix.shape[0])
         self.valid = np.ascontiguousarray(valid, dtype=np.bool_)
         self.n_points = int(matrix.shape[0])
         self.n_stations = int(n_stations)
         self.n_offsets = int(n_offsets)
-        self.n_ray = (self.n_points - self.n_stations * self.n_offsets) // max(self.n_stations, 1)
-        if self.n_stations * (self.n_offsets + self.n_ray) != self.n_points:
+        rest = self.n_points - self.n_stations * self.n_offsets
+        if grid_points is not None:
+            # The second part holds grid points as they are, one per row (the rays are
+            # computed from them when read: coastmon.stream.rays).
+            self.second = (int(grid_points), 1)
+        else:
+            self.second = (self.n_stations, rest // max(self.n_stations, 1))
+        if self.second[0] * self.second[1] != rest or rest < 0:
             raise ValueError(f"{self.n_points} points are not {self.n_stations} stations "
                              f"with {self.n_offsets} section points and a ray each")
 
     def blocks(self, n_time: int) -> tuple[np.ndarray, np.ndarray]:
-        """Empty float32 ``(S, n_time, O)`` and ``(S, n_time, R)`` blocks for :meth:`into`."""
+        """Empty float32 ``(S, n_time, O)`` and ``(S, n_time, R)`` blocks for :meth:`into`
+        (``(P, n_time, 1)`` for the second when it holds ``P`` grid points)."""
         return (np.empty((self.n_stations, n_time, self.n_offsets), dtype=np.float32),
-                np.empty((self.n_stations, n_time, self.n_ray), dtype=np.float32))
+                np.empty((self.second[0], n_time, self.second[1]), dtype=np.float32))
 
     def into(self, x: np.ndarray, section: np.ndarray, rays: np.ndarray, t0: int = 0) -> None:
         """Sample ``x`` (t, n_grid) into ``section[:, t0:t0 + t]`` and ``rays[:, t0:t0 + t]``."""
-        if section.shape[0] * (section.shape[2] + rays.shape[2]) != self.n_points \
-                or rays.shape[0] != section.shape[0] or t0 + x.shape[0] > section.shape[1]:
+        if section.shape[0] * section.shape[2] + rays.shape[0] * rays.shape[2] \
+                != self.n_points or section.shape[0] != self.n_stations \
+                or t0 + x.shape[0] > section.shape[1] or t0 + x.shape[0] > rays.shape[1]:
             raise ValueError("the blocks do not fit the sampler's points or the steps")
         _sample_split(self.indptr, self.cols, self.weights, self.valid, x, section, rays,
                       int(t0))

@@ -47,7 +47,7 @@ from coastmon.grid.metrics import GridMetrics
 from coastmon.grid.operators import gradient
 from coastmon.io.damage import ChunkDecodeError
 from coastmon.io.pages import preallocate
-from coastmon.stream import kernels, readers
+from coastmon.stream import kernels, rays, readers
 from coastmon.stream.moments import MomentState, grid_signature, time_text
 from coastmon.stream.readers import ProcessReader, read_chunk
 
@@ -90,7 +90,10 @@ class PassResult:
     series : sampled time series, float32, backed by files in the work folder:
         ``section_<var>`` (time, station, offset) and ``ray_<var>`` (time, station, ray)
         for var in u, v, zeta[, ssh]; the files are stored station-major (each station's
-        record contiguous), and the arrays are views in this dimension order.
+        record contiguous), and the arrays are views in this dimension order. Each
+        ``ray_<var>`` may instead hold a :class:`~coastmon.stream.rays.RayField` (see
+        ``ray_points`` of :func:`run_pass`): read the rays through ``.data``, a station or
+        a block of stations at a time (``.values`` computes them all).
     state : the accumulators (mergeable; save with :func:`~coastmon.stream.save_state`).
     timings : seconds spent per stage (``read_s``, ``kernel_s``, ``sample_s`` summed over
         chunks and workers; ``merge_s``, ``write_s``, ``stats_s``, ``total_s`` wall time).
@@ -436,6 +439,7 @@ def run_pass(
     settings: StreamSettings,
     workdir: Path,
     progress: Callable[[int, int], None] | None = None,
+    ray_points: bool = True,
 ) -> PassResult:
     """Read the record once: eddy statistics on the grid and time series on the frame.
 
@@ -451,6 +455,11 @@ def run_pass(
     workdir : folder for the disk-backed series (created if needed; must stay while the
         series are used).
     progress : optional callback ``progress(chunks_done, chunks_total)``.
+    ray_points : where the rays draw on clearly fewer grid points than they have points
+        (:func:`coastmon.stream.rays.plan_ray_points`), write those grid points' series
+        and give each ``ray_<var>`` as a :class:`~coastmon.stream.rays.RayField` that
+        computes the rays when read; False: always write the rays themselves (memory-mapped
+        arrays, as the monitoring state stores them).
 
     Returns
     -------
@@ -463,10 +472,10 @@ def run_pass(
     (W @ isfinite(x))`` per time step, NaN where no weight meets a finite value.
     """
     with xr.set_options(file_cache_maxsize=OPEN_FILES):
-        return _run_pass(ds, metrics, frame, settings, workdir, progress)
+        return _run_pass(ds, metrics, frame, settings, workdir, progress, ray_points)
 
 
-def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
+def _run_pass(ds, metrics, frame, settings, workdir, progress, ray_points) -> PassResult:
     wall0 = time.perf_counter()
     names = _check_dataset(ds, metrics)
     has_h = "ssh" in names
@@ -489,6 +498,13 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
     series_names = [n for n in SERIES_VARIABLES if n != "ssh" or has_h]
     probe = frame.split(np.zeros((1, n_points), dtype=np.float32))
     sec_shape, ray_shape = probe[0].shape[1:], probe[1].shape[1:]
+    valid_rows = np.asarray(frame.valid, dtype=np.bool_)
+    plan = rays.plan_ray_points(sampler, valid_rows, sec_shape[0], sec_shape[1],
+                                ray_shape[1]) if ray_points else None
+    if plan is not None:   # the rays' grid points are written; the rays computed on reading
+        sampler, valid_rows = rays.sampling_matrix(sampler, valid_rows,
+                                                   sec_shape[0] * sec_shape[1], plan)
+        ray_shape = (plan.n_points, 1)
     files = {}
     valid_steps = np.zeros(nt, dtype=np.int64)
     state = MomentState.empty(metrics.shape, has_h, settings.seasonal, settings.ow_threshold,
@@ -515,8 +531,8 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             kernel_threads = max(1, ncpu // workers)
         consts = _Constants(
             gx=np.ascontiguousarray(metrics.gx), gy=np.ascontiguousarray(metrics.gy),
-            sampler=kernels.Sampler(sampler, np.asarray(frame.valid, dtype=np.bool_),
-                                    *sec_shape),  # the frame's split
+            sampler=kernels.Sampler(sampler, valid_rows, *sec_shape,  # the frame's split
+                                    grid_points=None if plan is None else plan.n_points),
             ow_threshold=float(settings.ow_threshold), kernel_threads=kernel_threads,
             step_limit=max(1, CHUNK_BUDGET_BYTES // (SCRATCH_BYTES_PER_POINT * grid_size)),
         )
@@ -609,7 +625,9 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress) -> PassResult:
             writer.close()
 
     t = time.perf_counter()
-    series = _series_dataset({k: w.open() for k, w in files.items()}, frame, ds, series_names)
+    opened = {k: (w.open() if plan is None or not k.startswith("ray_")
+                  else rays.RayField(w.open()[:, :, 0].T, plan)) for k, w in files.items()}
+    series = _series_dataset(opened, frame, ds, series_names)
     timings["write_s"] += time.perf_counter() - t
     t = time.perf_counter()
     stats = stats_from_state(state, metrics)

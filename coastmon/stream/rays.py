@@ -1,0 +1,175 @@
+"""Ray series kept as the grid points they are interpolated from.
+
+A frame's rays run 600 km offshore from every station, and on a grid that is coarse
+beside the station spacing neighbouring stations' rays interpolate from the same grid
+points: on the long benchmark record 237 rays of 60 points (14 220 sampled points) draw on
+only 5013 grid points. The streaming pass then writes the series of those grid points, as
+they are, instead of the interpolated rays (:func:`plan_ray_points` decides, per frame),
+and :class:`RayField` computes a ray when it is read, with the pass's own sampling
+arithmetic (:func:`coastmon.stream.kernels._sample_stored`): the same float64 sums in the
+same order, stored as float32. Where the pass's field is float32 (u, v and SSH as read)
+the rays are the ones the pass would have written, bit for bit; a float64 field
+(vorticity computed in the pass) is rounded to float32 at the grid points instead of after
+interpolation, a difference of float32 rounding.
+
+A read of one station, a block of stations or the whole field gives ordinary float32
+numpy arrays, so the per-station analyses index a :class:`RayField` as they index the
+memory-mapped ``(time, station, ray)`` files it replaces.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse
+
+from coastmon.stream import kernels
+
+RAY_POINTS_RATIO = 0.75
+"""Grid points are stored instead of rays when they number at most this share of the ray
+points (below it the pass writes a quarter fewer numbers or better; above it the
+savings would not pay for computing the rays on every read)."""
+
+
+@dataclass(frozen=True)
+class RayPlan:
+    """Which grid points hold the rays, and the rays' sampling rows on them."""
+
+    points: np.ndarray      # (P,) grid columns (flattened y*x), ascending
+    indptr: np.ndarray      # CSR of the ray rows on the P points, as the pass sums them
+    cols: np.ndarray
+    weights: np.ndarray
+    valid: np.ndarray       # (S*R,) whether each ray point is sampled at all
+    n_stations: int
+    n_ray: int
+
+    @property
+    def n_points(self) -> int:
+        return int(self.points.size)
+
+
+def plan_ray_points(sampler, valid: np.ndarray, n_stations: int, n_offsets: int,
+                    n_ray: int, ratio: float = RAY_POINTS_RATIO) -> RayPlan | None:
+    """The grid points the rays draw on, when storing them saves enough (else None).
+
+    ``sampler`` is the frame's sampling matrix (section rows ``S x O`` first, then the
+    ray rows ``S x R``), ``valid`` its row mask. Rows that are not valid keep no entries
+    (they are NaN whatever the field).
+    """
+    first = n_stations * n_offsets
+    n_rows = n_stations * n_ray
+    if n_rows == 0:
+        return None
+    rows, cols, weights = kernels.sorted_entries(sampler)
+    keep = rows >= first
+    rows, cols, weights = rows[keep] - first, cols[keep], weights[keep]
+    ray_valid = np.asarray(valid[first:first + n_rows], dtype=np.bool_)
+    keep = ray_valid[rows]
+    rows, cols, weights = rows[keep], cols[keep], weights[keep]
+    points = np.unique(cols)
+    if points.size > ratio * n_rows:
+        return None
+    return RayPlan(points=points, indptr=kernels.row_pointers(rows, n_rows),
+                   cols=np.searchsorted(points, cols).astype(np.int64),
+                   weights=weights, valid=np.ascontiguousarray(ray_valid),
+                   n_stations=int(n_stations), n_ray=int(n_ray))
+
+
+def sampling_matrix(sampler, valid: np.ndarray, n_sections: int, plan: RayPlan):
+    """The pass's sampling matrix and row mask with the rays replaced by ``plan``'s grid
+    points: the section rows as they are, then one row per grid point (weight 1)."""
+    sampler = scipy.sparse.csr_matrix(sampler)
+    n_p = plan.n_points
+    pick = scipy.sparse.csr_matrix((np.ones(n_p), (np.arange(n_p), plan.points)),
+                                   shape=(n_p, sampler.shape[1]))
+    matrix = scipy.sparse.vstack([sampler[:n_sections], pick], format="csr")
+    mask = np.concatenate([np.asarray(valid[:n_sections], dtype=np.bool_),
+                           np.ones(n_p, dtype=np.bool_)])
+    return matrix, mask
+
+
+class RayField:
+    """``(time, station, ray)`` float32 ray series computed from stored grid points.
+
+    ``points`` is the ``(P, time)`` series of the plan's grid points (a view of the pass's
+    memory-mapped file, which :func:`coastmon.io.pages.release` finds through ``base``).
+    Indexing selects stations first and computes only those; the time and ray indices are
+    then applied to the computed block, one after the other (orthogonal indexing, as
+    xarray asks of the arrays it wraps).
+    """
+
+    __array_priority__ = 10
+
+    def __init__(self, points: np.ndarray, plan: RayPlan) -> None:
+        self.points = points
+        self.base = points
+        self.plan = plan
+        self.shape = (int(points.shape[1]), plan.n_stations, plan.n_ray)
+        self.dtype = np.dtype(np.float32)
+        self.ndim = 3
+
+    @property
+    def size(self) -> int:
+        return int(np.prod(self.shape))
+
+    @property
+    def nbytes(self) -> int:
+        return 4 * self.size
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    def __repr__(self) -> str:
+        return (f"RayField(shape={self.shape}, from {self.plan.n_points} grid points)")
+
+    def stations(self, stations: np.ndarray) -> np.ndarray:
+        """The ``(time, len(stations), ray)`` series of the given stations."""
+        stations = np.asarray(stations, dtype=np.int64).ravel()
+        p = self.plan
+        # Station-major, as the series files are laid out (each station's record
+        # contiguous): the (time, station, ray) view of it indexes as theirs does.
+        out = np.empty((stations.size, self.shape[0], p.n_ray), dtype=np.float32)
+        for i, s in enumerate(stations):
+            if not 0 <= s < p.n_stations:
+                raise IndexError(f"station {s} is out of range 0..{p.n_stations - 1}")
+            kernels._sample_stored(p.indptr, p.cols, p.weights, p.valid, self.points,
+                                   int(s) * p.n_ray, out[i])
+        return np.swapaxes(out, 0, 1)
+
+    def __getitem__(self, key):
+        if not isinstance(key, tuple):
+            key = (key,)
+        if any(k is Ellipsis for k in key):
+            at = next(i for i, k in enumerate(key) if k is Ellipsis)
+            key = key[:at] + (slice(None),) * (3 - len(key) + 1) + key[at + 1:]
+        key = key + (slice(None),) * (3 - len(key))
+        if len(key) != 3 or any(k is None for k in key):
+            raise IndexError(f"unsupported index {key!r} for a {self.shape} ray field")
+        k_t, k_s, k_r = key
+        picked = np.arange(self.shape[1])[k_s]
+        block = self.stations(np.atleast_1d(picked))
+        if np.ndim(picked) == 0:
+            block = block[:, 0]
+        block = block[k_t]
+        return block[..., k_r]
+
+    def reshape(self, *shape):
+        """Itself when ``shape`` is its own (``-1`` allowed); nothing else is supported."""
+        if len(shape) == 1 and isinstance(shape[0], tuple):
+            shape = shape[0]
+        known = [int(n) for n in shape if n != -1]
+        if len(shape) == 3 and list(shape[:len(known)]) == list(self.shape[:len(known)]) \
+                and (len(known) == 3 or int(np.prod(known)) * self.shape[2] == self.size):
+            return self
+        raise ValueError(f"a ray field of shape {self.shape} cannot be reshaped to {shape}")
+
+    def __array__(self, dtype=None, copy=None):
+        out = self.stations(np.arange(self.shape[1]))
+        return out if dtype is None else out.astype(dtype, copy=False)
+
+    def __array_function__(self, func, types, args, kwargs):
+        return NotImplemented
+
+    def __array_ufunc__(self, ufunc, method, *inputs, **kwargs):
+        return NotImplemented
