@@ -25,13 +25,19 @@ from coastmon.stream import kernels, run_pass
 SETTINGS = StreamSettings(progress=False)
 
 
-def make_frame(shape, sea, rng, n_stations=3, n_offsets=2, n_rays=4) -> StandInFrame:
-    """Rows of 4 random sea points with random positive weights summing to 1; last row empty."""
+def make_frame(shape, sea, rng, n_stations=3, n_offsets=2, n_rays=4,
+               ray_pool=None) -> StandInFrame:
+    """Rows of 4 random sea points with random positive weights summing to 1; last row empty.
+
+    With ``ray_pool`` (grid indices) the ray rows draw their points from that pool only,
+    as neighbouring stations' rays do on a grid coarse beside the station spacing.
+    """
     n_points = n_stations * (n_offsets + n_rays)
     sea_idx = np.flatnonzero(sea.ravel())
     rows, cols, vals = [], [], []
     for p in range(n_points - 1):
-        pick = rng.choice(sea_idx, size=4, replace=False)
+        from_pool = ray_pool is not None and p >= n_stations * n_offsets
+        pick = rng.choice(ray_pool if from_pool else sea_idx, size=4, replace=False)
         w = rng.uniform(0.1, 1.0, size=4)
         rows += [p] * 4
         cols += list(pick)
@@ -191,6 +197,19 @@ def test_pass_unchunked_input(tmp_path):
     assert_matches_recipe(result.stats, xarray_recipe(ds, metrics, SETTINGS.ow_threshold))
 
 
+def sparse_sampling(frame, field: np.ndarray) -> np.ndarray:
+    """(time, point): the frame's sampler applied to each step of ``field`` with
+    scipy.sparse, renormalised over the finite values; NaN on rows that are not valid."""
+    expected = np.empty((field.shape[0], frame.sampler.shape[0]))
+    for t in range(field.shape[0]):
+        flat = field[t].ravel()
+        ok = np.isfinite(flat)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            expected[t] = (frame.sampler @ np.where(ok, flat, 0.0)) / (frame.sampler @ ok)
+    expected[:, ~frame.valid] = np.nan
+    return expected
+
+
 def test_series_equal_direct_sampling(tmp_path):
     ds, metrics, sea, rng = make_dataset()
     frame = make_frame(metrics.shape, sea, rng)
@@ -198,14 +217,7 @@ def test_series_equal_direct_sampling(tmp_path):
     u = ds["u"].values
     zeta = operators.vorticity(u, ds["v"].values, metrics)
     for name, field in (("u", u), ("zeta", zeta), ("ssh", ds["ssh"].values)):
-        expected = np.empty((field.shape[0], frame.sampler.shape[0]))
-        for t in range(field.shape[0]):
-            flat = field[t].ravel()
-            ok = np.isfinite(flat)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                expected[t] = (frame.sampler @ np.where(ok, flat, 0.0)) / (frame.sampler @ ok)
-        expected[:, ~frame.valid] = np.nan
-        section, rays = frame.split(expected)
+        section, rays = frame.split(sparse_sampling(frame, field))
         # check: scipy.sparse product applied to each time step, renormalised over finite values
         np.testing.assert_allclose(result.series[f"section_{name}"].values, section, rtol=1e-6)
         np.testing.assert_allclose(result.series[f"ray_{name}"].values, rays, rtol=1e-6)
@@ -525,31 +537,13 @@ def test_input_files_are_let_go_after_the_pass_reads_them(tmp_path):
     assert usage["cache"] <= 4 * 2**20, usage
 
 
-def shared_ray_frame(shape, sea, rng, n_stations=6, n_offsets=2, n_rays=5,
-                     missing_weight=False) -> StandInFrame:
-    """A frame whose rays interpolate from a small pool of grid points (as neighbouring
-    stations' rays do on a grid coarse beside the station spacing), with one empty row;
-    the pool holds a land point when ``missing_weight``."""
-    n_points = n_stations * (n_offsets + n_rays)
-    sea_idx = np.flatnonzero(sea.ravel())
-    pool = sea_idx[:9].copy()
+def shared_ray_frame(shape, sea, rng, missing_weight=False) -> StandInFrame:
+    """Six stations whose rays of 5 points draw on 9 grid points, one of them on land when
+    ``missing_weight``."""
+    pool = np.flatnonzero(sea.ravel())[:9].copy()
     if missing_weight:
         pool[0] = np.flatnonzero(~sea.ravel())[0]
-    rows, cols, vals = [], [], []
-    for p in range(n_points - 1):
-        pick = rng.choice(sea_idx if p < n_stations * n_offsets else pool, size=4,
-                          replace=False)
-        w = rng.uniform(0.1, 1.0, size=4)
-        rows += [p] * 4
-        cols += list(pick)
-        vals += list(w / w.sum())
-    sampler = sparse.csr_matrix((vals, (rows, cols)), shape=(n_points, shape[0] * shape[1]))
-    valid = np.ones(n_points, dtype=bool)
-    valid[-1] = False
-    stations = pd.DataFrame({"station_id": np.arange(n_stations),
-                             "alongshore_km": 10.0 * np.arange(n_stations)})
-    return StandInFrame(sampler, valid, stations, np.array([0.0, 10.0]),
-                        10.0 * np.arange(1, n_rays + 1))
+    return make_frame(shape, sea, rng, n_stations=6, n_rays=5, ray_pool=pool)
 
 
 @pytest.mark.parametrize("missing_weight", [False, True])
@@ -574,14 +568,7 @@ def test_rays_from_stored_grid_points_equal_the_written_rays(tmp_path, missing_w
     # of after interpolation: a difference of float32 rounding
     np.testing.assert_allclose(points.series["ray_zeta"].values,
                                written.series["ray_zeta"].values, rtol=3e-7, atol=1e-12)
-    u = ds["u"].values.astype(np.float64)
-    expected = np.empty((u.shape[0], frame.sampler.shape[0]))
-    for t in range(u.shape[0]):
-        flat = u[t].ravel()
-        ok = np.isfinite(flat)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            expected[t] = (frame.sampler @ np.where(ok, flat, 0.0)) / (frame.sampler @ ok)
-    expected[:, ~frame.valid] = np.nan
+    expected = sparse_sampling(frame, ds["u"].values.astype(np.float64))
     # check: scipy.sparse product applied to each time step, renormalised over the
     # finite values (an independent computation of the rays)
     np.testing.assert_allclose(points.series["ray_u"].values, frame.split(expected)[1],

@@ -782,11 +782,11 @@ def _consume(out, t0, t1, state, files, times, timings, give_back=None) -> None:
     state.merge_parts(out["parts"], t1 - t0, start, end)
     t2 = time.perf_counter()
     timings["merge_s"] += t2 - t
-    for name, (section, rays) in out["samples"].items():   # station-major blocks
+    for name, (section, ray_block) in out["samples"].items():   # station-major blocks
         files[f"section_{name}"].write_stations(t0, section)
-        files[f"ray_{name}"].write_stations(t0, rays)
+        files[f"ray_{name}"].write_stations(t0, ray_block)
         if give_back is not None:
-            give_back((section, rays))
+            give_back((section, ray_block))
     timings["write_s"] += time.perf_counter() - t2
 
 
