@@ -722,6 +722,9 @@ def _sample_stored(indptr, cols, weights, valid, points, r0, out):  # pragma: no
     num = np.zeros(nt)
     for j in range(out.shape[1]):
         p = r0 + j
+        if not valid[p]:
+            out[:, j] = np.nan
+            continue
         num[:] = 0.0
         w_sum = 0.0
         for k in range(indptr[p], indptr[p + 1]):
@@ -731,9 +734,7 @@ def _sample_stored(indptr, cols, weights, valid, points, r0, out):  # pragma: no
             for i in range(nt):
                 num[i] += w * np.float64(points[c, i])
         for i in range(nt):
-            if not valid[p]:
-                out[i, j] = np.nan
-            elif np.isfinite(num[i]):
+            if np.isfinite(num[i]):
                 out[i, j] = num[i] / w_sum if w_sum != 0.0 else np.nan
             else:
                 n_i = 0.0

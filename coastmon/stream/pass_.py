@@ -625,6 +625,7 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress, ray_points) -> Pa
             writer.close()
 
     t = time.perf_counter()
+    # A ray file of grid points opens as (time, P, 1); the RayField reads it as (P, time).
     opened = {k: (w.open() if plan is None or not k.startswith("ray_")
                   else rays.RayField(w.open()[:, :, 0].T, plan)) for k, w in files.items()}
     series = _series_dataset(opened, frame, ds, series_names)

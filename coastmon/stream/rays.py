@@ -99,8 +99,6 @@ class RayField:
     xarray asks of the arrays it wraps).
     """
 
-    __array_priority__ = 10
-
     def __init__(self, points: np.ndarray, plan: RayPlan) -> None:
         self.points = points
         self.base = points
@@ -155,12 +153,12 @@ class RayField:
         return block[..., k_r]
 
     def reshape(self, *shape):
-        """Itself when ``shape`` is its own (``-1`` allowed); nothing else is supported."""
+        """Itself when ``shape`` is its own (the last may be ``-1``), as
+        :func:`coastmon.io.pages.station_sweep` asks; nothing else is supported."""
         if len(shape) == 1 and isinstance(shape[0], tuple):
             shape = shape[0]
-        known = [int(n) for n in shape if n != -1]
-        if len(shape) == 3 and list(shape[:len(known)]) == list(self.shape[:len(known)]) \
-                and (len(known) == 3 or int(np.prod(known)) * self.shape[2] == self.size):
+        if len(shape) == 3 and tuple(shape[:2]) == self.shape[:2] \
+                and shape[2] in (-1, self.shape[2]):
             return self
         raise ValueError(f"a ray field of shape {self.shape} cannot be reshaped to {shape}")
 
