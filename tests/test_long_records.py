@@ -240,6 +240,65 @@ def test_nearshore_anomaly_by_station_blocks_equals_all_at_once(monkeypatch):
     np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-15)
 
 
+def test_nearshore_anomaly_of_stations_without_gaps_takes_the_plain_means():
+    import warnings
+
+    from coastmon.sources import detect
+
+    rng = np.random.default_rng(5)
+    section = rng.standard_normal((400, 9, 7)).astype(np.float32)
+    section[rng.random(400) < 0.2, 2, 1] = np.nan               # gaps at one station
+    section[:, 6, 0] = np.nan                                   # one offset never valid
+    offsets = np.array([0.0, 10, 20, 30, 40, 60, 80])
+    got = detect.nearshore_anomaly(section, offsets, 30.0)
+    for s in range(9):                                          # station by station
+        sub = section[:, s:s + 1, :4].astype(np.float64)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            want = np.nanmean(sub - np.nanmean(sub, axis=0, keepdims=True), axis=2)
+        # check: common practice, no source (numpy.nanmean: without NaN, the same sums
+        # divided by the same counts as numpy.mean)
+        np.testing.assert_array_equal(got[:, s:s + 1], want)
+
+
+def test_along_derivative_has_the_fourth_order_response_in_any_memory_order():
+    dd_m = 10_000.0
+    j = np.arange(40)
+    k = 2.0 * np.pi / (10 * dd_m)                     # a wavelength of ten steps
+    t = np.arange(7)[:, None]
+    q = np.sin(k * dd_m * j[None, :] + 0.3 * t)       # (time, distance)
+    got = along_derivative(q, dd_m)
+    exact = k * np.cos(k * dd_m * j[None, :] + 0.3 * t)
+    ratio = (8.0 * np.sin(k * dd_m) - np.sin(2.0 * k * dd_m)) / (6.0 * k * dd_m)
+    # check: Fornberg 1988, Math. Comp. 51:699 (the fourth-order centred difference's
+    # response to a sine, 0.995 at ten points per wavelength)
+    assert ratio == pytest.approx(0.995, abs=1e-4)
+    np.testing.assert_allclose(got[:, 2:-2], ratio * exact[:, 2:-2], rtol=0, atol=1e-12 * k)
+    # ends: numpy.gradient's one-sided and centred differences (numpy's own function)
+    np.testing.assert_allclose(got[:, [0, 1, -2, -1]],
+                               np.gradient(q, dd_m, axis=1)[:, [0, 1, -2, -1]], rtol=1e-14)
+    fortran = np.asfortranarray(q)
+    np.testing.assert_array_equal(along_derivative(fortran, dd_m), got)
+    np.testing.assert_array_equal(along_derivative(np.asfortranarray(q.T).T[:, 3:30], dd_m),
+                                  along_derivative(q[:, 3:30].copy(), dd_m))
+
+
+def test_gate_products_kernel_gives_the_array_expressions():
+    from coastmon.sources.feed import _add_gate_products
+
+    rng = np.random.default_rng(8)
+    fields = [[np.asfortranarray(rng.standard_normal((300, 12))) for _ in range(3)]
+              for _ in range(3)]                                  # u, v, p: q, q_t, q_d
+    out = np.zeros((3, 12, 300))
+    for q, q_t, q_d in fields:
+        _add_gate_products(q, q_t, q_d, out)
+    # check: common practice, no source (the products as array expressions, summed over
+    # the fields in the same order: the same numbers)
+    want = np.stack([sum(f[0] ** 2 for f in fields), sum(-f[1] * f[2] for f in fields),
+                     sum(f[2] ** 2 for f in fields)])
+    np.testing.assert_array_equal(out, want.transpose(0, 2, 1))
+
+
 def test_alongshore_current_by_station_blocks_equals_all_at_once(monkeypatch):
     import warnings
 

@@ -55,6 +55,7 @@ import scipy.fft
 import scipy.sparse
 import xarray as xr
 
+from coastmon.compiled import compiled
 from coastmon.config import Settings
 from coastmon.io.pages import release
 from coastmon.signals.propagation import OMEGA_EARTH
@@ -307,13 +308,30 @@ def along_derivative(q: np.ndarray, dd_m: float) -> np.ndarray:
     """
     if q.shape[1] < 5:
         return np.gradient(q, dd_m, axis=1)
-    out = np.empty_like(q, dtype=np.float64)
-    out[:, 0] = (q[:, 1] - q[:, 0]) / dd_m                  # as numpy.gradient's ends
-    out[:, 1] = (q[:, 2] - q[:, 0]) / (2.0 * dd_m)
-    out[:, -2] = (q[:, -1] - q[:, -3]) / (2.0 * dd_m)
-    out[:, -1] = (q[:, -1] - q[:, -2]) / dd_m
-    out[:, 2:-2] = (8.0 * (q[:, 3:-1] - q[:, 1:-3]) - (q[:, 4:] - q[:, :-4])) / (12.0 * dd_m)
+    q = np.asarray(q, dtype=np.float64)
+    out = np.empty_like(q)          # the layout of q, so the kernel reads it in order
+    _fourth_order_differences(q, float(dd_m), out)
     return out
+
+
+@compiled()
+def _fourth_order_differences(q, dd_m, out):  # pragma: no cover - compiled
+    """The differences of :func:`along_derivative` along axis 1 of ``q`` into ``out``
+    (at least five columns), one pass and no temporaries; the same operations in the
+    same order as the array expressions ``(8 (q[j+1] - q[j-1]) - (q[j+2] - q[j-2])) /
+    (12 dd)``, so the same numbers. Column by column, each column in order: the lines
+    the gate measures come as columns of a Fortran-ordered array."""
+    n_t, n_d = q.shape
+    two = 2.0 * dd_m
+    twelve = 12.0 * dd_m
+    for t in range(n_t):
+        out[t, 0] = (q[t, 1] - q[t, 0]) / dd_m      # as numpy.gradient's ends
+        out[t, 1] = (q[t, 2] - q[t, 0]) / two
+        out[t, n_d - 2] = (q[t, n_d - 1] - q[t, n_d - 3]) / two
+        out[t, n_d - 1] = (q[t, n_d - 1] - q[t, n_d - 2]) / dd_m
+    for j in range(2, n_d - 2):
+        for t in range(n_t):
+            out[t, j] = (8.0 * (q[t, j + 1] - q[t, j - 1]) - (q[t, j + 2] - q[t, j - 2])) / twelve
 
 
 def least_squares_speed(numerator: float | np.ndarray, denominator: float | np.ndarray
@@ -600,23 +618,25 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         last = max(int(windows[k][-1]) for k in used) - lo + 1
         parts = [directional_components(f, dt_days, dd_km, band, columns=(first, last),
                                         n_out=n_s) for f in fields]
-        # Per time step, window by window: the window means of the three products are
-        # one matrix product with the windows' averaging weights. A block of steps at a
-        # time, so that the products stay in the processor's caches on long records.
+        # The three products, summed over the fields in one compiled pass, then their
+        # window means as one matrix product with the windows' averaging weights. A block
+        # of steps at a time, so that the products stay in the processor's caches on long
+        # records.
         weights = np.zeros((last - first, len(used)))
         for i, k in enumerate(used):
             weights[windows[k] - lo - first, i] = 1.0 / windows[k].size
         stacks = np.empty((len(configs), n_s, N_SERIES))
+        products = np.empty((3, last - first, min(n_s, TIME_BLOCK)))
         for t0 in range(0, n_s, TIME_BLOCK):
             t1 = min(n_s, t0 + TIME_BLOCK)
+            block = products[:, :, :t1 - t0]                  # (3, distance, time)
             for j, name in enumerate(("plus", "minus")):  # +d is west along a westward ray
-                q = [p[name][0][t0:t1] for p in parts]
-                q_t = [p[name][1][t0:t1] for p in parts]
-                q_d = [p[name][2][t0:t1] for p in parts]
-                products = np.stack([0.5 * sum(x ** 2 for x in q),
-                                     sum(-a * b for a, b in zip(q_t, q_d, strict=True)),
-                                     sum(x ** 2 for x in q_d)])      # (3, time, distance)
-                stacks[used, t0:t1, 3 * j:3 * j + 3] = (products @ weights).transpose(2, 1, 0)
+                block[...] = 0.0
+                for p in parts:                               # summed over the fields
+                    q, q_t, q_d = p[name]
+                    _add_gate_products(q[t0:t1], q_t[t0:t1], q_d[t0:t1], block)
+                block[0] *= 0.5
+                stacks[used, t0:t1, 3 * j:3 * j + 3] = (weights.T @ block).transpose(1, 2, 0)
         means = np.full((len(configs), N_SERIES), np.nan)
         for k in used:
             means[k] = stacks[k].mean(axis=0)
@@ -665,6 +685,24 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         step_days=step,
         record_step_days=dt_days,
     )
+
+
+@compiled()
+def _add_gate_products(q, q_t, q_d, out):  # pragma: no cover - compiled
+    """Add one field's terms of the gate's three products to ``out`` (3, distance, time):
+    :math:`q^2`, :math:`-q_t q_d` and :math:`q_d^2` of the (time, distance) parts (the
+    energy before its factor ½, and the two sums of :func:`least_squares_speed`). One pass,
+    no temporaries, time innermost: the parts are Fortran-ordered (time runs along memory),
+    so reads and writes both go in memory order. The same operations as the array
+    expressions ``x ** 2`` and ``-a * b``."""
+    n_t, n_d = q.shape
+    for j in range(n_d):
+        for t in range(n_t):
+            a = q[t, j]
+            b = q_d[t, j]
+            out[0, j, t] += a * a
+            out[1, j, t] += -q_t[t, j] * b
+            out[2, j, t] += b * b
 
 
 def _empty_gates(n_s: int, configs: list[tuple[float, float]], has_ssh: bool,
