@@ -233,6 +233,60 @@ def test_gates_measured_on_several_threads_change_no_station(tmp_path, monkeypat
         np.testing.assert_array_equal(getattr(many, name), getattr(one, name), err_msg=name)
 
 
+def _as_arrays(series):
+    """The series with every ray field read into an ordinary array."""
+    out = series.copy()
+    for name in ("ray_u", "ray_v", "ray_ssh"):
+        if name in out:
+            out[name] = (out[name].dims, np.asarray(out[name].data))
+    return out
+
+
+def test_gates_from_stored_grid_points_equal_the_gates_of_the_rays(tmp_path, monkeypatch):
+    from coastmon.sources import feed
+    from coastmon.stream.rays import RayField
+
+    nc, _ = make_scenario(_small(7), tmp_path / "data")
+    prep = prepare([nc], QUIET)
+    res = run_pass(prep.ds, prep.metrics, prep.frame, QUIET.stream, tmp_path / "work")
+    dt = float(np.median(np.diff(time_in_days(res.series["time"]))))
+    ray_u = res.series["ray_u"].data
+    assert isinstance(ray_u, RayField) and "ray_ssh" in res.series
+    # A gap in one grid point of u at one step: the rays through it are measured as read.
+    plan = ray_u.plan
+    points = np.array(ray_u.points)
+    gap = int(np.unique(plan.cols[plan.indptr[20 * plan.n_ray]:
+                                  plan.indptr[21 * plan.n_ray]])[3])
+    points[gap, 100] = np.nan
+    series = res.series.copy()
+    series["ray_u"] = (series["ray_u"].dims, RayField(points, plan))
+    linear = []
+    covers = feed._StoredHarmonics.covers
+    monkeypatch.setattr(feed._StoredHarmonics, "covers",
+                        lambda self, s: linear.append(covers(self, s)) or linear[-1])
+    stored = feed.gate_set(series, prep.frame, QUIET, dt, prep.ld_km)
+    read = feed.gate_set(_as_arrays(series), prep.frame, QUIET, dt, prep.ld_km)
+    assert sum(linear) > 10 and not all(linear)          # both ways were taken
+    # check: common practice, no source — the band's harmonics are linear in the series
+    # (discrete Fourier transform), so transforming the grid points and summing with the
+    # sampling weights gives the rays' harmonics; the rays as read are rounded to
+    # float32, a relative difference of about 1e-7 (IEEE 754 single precision)
+    np.testing.assert_array_equal(stored.station, read.station)
+    assert np.array_equal(np.isnan(stored.means), np.isnan(read.means))
+    for name in ("series", "means"):
+        a, b = getattr(stored, name), getattr(read, name)
+        np.testing.assert_allclose(a, b, rtol=0, atol=1e-6 * np.nanmax(np.abs(b)),
+                                   equal_nan=True, err_msg=name)
+    for name in ("kflux", "pwork", "ssh_var", "lon", "lat"):   # from the same float32 rays
+        np.testing.assert_array_equal(getattr(stored, name), getattr(read, name),
+                                      err_msg=name)
+    # the stations through the gap, measured from their rays as read: the same numbers
+    through = [i for i, s in enumerate(stored.station)
+               if gap in plan.cols[plan.indptr[s * plan.n_ray]:plan.indptr[(s + 1) * plan.n_ray]]]
+    assert through
+    np.testing.assert_array_equal(stored.means[:, through], read.means[:, through])
+
+
 def test_demo_command_refuses_an_output_that_is_a_file(tmp_path):
     f = tmp_path / "taken"
     f.write_text("x")

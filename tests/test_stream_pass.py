@@ -602,6 +602,23 @@ def test_ray_field_indexes_like_the_array_it_stands_for(tmp_path):
         field.reshape(23, -1)
     with pytest.raises(IndexError):
         field[:, 6]
+    for station, (a, b) in [(0, (0, 5)), (3, (1, 4)), (5, (4, 5)), (2, (2, 2))]:
+        np.testing.assert_array_equal(field.window(station, a, b), full[:, station, a:b])
+    with pytest.raises(IndexError):
+        field.window(6, 0, 1)
+    # check: scipy.sparse product (an independent computation): each station's weights
+    # on its grid points, applied to their series, give its rays to float32 rounding
+    matrix, points = field.station_weights(2, 5)
+    assert matrix.shape == (3 * 5, points.size) and np.all(np.diff(points) > 0)
+    rays_of = (matrix @ np.asarray(field.points[points], dtype=np.float64)).T
+    sampled = np.diff(matrix.indptr) > 0
+    np.testing.assert_allclose(rays_of[:, sampled],
+                               full[:, 2:5].reshape(23, 15)[:, sampled], rtol=1e-6)
+    assert np.isnan(full[:, 2:5].reshape(23, 15)[:, ~sampled]).all()
+    assert field.complete_points().all()
+    gappy = np.array(field.points)
+    gappy[4, 7] = np.nan
+    assert np.flatnonzero(~rays.RayField(gappy, field.plan).complete_points()).tolist() == [4]
     # a frame whose rays draw on as many grid points as they have points keeps the rays
     plain = make_frame(metrics.shape, sea, rng)
     s, o, r = len(plain.stations), plain.offsets_km.size, plain.ray_km.size

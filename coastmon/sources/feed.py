@@ -224,15 +224,35 @@ def directional_components(field: np.ndarray, dt_days: float, dd_km: float,
         ``(n_out, stop - start)``.
     """
     field = np.asarray(field)
-    n_t, n_d = field.shape
+    n_t = field.shape[0]
+    return split_harmonics(_band_rows(field, band_harmonics(n_t, dt_days, band_days)), n_t,
+                           dt_days, dd_km, band_days, columns, n_out)
+
+
+def band_harmonics(n_t: int, dt_days: float, band_days: tuple[float, float]) -> np.ndarray:
+    """The harmonics m of an ``n_t``-step record whose periods ``n_t dt / m`` lie in
+    ``band_days`` (shortest, longest), the mean (m = 0) never among them."""
+    freq = scipy.fft.rfftfreq(n_t, dt_days)                  # cycles per day
+    return np.flatnonzero((freq >= 1.0 / band_days[1]) & (freq <= 1.0 / band_days[0])
+                          & (freq > 0))
+
+
+def split_harmonics(harmonics: np.ndarray, n_t: int, dt_days: float, dd_km: float,
+                    band_days: tuple[float, float], columns: tuple[int, int] | None = None,
+                    n_out: int | None = None
+                    ) -> dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """:func:`directional_components` from the band's time harmonics of the detrended
+    field, ``(distance, harmonic)`` as :func:`_band_rows` gives them for
+    :func:`band_harmonics`; the transform is linear, so the harmonics of a weighted sum
+    of series may be given as the weighted sum of theirs."""
+    n_d = harmonics.shape[0]
     start, stop = (0, n_d) if columns is None else (max(0, columns[0]), min(n_d, columns[1]))
     lo, hi = max(0, start - 2), min(n_d, stop + 2)      # the derivative's stencil
     n_pad = PAD_FACTOR * n_d
     freq = scipy.fft.rfftfreq(n_t, dt_days)                  # cycles per day
     kappa = scipy.fft.fftfreq(n_pad, dd_km)                  # numpy sign: k = -kappa
-    rows = np.flatnonzero((freq >= 1.0 / band_days[1]) & (freq <= 1.0 / band_days[0])
-                          & (freq > 0))
-    spec = scipy.fft.fft(_band_rows(field, rows).T, n=n_pad, axis=1)
+    rows = band_harmonics(n_t, dt_days, band_days)
+    spec = scipy.fft.fft(harmonics.T, n=n_pad, axis=1)
     directional = ~np.isclose(np.abs(kappa), 0.5 / dd_km) & (kappa != 0)
     d_t = 2j * np.pi * freq[rows, None] / 86400.0
     n_out = n_t if n_out is None else int(n_out)
@@ -590,34 +610,57 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
     st_lat = frame.stations["lat"].values
     omega_f = 2.0 * OMEGA_EARTH
 
+    harmonics = _StoredHarmonics.of(ru, rv, rh, band_harmonics(n_t, dt_days, band))
+
     def one_ray(s: int):
         """Series and means of station ``s``'s westward ray, or None without a gate."""
         if direction[s] != -1:
             return None
         ok = np.isfinite(ray_lon[s])
-        # As stored (float32, station by station): the transforms convert each line to
-        # float64 as they read it, so no float64 copy of the whole ray is made here.
-        u, v = ru[:, s, :], rv[:, s, :]
-        ok &= np.isfinite(u).all(axis=0) & np.isfinite(v).all(axis=0)
-        h = None
-        if has_ssh:
-            h = np.asarray(rh[:, s, :], dtype=np.float64)
-            ok &= np.isfinite(h).all(axis=0)
+        linear = harmonics is not None and harmonics.covers(s)
+        u = v = h = None
+        if linear:   # rays finite at every step wherever they are sampled
+            ok &= harmonics.sampled(s)
+        else:
+            # As stored (float32, station by station): the transforms convert each line to
+            # float64 as they read it, so no float64 copy of the whole ray is made here.
+            u, v = ru[:, s, :], rv[:, s, :]
+            ok &= np.isfinite(u).all(axis=0) & np.isfinite(v).all(axis=0)
+            if has_ssh:
+                h = np.asarray(rh[:, s, :], dtype=np.float64)
+                ok &= np.isfinite(h).all(axis=0)
         runs = [_run_containing(ok, w) for w in windows]
         if runs[0] is None:
             return None
         lo = min(r[0] for r in runs if r is not None)
         hi = max(r[1] for r in runs if r is not None)
-        fields = [u[:, lo:hi], v[:, lo:hi]]
-        if has_ssh:
-            c1 = omega_f * abs(np.sin(np.radians(st_lat[s]))) * ld_km * 1000.0
-            fields.append(potential_energy_velocity(h[:, lo:hi] - h[:, lo:hi].mean(axis=0), c1))
+        c1 = omega_f * abs(np.sin(np.radians(st_lat[s]))) * ld_km * 1000.0
         used = [k for k, run in enumerate(runs) if run is not None and run[0] >= lo
                 and run[1] <= hi]
         first = min(int(windows[k][0]) for k in used) - lo
         last = max(int(windows[k][-1]) for k in used) - lo + 1
-        parts = [directional_components(f, dt_days, dd_km, band, columns=(first, last),
-                                        n_out=n_s) for f in fields]
+        if linear:
+            spectra = [harmonics.ray(k, s, lo, hi) for k in range(2 + has_ssh)]
+            if has_ssh:   # the energy velocity is proportional to the SSH anomaly
+                spectra[2] = spectra[2] * potential_energy_velocity(1.0, c1)
+            parts = [split_harmonics(f, n_t, dt_days, dd_km, band, columns=(first, last),
+                                     n_out=n_s) for f in spectra]
+            w0, w1 = int(windows[0][0]), int(windows[0][-1]) + 1
+            at = windows[0] - w0
+            uw = np.asarray(ru.window(s, w0, w1)[:, at], dtype=np.float64)
+            vw = np.asarray(rv.window(s, w0, w1)[:, at], dtype=np.float64)
+            hw = np.asarray(rh.window(s, w0, w1)[:, at], dtype=np.float64) if has_ssh \
+                else None
+        else:
+            fields = [u[:, lo:hi], v[:, lo:hi]]
+            if has_ssh:
+                fields.append(potential_energy_velocity(h[:, lo:hi] - h[:, lo:hi].mean(axis=0),
+                                                        c1))
+            parts = [directional_components(f, dt_days, dd_km, band, columns=(first, last),
+                                            n_out=n_s) for f in fields]
+            uw = np.asarray(u[:, windows[0]], dtype=np.float64)
+            vw = np.asarray(v[:, windows[0]], dtype=np.float64)
+            hw = h[:, windows[0]] if has_ssh else None
         # The three products, summed over the fields in one compiled pass, then their
         # window means as one matrix product with the windows' averaging weights. A block
         # of steps at a time, so that the products stay in the processor's caches on long
@@ -641,14 +684,12 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         for k in used:
             means[k] = stacks[k].mean(axis=0)
         nominal = stacks[0]
-        uw = np.asarray(u[:, windows[0]], dtype=np.float64)
-        vw = np.asarray(v[:, windows[0]], dtype=np.float64)
         ua = uw - uw.mean(axis=0)
         va = vw - vw.mean(axis=0)
         kflux = float(np.mean(-ua * 0.5 * (ua**2 + va**2)))
         pwork = ssh_var = np.nan
         if has_ssh:
-            ha = h[:, windows[0]] - h[:, windows[0]].mean(axis=0)
+            ha = hw - hw.mean(axis=0)
             pwork = float(np.mean(-ua * G * ha))
             ssh_var = float(np.mean(ha**2))
         return (s, ray_lat[s, gate_i], ray_lon[s, gate_i], nominal, means, kflux, pwork,
@@ -663,7 +704,10 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
     block = 8 * workers
     with ThreadPoolExecutor(max_workers=workers) as pool:
         for b0 in range(0, ru.shape[1], block):
-            for r in pool.map(one_ray, range(b0, min(ru.shape[1], b0 + block))):
+            b1 = min(ru.shape[1], b0 + block)
+            if harmonics is not None:
+                harmonics.load(b0, b1, direction[b0:b1] == -1, pool)
+            for r in pool.map(one_ray, range(b0, b1)):
                 if r is not None:
                     nominal[:, len(rows)] = r[3]
                     rows.append(r[:3] + (None,) + r[4:])
@@ -685,6 +729,82 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         step_days=step,
         record_step_days=dt_days,
     )
+
+
+class _StoredHarmonics:
+    """The band's time harmonics of rays kept as their grid points
+    (:class:`~coastmon.stream.rays.RayField`), a block of stations at a time.
+
+    A ray point is a weighted mean of grid points and the band's harmonics of a detrended
+    series (:func:`_band_rows`) are linear in the series, so each grid point is
+    transformed once for all the rays through it, and a ray's harmonics are the weighted
+    sums of its grid points' (:meth:`~coastmon.stream.rays.RayField.station_weights`): on
+    the long benchmark record 5013 grid points are transformed instead of 14 220 ray
+    points. This holds where every grid point a ray draws on is finite at every step (the
+    pass's weights are then the same at every step); a station whose ray meets a gap is
+    measured from its ray as read (:meth:`covers`). The harmonics differ from those of
+    the rays as read by the rays' float32 rounding: the grid points' series are
+    transformed as stored, not rounded again after interpolation.
+    """
+
+    def __init__(self, fields: list, rows: np.ndarray) -> None:
+        self.fields = fields
+        self.rows = rows
+        self.n_ray = int(fields[0].shape[2])
+        self.complete = np.logical_and.reduce([f.complete_points() for f in fields])
+        self.first = 0
+        self.linear = np.zeros(0, dtype=bool)
+        self.matrix = None
+        self.spectra: list[np.ndarray] = []
+
+    @classmethod
+    def of(cls, ru, rv, rh, rows: np.ndarray) -> _StoredHarmonics | None:
+        """For ray fields that are all kept as the same grid points, else None."""
+        from coastmon.stream.rays import RayField
+
+        fields = [ru, rv] + ([rh] if rh is not None else [])
+        if not all(isinstance(f, RayField) and f.plan is fields[0].plan for f in fields):
+            return None
+        return cls(fields, rows)
+
+    def load(self, first: int, stop: int, wanted: np.ndarray, pool) -> None:
+        """Transform the grid points of stations ``first:stop`` where ``wanted``, on the
+        threads of ``pool``."""
+        matrix, points = self.fields[0].station_weights(first, stop)
+        gaps = matrix.copy()
+        gaps.data[:] = 1.0
+        gaps = (gaps @ (~self.complete[points]).astype(float)).reshape(stop - first,
+                                                                       self.n_ray)
+        self.first, self.matrix = first, matrix
+        self.linear = np.asarray(wanted, dtype=bool) & ~(gaps > 0).any(axis=1)
+        per_row = np.repeat(self.linear, self.n_ray)
+        needed = np.unique(matrix[np.flatnonzero(per_row)].indices) if per_row.any() \
+            else np.zeros(0, dtype=np.int64)
+        self.spectra = [np.zeros((points.size, self.rows.size), dtype=np.complex128)
+                        for _ in self.fields]
+        size = max(1, FORWARD_BLOCK_BYTES // (4 * max(1, self.fields[0].shape[0])))
+
+        def transform(start: int) -> None:
+            idx = needed[start:start + size]
+            for field, out in zip(self.fields, self.spectra, strict=True):
+                series = np.asarray(field.points[points[idx]])       # (point, time)
+                out[idx] = _band_rows(series.T, self.rows)
+
+        list(pool.map(transform, range(0, needed.size, size)))
+
+    def covers(self, station: int) -> bool:
+        """Whether the station's ray harmonics come from its grid points (loaded)."""
+        return bool(self.linear[station - self.first])
+
+    def sampled(self, station: int) -> np.ndarray:
+        """``(n_ray,)`` the station's ray points that draw on any grid point."""
+        i = (station - self.first) * self.n_ray
+        return np.diff(self.matrix.indptr[i:i + self.n_ray + 1]) > 0
+
+    def ray(self, k: int, station: int, lo: int, hi: int) -> np.ndarray:
+        """``(hi - lo, harmonic)`` of field ``k`` on ray points ``lo:hi`` of the station."""
+        i = (station - self.first) * self.n_ray
+        return self.matrix[i + lo:i + hi] @ self.spectra[k]
 
 
 @compiled()

@@ -26,6 +26,8 @@ import scipy.sparse
 
 from coastmon.stream import kernels
 
+COMPLETE_BLOCK_BYTES = 16 * 2**20
+"""Grid-point series tested for gaps at once by :meth:`RayField.complete_points`."""
 RAY_POINTS_RATIO = 0.75
 """Grid points are stored instead of rays when they number at most this share of the ray
 points (below it the pass writes a quarter fewer numbers or better; above it the
@@ -106,6 +108,7 @@ class RayField:
         self.shape = (int(points.shape[1]), plan.n_stations, plan.n_ray)
         self.dtype = np.dtype(np.float32)
         self.ndim = 3
+        self._complete: np.ndarray | None = None
 
     @property
     def size(self) -> int:
@@ -134,6 +137,57 @@ class RayField:
             kernels._sample_stored(p.indptr, p.cols, p.weights, p.valid, self.points,
                                    int(s) * p.n_ray, out[i])
         return np.swapaxes(out, 0, 1)
+
+    def window(self, station: int, start: int, stop: int) -> np.ndarray:
+        """Ray points ``start:stop`` of one station, ``(time, stop - start)`` float32: the
+        numbers indexing gives, computing only those points."""
+        p = self.plan
+        if not (0 <= station < p.n_stations and 0 <= start <= stop <= p.n_ray):
+            raise IndexError(f"station {station}, points {start}:{stop} are out of range "
+                             f"of a {self.shape} ray field")
+        out = np.empty((self.shape[0], stop - start), dtype=np.float32)
+        kernels._sample_stored(p.indptr, p.cols, p.weights, p.valid, self.points,
+                               int(station) * p.n_ray + int(start), out)
+        return out
+
+    def complete_points(self) -> np.ndarray:
+        """``(P,)`` whether each stored grid point is finite at every step (worked out on
+        the first call, a block of points at a time, and kept)."""
+        if self._complete is None:
+            n_p, n_t = self.points.shape
+            done = np.empty(n_p, dtype=np.bool_)
+            step = max(1, COMPLETE_BLOCK_BYTES // max(1, 4 * n_t))
+            for p0 in range(0, n_p, step):
+                done[p0:p0 + step] = np.isfinite(self.points[p0:p0 + step]).all(axis=1)
+            self._complete = done
+        return self._complete
+
+    def station_weights(self, first: int, stop: int
+                        ) -> tuple[scipy.sparse.csr_matrix, np.ndarray]:
+        """The rays of stations ``first:stop`` as weights on the grid points they draw on.
+
+        Returns ``(matrix, points)``: ``matrix`` is CSR, ``((stop - first) * n_ray,
+        len(points))``, one row per ray point, station-major, each row's weights divided
+        by their sum (so that, where every value is finite, the row applied to the points'
+        series gives the ray, as the pass computes it, to rounding); rows that are not
+        valid, or whose weights sum to zero, are empty. ``points`` are the indices of those
+        grid points in the stored series, ascending.
+        """
+        p = self.plan
+        r0, r1 = first * p.n_ray, stop * p.n_ray
+        full = scipy.sparse.csr_matrix((p.weights, p.cols, p.indptr),
+                                       shape=(p.n_stations * p.n_ray, p.n_points))
+        rows = full[r0:r1].tocsr()
+        rows.eliminate_zeros()
+        points, local = np.unique(rows.indices, return_inverse=True)
+        total = np.asarray(rows.sum(axis=1)).ravel()
+        keep = p.valid[r0:r1] & (total > 0)
+        scale = np.where(keep, 1.0 / np.where(total > 0, total, 1.0), 0.0)
+        matrix = scipy.sparse.csr_matrix(
+            (rows.data * np.repeat(scale, np.diff(rows.indptr)), local.ravel(), rows.indptr),
+            shape=(r1 - r0, points.size))
+        matrix.eliminate_zeros()
+        return matrix, points
 
     def __getitem__(self, key):
         if not isinstance(key, tuple):
