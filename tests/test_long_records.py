@@ -299,6 +299,35 @@ def test_gate_products_kernel_gives_the_array_expressions():
     np.testing.assert_array_equal(out, want.transpose(0, 2, 1))
 
 
+@pytest.mark.parametrize("n_t", [1500, 730])
+def test_window_means_from_harmonics_are_the_means_of_the_series(n_t):
+    from coastmon.sources import feed
+
+    rng = np.random.default_rng(n_t)
+    band = (10.0, 120.0)
+    fields = [rng.standard_normal((n_t, 40)).cumsum(axis=0) for _ in range(3)]
+    rows = feed.band_harmonics(n_t, 1.0, band)
+    spectra = [feed._band_rows(f, rows) for f in fields]
+    windows = [np.arange(12, 20), np.arange(3, 31), np.arange(36, 40), np.arange(0, 6)]
+    got = feed._window_means_from_harmonics(spectra, windows, n_t, 1.0, 10.0, band)
+    # the series at every step and their products, window by window (as the gate
+    # measured every configuration before)
+    for i, w in enumerate(windows):
+        parts = [feed.directional_components(f, 1.0, 10.0, band) for f in fields]
+        for j, name in enumerate(("plus", "minus")):
+            q = [p[name][0][:, w] for p in parts]
+            q_t = [p[name][1][:, w] for p in parts]
+            q_d = [p[name][2][:, w] for p in parts]
+            want = [np.mean(0.5 * sum(x ** 2 for x in q)),
+                    np.mean(sum(-a * b for a, b in zip(q_t, q_d, strict=True))),
+                    np.mean(sum(x ** 2 for x in q_d))]
+            # check: Parseval's theorem (Bracewell, The Fourier Transform and Its
+            # Applications, ch. 6) — the time mean of a product of two band-limited
+            # series is the sum over their harmonics
+            np.testing.assert_allclose(got[i, 3 * j:3 * j + 3], want, rtol=1e-9,
+                                       err_msg=f"window {i}, {name}")
+
+
 def test_alongshore_current_by_station_blocks_equals_all_at_once(monkeypatch):
     import warnings
 

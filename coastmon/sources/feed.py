@@ -45,6 +45,7 @@ half and one and a half times ``gate_window_km``.
 
 from __future__ import annotations
 
+import functools
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -248,25 +249,21 @@ def split_harmonics(harmonics: np.ndarray, n_t: int, dt_days: float, dd_km: floa
     n_d = harmonics.shape[0]
     start, stop = (0, n_d) if columns is None else (max(0, columns[0]), min(n_d, columns[1]))
     lo, hi = max(0, start - 2), min(n_d, stop + 2)      # the derivative's stencil
-    n_pad = PAD_FACTOR * n_d
     freq = scipy.fft.rfftfreq(n_t, dt_days)                  # cycles per day
-    kappa = scipy.fft.fftfreq(n_pad, dd_km)                  # numpy sign: k = -kappa
     rows = band_harmonics(n_t, dt_days, band_days)
-    spec = scipy.fft.fft(harmonics.T, n=n_pad, axis=1)
-    directional = ~np.isclose(np.abs(kappa), 0.5 / dd_km) & (kappa != 0)
     d_t = 2j * np.pi * freq[rows, None] / 86400.0
     n_out = n_t if n_out is None else int(n_out)
     if rows.size and 2 * rows[-1] >= n_out:
         raise ValueError(f"{n_out} samples cannot hold harmonic {rows[-1]} of the band")
 
-    # Back along the line once per side, then back in time: the band's harmonics placed
-    # in a spectrum of n_out samples (the same trigonometric polynomial, evaluated at
-    # n_out equally spaced times), both sides and their time derivatives in one transform
-    # with time last.
+    # Split along the line (both sides at once, :func:`_side_operators`), then back in
+    # time: the band's harmonics placed in a spectrum of n_out samples (the same
+    # trigonometric polynomial, evaluated at n_out equally spaced times), both sides and
+    # their time derivatives in one transform with time last.
+    sides = _side_operators(n_d, lo, hi) @ harmonics         # (2 (hi - lo), harmonic)
     full = np.zeros((4, hi - lo, n_out // 2 + 1), dtype=np.complex128)
-    for j, side in enumerate((kappa < 0, kappa > 0)):     # plus, minus
-        part = np.where((directional & side)[None, :], spec, 0.0)
-        line = scipy.fft.ifft(part, axis=1)[:, lo:hi].T
+    for j in range(2):                                       # plus, minus
+        line = sides[j * (hi - lo):(j + 1) * (hi - lo)]
         full[2 * j][:, rows] = line
         full[2 * j + 1][:, rows] = line * d_t.T
     series = scipy.fft.irfft(full, n=n_out, axis=2, overwrite_x=True)
@@ -278,6 +275,32 @@ def split_harmonics(harmonics: np.ndarray, n_t: int, dt_days: float, dd_km: floa
         q_d = along_derivative(q, dd_km * 1000.0)
         out[name] = (q[:, keep], series[2 * j + 1].T[:, keep], q_d[:, keep])
     return out
+
+
+@functools.lru_cache(maxsize=256)
+def _side_operators(n_d: int, lo: int, hi: int) -> np.ndarray:
+    r"""The split along a line of ``n_d`` points as one matrix, ``(2 (hi - lo), n_d)``:
+    rows ``0:hi-lo`` give points ``lo:hi`` of the part travelling toward +d, the next
+    ``hi - lo`` those of the part toward −d.
+
+    The line is padded with zeros to ``PAD_FACTOR n_d`` points, transformed, every
+    wavenumber but those of one sign set to zero (the zero and the Nyquist wavenumber
+    always), and transformed back; each step is linear, so the whole is the matrix these
+    steps make of the identity's columns. Applied to the band's harmonics of every point
+    (a matrix product, a fifth of the time of the transforms on the long benchmark
+    record) it gives the transforms' numbers to rounding. Kept for the run lengths and
+    windows met (a few).
+    """
+    n_pad = PAD_FACTOR * n_d
+    index = np.rint(scipy.fft.fftfreq(n_pad) * n_pad)        # numpy sign: k = -index
+    nyquist = (n_pad % 2 == 0) & (np.abs(index) == n_pad // 2)
+    directional = (index != 0) & ~nyquist
+    basis = scipy.fft.fft(np.eye(n_d), n=n_pad, axis=0)      # (n_pad, n_d)
+    parts = [scipy.fft.ifft(np.where((directional & side)[:, None], basis, 0.0),
+                            axis=0)[lo:hi] for side in (index < 0, index > 0)]
+    operator = np.concatenate(parts)
+    operator.flags.writeable = False
+    return operator
 
 
 def _band_rows(field: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -610,7 +633,11 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
     st_lat = frame.stations["lat"].values
     omega_f = 2.0 * OMEGA_EARTH
 
-    harmonics = _StoredHarmonics.of(ru, rv, rh, band_harmonics(n_t, dt_days, band))
+    in_band = band_harmonics(n_t, dt_days, band)
+    harmonics = _StoredHarmonics.of(ru, rv, rh, in_band)
+    # Time means of products from the harmonics equal those of the n_s samples when the
+    # products' harmonics (up to twice the band's highest) fold onto no others.
+    parseval = bool(in_band.size) and 4 * int(in_band[-1]) < min(n_s, n_t)
 
     def one_ray(s: int):
         """Series and means of station ``s``'s westward ray, or None without a gate."""
@@ -637,14 +664,10 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
         c1 = omega_f * abs(np.sin(np.radians(st_lat[s]))) * ld_km * 1000.0
         used = [k for k, run in enumerate(runs) if run is not None and run[0] >= lo
                 and run[1] <= hi]
-        first = min(int(windows[k][0]) for k in used) - lo
-        last = max(int(windows[k][-1]) for k in used) - lo + 1
         if linear:
-            spectra = [harmonics.ray(k, s, lo, hi) for k in range(2 + has_ssh)]
+            spectra = harmonics.ray(s, lo, hi)
             if has_ssh:   # the energy velocity is proportional to the SSH anomaly
                 spectra[2] = spectra[2] * potential_energy_velocity(1.0, c1)
-            parts = [split_harmonics(f, n_t, dt_days, dd_km, band, columns=(first, last),
-                                     n_out=n_s) for f in spectra]
             w0, w1 = int(windows[0][0]), int(windows[0][-1]) + 1
             at = windows[0] - w0
             uw = np.asarray(ru.window(s, w0, w1)[:, at], dtype=np.float64)
@@ -656,17 +679,29 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
             if has_ssh:
                 fields.append(potential_energy_velocity(h[:, lo:hi] - h[:, lo:hi].mean(axis=0),
                                                         c1))
-            parts = [directional_components(f, dt_days, dd_km, band, columns=(first, last),
-                                            n_out=n_s) for f in fields]
+            spectra = [_band_rows(f, in_band) for f in fields]
             uw = np.asarray(u[:, windows[0]], dtype=np.float64)
             vw = np.asarray(v[:, windows[0]], dtype=np.float64)
             hw = h[:, windows[0]] if has_ssh else None
+        # Series only where they are needed: the nominal gate's, for the bootstrap. The
+        # other configurations' time means from the harmonics (Parseval's theorem),
+        # where the samples' means are those of every step; else from series as well.
+        means = np.full((len(configs), N_SERIES), np.nan)
+        spectral = [k for k in used if k != 0] if parseval else []
+        if spectral:
+            means[spectral] = _window_means_from_harmonics(
+                spectra, [windows[k] - lo for k in spectral], n_t, dt_days, dd_km, band)
+        timed = [k for k in used if k not in spectral]
+        first = min(int(windows[k][0]) for k in timed) - lo
+        last = max(int(windows[k][-1]) for k in timed) - lo + 1
+        parts = [split_harmonics(f, n_t, dt_days, dd_km, band, columns=(first, last),
+                                 n_out=n_s) for f in spectra]
         # The three products, summed over the fields in one compiled pass, then their
         # window means as one matrix product with the windows' averaging weights. A block
         # of steps at a time, so that the products stay in the processor's caches on long
         # records.
-        weights = np.zeros((last - first, len(used)))
-        for i, k in enumerate(used):
+        weights = np.zeros((last - first, len(timed)))
+        for i, k in enumerate(timed):
             weights[windows[k] - lo - first, i] = 1.0 / windows[k].size
         stacks = np.empty((len(configs), n_s, N_SERIES))
         products = np.empty((3, last - first, min(n_s, TIME_BLOCK)))
@@ -679,9 +714,8 @@ def gate_set(series: xr.Dataset, frame, settings: Settings, dt_days: float,
                     q, q_t, q_d = p[name]
                     _add_gate_products(q[t0:t1], q_t[t0:t1], q_d[t0:t1], block)
                 block[0] *= 0.5
-                stacks[used, t0:t1, 3 * j:3 * j + 3] = (weights.T @ block).transpose(1, 2, 0)
-        means = np.full((len(configs), N_SERIES), np.nan)
-        for k in used:
+                stacks[timed, t0:t1, 3 * j:3 * j + 3] = (weights.T @ block).transpose(1, 2, 0)
+        for k in timed:
             means[k] = stacks[k].mean(axis=0)
         nominal = stacks[0]
         ua = uw - uw.mean(axis=0)
@@ -755,7 +789,7 @@ class _StoredHarmonics:
         self.first = 0
         self.linear = np.zeros(0, dtype=bool)
         self.matrix = None
-        self.spectra: list[np.ndarray] = []
+        self.spectra = np.zeros((0, len(fields), rows.size), dtype=np.complex128)
 
     @classmethod
     def of(cls, ru, rv, rh, rows: np.ndarray) -> _StoredHarmonics | None:
@@ -780,15 +814,17 @@ class _StoredHarmonics:
         per_row = np.repeat(self.linear, self.n_ray)
         needed = np.unique(matrix[np.flatnonzero(per_row)].indices) if per_row.any() \
             else np.zeros(0, dtype=np.int64)
-        self.spectra = [np.zeros((points.size, self.rows.size), dtype=np.complex128)
-                        for _ in self.fields]
+        # (point, field, harmonic): the fields side by side, so that one product with
+        # a ray's weights gives all its fields
+        self.spectra = np.zeros((points.size, len(self.fields), self.rows.size),
+                                dtype=np.complex128)
         size = max(1, FORWARD_BLOCK_BYTES // (4 * max(1, self.fields[0].shape[0])))
 
         def transform(start: int) -> None:
             idx = needed[start:start + size]
-            for field, out in zip(self.fields, self.spectra, strict=True):
+            for k, field in enumerate(self.fields):
                 series = np.asarray(field.points[points[idx]])       # (point, time)
-                out[idx] = _band_rows(series.T, self.rows)
+                self.spectra[idx, k] = _band_rows(series.T, self.rows)
 
         list(pool.map(transform, range(0, needed.size, size)))
 
@@ -801,10 +837,62 @@ class _StoredHarmonics:
         i = (station - self.first) * self.n_ray
         return np.diff(self.matrix.indptr[i:i + self.n_ray + 1]) > 0
 
-    def ray(self, k: int, station: int, lo: int, hi: int) -> np.ndarray:
-        """``(hi - lo, harmonic)`` of field ``k`` on ray points ``lo:hi`` of the station."""
+    def ray(self, station: int, lo: int, hi: int) -> list[np.ndarray]:
+        """Each field's ``(hi - lo, harmonic)`` on ray points ``lo:hi`` of the station."""
         i = (station - self.first) * self.n_ray
-        return self.matrix[i + lo:i + hi] @ self.spectra[k]
+        n_p, n_f, n_h = self.spectra.shape
+        out = (self.matrix[i + lo:i + hi] @ self.spectra.reshape(n_p, n_f * n_h))
+        out = out.reshape(hi - lo, n_f, n_h)
+        return [out[:, k] for k in range(n_f)]
+
+
+def band_product_mean(a: np.ndarray, b: np.ndarray, n_t: int) -> np.ndarray:
+    r"""Time mean over an ``n_t``-step record of the product of two real series given by
+    their harmonics in a band (last axis, as :func:`_band_rows` gives them), the series
+    being :math:`x_t = \frac{2}{n}\sum_m \mathrm{Re}(X_m e^{2\pi i m t/n})`:
+
+    .. math:: \overline{ab} = \frac{2}{n^2} \sum_m \mathrm{Re}(A_m B_m^*)
+
+    (Parseval's theorem; Bracewell, *The Fourier Transform and Its Applications*), for
+    harmonics :math:`0 < m` whose sums :math:`m + m'` stay below ``n_t`` (no product
+    term folds onto the mean).
+    """
+    # Re(A B*) = Re A Re B + Im A Im B: one dot product of the arrays' float64 views.
+    a = np.ascontiguousarray(a, dtype=np.complex128).view(np.float64)
+    b = np.ascontiguousarray(b, dtype=np.complex128).view(np.float64)
+    return 2.0 / n_t**2 * np.einsum("...i,...i->...", a, b)
+
+
+def _window_means_from_harmonics(spectra: list[np.ndarray], windows: list[np.ndarray],
+                                 n_t: int, dt_days: float, dd_km: float,
+                                 band_days: tuple[float, float]) -> np.ndarray:
+    """The gate's six time means over each window, ``(window, 6)``, from the band's
+    harmonics of the fields on a run of the ray (:func:`split_harmonics`' parts, the time
+    derivative and :func:`along_derivative` taken on the harmonics, which they act on
+    linearly with the same coefficients; :func:`band_product_mean`)."""
+    n_d = spectra[0].shape[0]
+    start = min(int(w[0]) for w in windows)
+    stop = max(int(w[-1]) for w in windows) + 1
+    lo, hi = max(0, start - 2), min(n_d, stop + 2)      # the derivative's stencil
+    rows = band_harmonics(n_t, dt_days, band_days)
+    d_t = 2j * np.pi * scipy.fft.rfftfreq(n_t, dt_days)[rows] / 86400.0
+    keep = slice(start - lo, stop - lo)
+    terms = np.zeros((6, stop - start))     # per distance: energy, speed sums, west, east
+    for spec in spectra:
+        sides = _side_operators(n_d, lo, hi) @ spec
+        for j in range(2):                                   # plus (west), minus
+            q = sides[j * (hi - lo):(j + 1) * (hi - lo)]     # (distance, harmonic)
+            # along the line, real and imaginary parts alike (real coefficients)
+            q_d = along_derivative(q.view(np.float64).T, dd_km * 1000.0).T
+            q_d = q_d.view(np.complex128)[keep]
+            q = q[keep]
+            terms[3 * j] += 0.5 * band_product_mean(q, q, n_t)
+            terms[3 * j + 1] += -band_product_mean(q * d_t, q_d, n_t)
+            terms[3 * j + 2] += band_product_mean(q_d, q_d, n_t)
+    weights = np.zeros((stop - start, len(windows)))
+    for i, w in enumerate(windows):
+        weights[np.asarray(w) - start, i] = 1.0 / len(w)
+    return (terms @ weights).T
 
 
 @compiled()
