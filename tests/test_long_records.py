@@ -358,6 +358,17 @@ def test_alongshore_current_by_station_blocks_equals_all_at_once(monkeypatch):
     # the near-shore mean of v, whichever block of stations it is formed in
     np.testing.assert_allclose(whole, want, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(blocks, whole, rtol=1e-12, atol=1e-15)
+    # gaps at one station only: the others take plain means, the same numbers
+    v = rng.standard_normal((200, 9, 5)).astype(np.float32)
+    v[rng.random(200) < 0.3, 4, 1] = np.nan
+    series["section_v"] = (("time", "station", "offset"), v)
+    got = detect.alongshore_current(series, frame, 20.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        want = np.nanmean(v[:, :, :3].astype(np.float64), axis=2)
+    # check: common practice, no source (numpy.nanmean, station by station)
+    for s in range(9):
+        np.testing.assert_array_equal(got[:, s], want[:, s], err_msg=str(s))
 
 
 def test_analyses_run_with_one_blas_thread_and_restore_it():

@@ -409,7 +409,13 @@ def alongshore_current(series: xr.Dataset, frame, nearshore_km: float) -> np.nda
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns stay NaN
         for name, out in (("section_u", u), ("section_v", v)):
             for cols, sub in _station_blocks(series[name].values, near):
-                out[:, cols] = np.nanmean(sub, axis=2)
+                full = np.isfinite(sub).all(axis=(0, 2))
+                if full.all():           # no gaps: the plain means, the same numbers
+                    out[:, cols] = sub.mean(axis=2)
+                    continue
+                idx = np.arange(cols.start, cols.start + sub.shape[1])
+                out[:, idx[full]] = sub[:, full].mean(axis=2)
+                out[:, idx[~full]] = np.nanmean(sub[:, ~full], axis=2)
     st = frame.stations
     east = np.zeros(len(st))
     north = np.zeros(len(st))
