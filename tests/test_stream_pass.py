@@ -623,3 +623,39 @@ def test_ray_field_indexes_like_the_array_it_stands_for(tmp_path):
     plain = make_frame(metrics.shape, sea, rng)
     s, o, r = len(plain.stations), plain.offsets_km.size, plain.ray_km.size
     assert rays.plan_ray_points(plain.sampler, plain.valid, s, o, r) is None
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="needs Linux /proc")
+def test_linear_ray_consumers_release_the_pages_they_read(tmp_path):
+    from coastmon.assess.spinup import spinup_curve
+    from coastmon.stream import kernels
+    from coastmon.stream.rays import RayField, RayPlan
+
+    def mapped_file_kb():
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("RssFile:"):
+                return int(line.split()[1])
+
+    n_points, nt = 2000, 8192                      # 64 MB of grid-point series
+    values = np.repeat(1.0 + np.arange(n_points, dtype=np.float32)[:, None], nt, axis=1)
+    np.save(tmp_path / "points.npy", values)      # written, not mapped
+    del values
+    points = np.load(tmp_path / "points.npy", mmap_mode="r")
+    rows = np.arange(n_points)                     # one ray point per grid point
+    plan = RayPlan(points=np.arange(n_points), indptr=kernels.row_pointers(rows, n_points),
+                   cols=rows.astype(np.int64), weights=np.ones(n_points), valid=np.ones(
+                       n_points, dtype=bool), n_stations=n_points // 4, n_ray=4)
+    np.save(tmp_path / "small.npy", np.ones((n_points, 16), dtype=np.float32))
+    small = RayField(np.load(tmp_path / "small.npy", mmap_mode="r"), plan)
+    spinup_curve([small], np.arange(16, dtype=float))   # libraries and kernels loaded
+    field = RayField(points, plan)
+    before = mapped_file_kb()
+    assert field.complete_points().all()
+    after_complete = mapped_file_kb()
+    curve = spinup_curve([field], np.arange(nt, dtype=float))
+    after_spinup = mapped_file_kb()
+    # check: common practice, no source (proc(5): RssFile counts the file pages mapped
+    # into the process; pages read a block at a time and released stay near one block)
+    assert after_complete - before < 32 * 1024, (before, after_complete)
+    assert after_spinup - before < 32 * 1024, (before, after_spinup)
+    assert np.allclose(curve.correlation, 1.0)     # constant series: every mean is final

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from coastmon.compiled import compiled
-from coastmon.io.pages import station_sweep
+from coastmon.io.pages import release, station_sweep
 from coastmon.stream.rays import RayField
 
 GRID_POINTS_PER_SWEEP = 512
@@ -95,12 +95,14 @@ def _stored_running_means(field, marks: np.ndarray, out: np.ndarray) -> None:
     for p0 in range(0, points.size, step):
         idx = points[p0:p0 + step]
         block = np.asarray(series[idx]).T[:, :, None]      # (time, point, 1)
+        release(field)                                     # a copy is held, not the pages
         _running_means(block, marks, grid[:, p0:p0 + idx.size])
     out[:] = (matrix @ grid.T).T
     sampled = np.diff(matrix.indptr) > 0
     out[:, ~sampled] = np.nan
     for s in np.flatnonzero(gappy):
         _running_means(field[:, s:s + 1], marks, out[:, s * n_ray:(s + 1) * n_ray])
+        release(field)
 
 
 def spinup_curve(fields: list[np.ndarray], time_days: np.ndarray, threshold: float = 0.9,

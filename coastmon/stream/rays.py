@@ -24,6 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse
 
+from coastmon.io.pages import release
 from coastmon.stream import kernels
 
 COMPLETE_BLOCK_BYTES = 16 * 2**20
@@ -159,6 +160,7 @@ class RayField:
             step = max(1, COMPLETE_BLOCK_BYTES // max(1, 4 * n_t))
             for p0 in range(0, n_p, step):
                 done[p0:p0 + step] = np.isfinite(self.points[p0:p0 + step]).all(axis=1)
+                release(self)   # the pages read, so memory does not grow with the record
             self._complete = done
         return self._complete
 
