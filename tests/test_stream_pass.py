@@ -659,3 +659,17 @@ def test_linear_ray_consumers_release_the_pages_they_read(tmp_path):
     assert after_complete - before < 32 * 1024, (before, after_complete)
     assert after_spinup - before < 32 * 1024, (before, after_spinup)
     assert np.allclose(curve.correlation, 1.0)     # constant series: every mean is final
+
+
+def test_station_sweep_keeps_its_blocks_within_the_byte_budget(monkeypatch):
+    from coastmon.io import pages
+
+    values = np.arange(50 * 7 * 3, dtype=np.float32).reshape(50, 7, 3)
+    monkeypatch.setattr(pages, "SWEEP_BLOCK_BYTES", 2 * 50 * 3 * 4)      # two stations
+    blocks = list(pages.station_sweep(values))
+    assert [b.shape[1] for _, b in blocks] == [2, 2, 2, 1]
+    assert [c for c, _ in blocks][-1] == slice(18, 21)
+    # check: common practice, no source (numpy concatenation of the blocks is the array)
+    np.testing.assert_array_equal(np.concatenate([b for _, b in blocks], axis=1), values)
+    monkeypatch.setattr(pages, "SWEEP_BLOCK_BYTES", 1)                   # at least one
+    assert len(list(pages.station_sweep(values))) == 7

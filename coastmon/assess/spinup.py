@@ -94,9 +94,12 @@ def _stored_running_means(field, marks: np.ndarray, out: np.ndarray) -> None:
     step = GRID_POINTS_PER_SWEEP
     for p0 in range(0, points.size, step):
         idx = points[p0:p0 + step]
-        block = np.asarray(series[idx]).T[:, :, None]      # (time, point, 1)
-        release(field)                                     # a copy is held, not the pages
-        _running_means(block, marks, grid[:, p0:p0 + idx.size])
+        if idx[-1] - idx[0] + 1 == idx.size:               # consecutive: a view, no copy
+            block = series[idx[0]:idx[-1] + 1]
+        else:
+            block = np.asarray(series[idx])
+        _running_means(block.T[:, :, None], marks, grid[:, p0:p0 + idx.size])
+        release(field)                                     # the pages read
     out[:] = (matrix @ grid.T).T
     sampled = np.diff(matrix.indptr) > 0
     out[:, ~sampled] = np.nan

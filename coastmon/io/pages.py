@@ -20,12 +20,17 @@ import os
 import numpy as np
 
 STATIONS_PER_RELEASE = 16
-"""Stations of a station-by-station sweep read between two :func:`release` calls."""
+"""Most stations of a station-by-station sweep read between two :func:`release` calls."""
+SWEEP_BLOCK_BYTES = 16 * 2**20
+"""Most bytes of one sweep block: a block computed on reading (a ray field) is a new
+array, and past the C library's largest heap block (32 MB) every new array is fresh
+memory from the system, which on long records cost more than the sums made on it."""
 
 
 def station_sweep(values):
     """A (time, station, ...) series swept in file order (the series files are station
-    major), :data:`STATIONS_PER_RELEASE` stations at a time.
+    major), :data:`STATIONS_PER_RELEASE` stations at a time, fewer when their block would
+    pass :data:`SWEEP_BLOCK_BYTES`.
 
     Yields ``(columns, block)``: ``block`` is the ``(time, stations, k)`` view of those
     stations (k: the trailing axes flattened, 1 when there are none) and ``columns`` the
@@ -35,8 +40,10 @@ def station_sweep(values):
     n_t = values.shape[0]
     view = values.reshape(n_t, values.shape[1] if values.ndim > 1 else 1, -1)
     k = view.shape[2]
-    for s0 in range(0, view.shape[1], STATIONS_PER_RELEASE):
-        s1 = min(view.shape[1], s0 + STATIONS_PER_RELEASE)
+    per_station = max(1, n_t * k * np.dtype(view.dtype).itemsize)
+    step = max(1, min(STATIONS_PER_RELEASE, SWEEP_BLOCK_BYTES // per_station))
+    for s0 in range(0, view.shape[1], step):
+        s1 = min(view.shape[1], s0 + step)
         yield slice(s0 * k, s1 * k), view[:, s0:s1]
         release(values)
 

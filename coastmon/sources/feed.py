@@ -79,6 +79,9 @@ TIME_BLOCK = 1024
 """Time steps of a ray's band-passed parts reduced to gate series at once."""
 FORWARD_BLOCK_BYTES = 2**19
 """Detrended series transformed in time at once per ray (:func:`_band_rows`)."""
+FORWARD_MIN_LINES = 8
+"""Fewest series transformed at once (:func:`_band_rows`), however long the record: fewer
+make many small transforms whose call overhead dominates."""
 BOOTSTRAP_COLUMNS = 96
 """Series resampled at once by :func:`block_bootstrap_means` (bounds its cumulative sums)."""
 
@@ -309,7 +312,8 @@ def _band_rows(field: np.ndarray, rows: np.ndarray) -> np.ndarray:
 
     Each distance is transformed with the time axis last (contiguous rows, about a quarter
     faster on long records), a few distances at a time, so that the float64 copies stay
-    within :data:`FORWARD_BLOCK_BYTES` however long the record. The least-squares line of
+    within :data:`FORWARD_BLOCK_BYTES` (or :data:`FORWARD_MIN_LINES` lines of the record)
+    however long the record. The least-squares line of
     :func:`coastmon.signals.propagation.detrend_time` is removed in spectral space: for
     harmonic :math:`m \ge 1` of n steps the constant has no component and the centred ramp
     :math:`t - (n-1)/2` has :math:`\sum_t t\,w^t = n/(w - 1)`, :math:`w = e^{-2\pi i m/n}`
@@ -327,7 +331,7 @@ def _band_rows(field: np.ndarray, rows: np.ndarray) -> np.ndarray:
     denom = float(t @ t)
     ramp = n_t / (np.exp(-2j * np.pi * rows / n_t) - 1.0)   # the ramp's harmonics
     out = np.empty((n_d, rows.size), dtype=np.complex128)
-    group = max(1, FORWARD_BLOCK_BYTES // (8 * max(n_t, 1)))
+    group = max(FORWARD_MIN_LINES, FORWARD_BLOCK_BYTES // (8 * max(n_t, 1)))
     for d0 in range(0, n_d, group):
         lines = np.array(field[:, d0:d0 + group].T, dtype=np.float64, order="C")
         slope = (lines @ t) / denom if denom > 0 else np.zeros(lines.shape[0])
@@ -818,7 +822,8 @@ class _StoredHarmonics:
         # a ray's weights gives all its fields
         self.spectra = np.zeros((points.size, len(self.fields), self.rows.size),
                                 dtype=np.complex128)
-        size = max(1, FORWARD_BLOCK_BYTES // (4 * max(1, self.fields[0].shape[0])))
+        size = max(4 * FORWARD_MIN_LINES,
+                   FORWARD_BLOCK_BYTES // (4 * max(1, self.fields[0].shape[0])))
 
         def transform(start: int) -> None:
             idx = needed[start:start + size]

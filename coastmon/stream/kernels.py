@@ -709,21 +709,30 @@ def _sample_split(indptr, cols, weights, valid, x, first, second, t0):  # pragma
     return 0
 
 
+STORED_TILE_STEPS = 64
+"""Steps of the rays copied at once into their (time, row) block (:func:`_sample_stored`)."""
+
+
 @compiled()
-def _sample_stored(indptr, cols, weights, valid, points, r0, out):  # pragma: no cover
+def _sample_stored(indptr, cols, weights, valid, points, r0, out, lines):  # pragma: no cover
     # Rows r0, r0 + 1, ... of the sampling matrix applied to stored grid-point series
     # ``points`` (grid point, time), with the arithmetic of _sample_split (the same
     # float64 sums in the same order), into ``out`` (time, row). The sums run without
     # the finiteness test first (a loop the compiler vectorises); a step whose sum is not
     # finite met a missing value and is summed again as _sample_split sums it. Where
     # every value is finite both give the same numbers: the same products added in the
-    # same order, and the weights' sum is then the same at every step.
+    # same order, and the weights' sum is then the same at every step. Each row is
+    # computed into a contiguous line and the lines are then copied into ``out`` a tile
+    # of steps at a time: writing ``out`` a column at a time touches a cache line per
+    # step, which on long records evicts the sums before the next row (superlinear).
+    # ``lines`` (rows, time), of out's type, is the caller's, reused from call to call.
     nt = points.shape[1]
+    n_rows = out.shape[1]
     num = np.zeros(nt)
-    for j in range(out.shape[1]):
+    for j in range(n_rows):
         p = r0 + j
         if not valid[p]:
-            out[:, j] = np.nan
+            lines[j, :] = np.nan
             continue
         num[:] = 0.0
         w_sum = 0.0
@@ -735,7 +744,7 @@ def _sample_stored(indptr, cols, weights, valid, points, r0, out):  # pragma: no
                 num[i] += w * np.float64(points[c, i])
         for i in range(nt):
             if np.isfinite(num[i]):
-                out[i, j] = num[i] / w_sum if w_sum != 0.0 else np.nan
+                lines[j, i] = num[i] / w_sum if w_sum != 0.0 else np.nan
             else:
                 n_i = 0.0
                 d_i = 0.0
@@ -744,7 +753,11 @@ def _sample_stored(indptr, cols, weights, valid, points, r0, out):  # pragma: no
                     if np.isfinite(val):
                         n_i += weights[k] * val
                         d_i += weights[k]
-                out[i, j] = n_i / d_i if d_i != 0.0 else np.nan
+                lines[j, i] = n_i / d_i if d_i != 0.0 else np.nan
+    for i0 in range(0, nt, STORED_TILE_STEPS):
+        for i in range(i0, min(nt, i0 + STORED_TILE_STEPS)):
+            for j in range(n_rows):
+                out[i, j] = lines[j, i]
     return 0
 
 

@@ -132,11 +132,12 @@ class RayField:
         # Station-major, as the series files are laid out (each station's record
         # contiguous): the (time, station, ray) view of it indexes as theirs does.
         out = np.empty((stations.size, self.shape[0], p.n_ray), dtype=np.float32)
+        lines = np.empty((p.n_ray, self.shape[0]), dtype=np.float32)
         for i, s in enumerate(stations):
             if not 0 <= s < p.n_stations:
                 raise IndexError(f"station {s} is out of range 0..{p.n_stations - 1}")
             kernels._sample_stored(p.indptr, p.cols, p.weights, p.valid, self.points,
-                                   int(s) * p.n_ray, out[i])
+                                   int(s) * p.n_ray, out[i], lines)
         return np.swapaxes(out, 0, 1)
 
     def window(self, station: int, start: int, stop: int) -> np.ndarray:
@@ -148,7 +149,8 @@ class RayField:
                              f"of a {self.shape} ray field")
         out = np.empty((self.shape[0], stop - start), dtype=np.float32)
         kernels._sample_stored(p.indptr, p.cols, p.weights, p.valid, self.points,
-                               int(station) * p.n_ray + int(start), out)
+                               int(station) * p.n_ray + int(start), out,
+                               np.empty((stop - start, self.shape[0]), dtype=np.float32))
         return out
 
     def complete_points(self) -> np.ndarray:
