@@ -793,7 +793,8 @@ class _StoredHarmonics:
         self.first = 0
         self.linear = np.zeros(0, dtype=bool)
         self.matrix = None
-        self.spectra = np.zeros((0, len(fields), rows.size), dtype=np.complex128)
+        self._buffer = np.empty((0, len(fields), rows.size), dtype=np.complex128)
+        self.spectra = self._buffer
 
     @classmethod
     def of(cls, ru, rv, rh, rows: np.ndarray) -> _StoredHarmonics | None:
@@ -819,9 +820,13 @@ class _StoredHarmonics:
         needed = np.unique(matrix[np.flatnonzero(per_row)].indices) if per_row.any() \
             else np.zeros(0, dtype=np.int64)
         # (point, field, harmonic): the fields side by side, so that one product with
-        # a ray's weights gives all its fields
-        self.spectra = np.zeros((points.size, len(self.fields), self.rows.size),
-                                dtype=np.complex128)
+        # a ray's weights gives all its fields. One buffer for every block (on long
+        # records a block's harmonics pass the C library's heap limit, and a new array
+        # would be fresh memory each time); the points no loaded ray uses stay unset.
+        if self._buffer.shape[0] < points.size:
+            self._buffer = np.empty((points.size, len(self.fields), self.rows.size),
+                                    dtype=np.complex128)
+        self.spectra = self._buffer[:points.size]
         size = max(4 * FORWARD_MIN_LINES,
                    FORWARD_BLOCK_BYTES // (4 * max(1, self.fields[0].shape[0])))
 
