@@ -15,7 +15,7 @@ import numpy as np
 
 from coastmon.compiled import compiled
 from coastmon.io.pages import release, station_sweep
-from coastmon.stream.rays import RayField
+from coastmon.stream.rays import RayField, stations_through_gaps
 
 GRID_POINTS_PER_SWEEP = 512
 """Grid points whose running means are summed at once (:func:`_stored_running_means`)."""
@@ -85,10 +85,7 @@ def _stored_running_means(field, marks: np.ndarray, out: np.ndarray) -> None:
     """
     matrix, points = field.station_weights(0, field.shape[1])
     n_ray = field.shape[2]
-    structure = matrix.copy()
-    structure.data[:] = 1.0
-    gappy = (structure @ (~field.complete_points()[points]).astype(float)) > 0
-    gappy = gappy.reshape(-1, n_ray).any(axis=1)
+    gappy = stations_through_gaps(matrix, field.complete_points()[points], n_ray)
     grid = np.empty((marks.size, points.size))
     series = field.points                                  # (grid point, time)
     step = GRID_POINTS_PER_SWEEP

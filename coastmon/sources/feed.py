@@ -809,13 +809,12 @@ class _StoredHarmonics:
     def load(self, first: int, stop: int, wanted: np.ndarray, pool) -> None:
         """Transform the grid points of stations ``first:stop`` where ``wanted``, on the
         threads of ``pool``."""
+        from coastmon.stream.rays import stations_through_gaps
+
         matrix, points = self.fields[0].station_weights(first, stop)
-        gaps = matrix.copy()
-        gaps.data[:] = 1.0
-        gaps = (gaps @ (~self.complete[points]).astype(float)).reshape(stop - first,
-                                                                       self.n_ray)
         self.first, self.matrix = first, matrix
-        self.linear = np.asarray(wanted, dtype=bool) & ~(gaps > 0).any(axis=1)
+        self.linear = np.asarray(wanted, dtype=bool) & ~stations_through_gaps(
+            matrix, self.complete[points], self.n_ray)
         per_row = np.repeat(self.linear, self.n_ray)
         needed = np.unique(matrix[np.flatnonzero(per_row)].indices) if per_row.any() \
             else np.zeros(0, dtype=np.int64)

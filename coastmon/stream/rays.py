@@ -92,6 +92,22 @@ def sampling_matrix(sampler, valid: np.ndarray, n_sections: int, plan: RayPlan):
     return matrix, mask
 
 
+def stations_through_gaps(matrix, complete: np.ndarray, n_ray: int) -> np.ndarray:
+    """Which stations' rays draw on a grid point that is not finite at every step.
+
+    ``matrix`` and its columns' ``complete`` flags as :meth:`RayField.station_weights`
+    and :meth:`RayField.complete_points` give them (``complete`` indexed by ``points``);
+    one boolean per station. Elsewhere a ray is the same weighted mean of its grid points
+    at every step, so statistics linear in the series may be formed on the grid points.
+    """
+    touches = np.diff(matrix.indptr) > 0
+    gappy = np.zeros(matrix.shape[0], dtype=np.bool_)
+    if touches.any():
+        rows = np.repeat(np.arange(matrix.shape[0]), np.diff(matrix.indptr))
+        gappy[np.unique(rows[~np.asarray(complete, dtype=np.bool_)[matrix.indices]])] = True
+    return gappy.reshape(-1, n_ray).any(axis=1)
+
+
 class RayField:
     """``(time, station, ray)`` float32 ray series computed from stored grid points.
 
