@@ -193,3 +193,35 @@ def test_a_thread_nobody_wakes_does_not_keep_the_process_alive(tmp_path):
     assert run.returncode == 2, run.stderr
     assert "Traceback" not in run.stderr and "no_such_file.nc" in run.stderr
     assert time.monotonic() - start < 60
+
+
+def test_the_console_command_ends_with_its_status_output_and_exit_handlers(tmp_path):
+    # The console command ends without the interpreter's teardown (cli._end_now). What
+    # a normal exit guarantees must still hold: the status, everything printed (here a
+    # last line with no newline, still in the buffer) and the exit handlers, which close
+    # reader processes and multiprocessing's children.
+    code = (
+        "import atexit, sys\n"
+        "import coastmon.cli as cli\n"
+        "marker = sys.argv[3]\n"
+        "atexit.register(lambda: open(marker, 'w').write('ran'))\n"
+        "run = cli._run\n"
+        "def last_words(args):\n"
+        "    status = run(args)\n"
+        "    sys.stdout.write('last words')\n"
+        "    return status\n"
+        "cli._run = last_words\n"
+        "sys.argv = ['coastmon', 'analyze', sys.argv[1], '--out', sys.argv[2]]\n"
+        "cli.main()\n"
+        "print('never reached')\n")
+    marker = tmp_path / "handlers.txt"
+    run = subprocess.run([sys.executable, "-c", code, str(tmp_path / "no_such_file.nc"),
+                          str(tmp_path / "out"), str(marker)],
+                         capture_output=True, text=True, timeout=120)
+    # check: common practice, no source (POSIX _exit(2) ends the process with the status
+    # given; Python's os._exit flushes nothing and runs no atexit handler, so the command
+    # must do both itself)
+    assert run.returncode == 2, run.stderr
+    assert run.stdout == "last words"
+    assert "no_such_file.nc" in run.stderr and "Traceback" not in run.stderr
+    assert marker.read_text() == "ran"
