@@ -66,14 +66,19 @@ import scipy.special
 import xarray as xr
 
 from coastmon.config import Settings
-from coastmon.io.pages import release
+from coastmon.io.pages import SWEEP_BLOCK_BYTES, release
 from coastmon.signals.wavelets import band_power, padded_length
 
-WAVELET_BUDGET_BYTES = 128 * 2**20
-"""Memory for the wavelet coefficients of the groups of stations transformed at once
-(complex, all scales)."""
-ANOMALY_BUDGET_BYTES = 64 * 2**20
-"""Memory for the float64 copies of the near-shore section of a block of stations."""
+WAVELET_BUDGET_BYTES = SWEEP_BLOCK_BYTES
+"""Memory for the arrays of one group of stations transformed at once (one scale at a
+time; each thread transforms its own group). Within the C library's largest heap block:
+larger new arrays are fresh memory from the system every time: on the long record of
+``docs/performance.md`` the near-shore test's transforms took 0.42–0.49 s with 64 MB
+groups, 0.35–0.38 s with 16 MB groups."""
+ANOMALY_BUDGET_BYTES = SWEEP_BLOCK_BYTES
+"""Memory for the float64 copies of the near-shore section of a block of stations (held
+small for the same reason: 64 MB blocks took 0.19–0.21 s for three fields on the long
+record, 16 MB blocks 0.11)."""
 WAVELET_THREADS = 4
 """Most threads transforming groups of stations at once (one per core up to this)."""
 
@@ -323,10 +328,10 @@ def band_activity(x: np.ndarray, dt: float, settings: Settings
     windows = np.empty((n_win, n_station))
     period = np.empty(n_station)
     # Stations in groups within a fixed budget however long the record
-    # (:func:`series_per_group`); the groups on all cores (the transforms release the
-    # GIL), each with its share of the budget.
+    # (:func:`series_per_group`), the groups on all cores (the transforms release the
+    # GIL), one group per thread at a time.
     workers = max(1, min(os.cpu_count() or 1, WAVELET_THREADS))
-    group = series_per_group(n_time, WAVELET_BUDGET_BYTES // workers)
+    group = series_per_group(n_time)
 
     def one_group(g0: int) -> None:
         g1 = min(n_station, g0 + group)
