@@ -219,14 +219,20 @@ def _end_now(status: int) -> None:
     import atexit
 
     try:
-        atexit._run_exitfuncs()
+        atexit._run_exitfuncs()   # a handler that hangs is ended by _end_within's watchdog
     finally:
-        for stream in (sys.stdout, sys.stderr):
-            try:
-                stream.flush()
-            except (OSError, ValueError):
-                pass
-        os._exit(status)
+        _flush_and_exit(status)
+
+
+def _flush_and_exit(status: int) -> None:
+    """Flush stdout and stderr (a closed stream is no reason to fail), then end the
+    process with ``status`` at once."""
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):
+            pass
+    os._exit(status)
 
 
 def _end_within(seconds: float, status: int) -> None:
@@ -244,12 +250,7 @@ def _end_within(seconds: float, status: int) -> None:
 
     def end() -> None:
         time.sleep(seconds)
-        for stream in (sys.stdout, sys.stderr):
-            try:
-                stream.flush()
-            except (OSError, ValueError):
-                pass
-        os._exit(status)
+        _flush_and_exit(status)
 
     threading.Thread(target=end, name="coastmon-exit", daemon=True).start()
 
