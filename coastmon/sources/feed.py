@@ -251,10 +251,9 @@ def split_harmonics(harmonics: np.ndarray, n_t: int, dt_days: float, dd_km: floa
     of series may be given as the weighted sum of theirs."""
     n_d = harmonics.shape[0]
     start, stop = (0, n_d) if columns is None else (max(0, columns[0]), min(n_d, columns[1]))
-    lo, hi = max(0, start - 2), min(n_d, stop + 2)      # the derivative's stencil
-    freq = scipy.fft.rfftfreq(n_t, dt_days)                  # cycles per day
+    lo, hi = _stencil_span(n_d, start, stop)
     rows = band_harmonics(n_t, dt_days, band_days)
-    d_t = 2j * np.pi * freq[rows, None] / 86400.0
+    d_t = _time_derivative_factors(n_t, dt_days, rows)[:, None]
     n_out = n_t if n_out is None else int(n_out)
     if rows.size and 2 * rows[-1] >= n_out:
         raise ValueError(f"{n_out} samples cannot hold harmonic {rows[-1]} of the band")
@@ -278,6 +277,18 @@ def split_harmonics(harmonics: np.ndarray, n_t: int, dt_days: float, dd_km: floa
         q_d = along_derivative(q, dd_km * 1000.0)
         out[name] = (q[:, keep], series[2 * j + 1].T[:, keep], q_d[:, keep])
     return out
+
+
+def _stencil_span(n_d: int, start: int, stop: int) -> tuple[int, int]:
+    """The points ``lo:hi`` of a line of ``n_d`` that :func:`along_derivative`'s
+    fourth-order stencil reads for points ``start:stop`` (two on each side)."""
+    return max(0, start - 2), min(n_d, stop + 2)
+
+
+def _time_derivative_factors(n_t: int, dt_days: float, rows: np.ndarray) -> np.ndarray:
+    r""":math:`2\pi i f_m` (s⁻¹) of harmonics ``rows`` of an ``n_t``-step record: the
+    time derivative's factor on each."""
+    return 2j * np.pi * scipy.fft.rfftfreq(n_t, dt_days)[rows] / 86400.0
 
 
 @functools.lru_cache(maxsize=256)
@@ -882,9 +893,8 @@ def _window_means_from_harmonics(spectra: list[np.ndarray], windows: list[np.nda
     n_d = spectra[0].shape[0]
     start = min(int(w[0]) for w in windows)
     stop = max(int(w[-1]) for w in windows) + 1
-    lo, hi = max(0, start - 2), min(n_d, stop + 2)      # the derivative's stencil
-    rows = band_harmonics(n_t, dt_days, band_days)
-    d_t = 2j * np.pi * scipy.fft.rfftfreq(n_t, dt_days)[rows] / 86400.0
+    lo, hi = _stencil_span(n_d, start, stop)
+    d_t = _time_derivative_factors(n_t, dt_days, band_harmonics(n_t, dt_days, band_days))
     keep = slice(start - lo, stop - lo)
     terms = np.zeros((6, stop - start))     # per distance: energy, speed sums, west, east
     for spec in spectra:
