@@ -87,14 +87,12 @@ def _stored_running_means(field, marks: np.ndarray, out: np.ndarray) -> None:
     n_ray = field.shape[2]
     gappy = stations_through_gaps(matrix, field.complete_points()[points], n_ray)
     grid = np.empty((marks.size, points.size))
-    series = field.points                                  # (grid point, time)
+    series = field.points                                  # (grid point, time) tiles
     step = GRID_POINTS_PER_SWEEP
+    buffer = np.empty((min(step, points.size), series.shape[1]), dtype=np.float32)
     for p0 in range(0, points.size, step):
         idx = points[p0:p0 + step]
-        if idx[-1] - idx[0] + 1 == idx.size:               # consecutive: a view, no copy
-            block = series[idx[0]:idx[-1] + 1]
-        else:
-            block = np.asarray(series[idx])
+        block = series.rows(idx, out=buffer)               # one buffer for every block
         _running_means(block.T[:, :, None], marks, grid[:, p0:p0 + idx.size])
         release(field)                                     # the pages read
     out[:] = (matrix @ grid.T).T

@@ -714,21 +714,28 @@ STORED_TILE_STEPS = 64
 
 
 @compiled()
-def _sample_stored(indptr, cols, weights, valid, points, r0, out, lines):  # pragma: no cover
-    # Rows r0, r0 + 1, ... of the sampling matrix applied to stored grid-point series
-    # ``points`` (grid point, time), with the arithmetic of _sample_split (the same
-    # float64 sums in the same order), into ``out`` (time, row). The sums run without
-    # the finiteness test first (a loop the compiler vectorises); a step whose sum is not
-    # finite met a missing value and is summed again as _sample_split sums it. Where
-    # every value is finite both give the same numbers: the same products added in the
-    # same order, and the weights' sum is then the same at every step. Each row is
-    # computed into a contiguous line and the lines are then copied into ``out`` a tile
-    # of steps at a time: writing ``out`` a column at a time touches a cache line per
-    # step, which on long records evicts the sums before the next row (superlinear).
-    # ``lines`` (rows, time), of out's type, is the caller's, reused from call to call.
-    nt = points.shape[1]
+def _sample_stored(indptr, cols, weights, valid, flat, n_points, starts, r0, out,
+                   lines):  # pragma: no cover - compiled
+    # Rows r0, r0 + 1, ... of the sampling matrix applied to stored grid-point series,
+    # with the arithmetic of _sample_split (the same float64 sums in the same order),
+    # into ``out`` (time, row). The series are ``flat``, tiles of consecutive steps
+    # (:class:`coastmon.stream.rays.TiledPoints`): steps ``starts[j]:starts[j + 1]`` of
+    # every one of the ``n_points`` grid points, point-major, from element
+    # ``n_points * starts[j]``. The sums run without the finiteness test first (a loop
+    # the compiler vectorises); a step whose sum is not finite met a missing value and is
+    # summed again as _sample_split sums it. Where every value is finite both give the
+    # same numbers: the same products added in the same order, and the weights' sum is
+    # then the same at every step. Each row is computed into a contiguous line and the
+    # lines are then copied into ``out`` a few steps at a time: writing ``out`` a
+    # column at a time touches a cache line per step, which on long records evicts the
+    # sums before the next row (superlinear). ``lines`` (rows, time), of out's type, is
+    # the caller's, reused from call to call.
+    nt = starts[-1]
+    n_tiles = starts.size - 1
     n_rows = out.shape[1]
     num = np.zeros(nt)
+    # Loops run over views that start at 0 (one tile's segment of a series): with
+    # offsets in the indices instead, the compiler does not vectorise them (4 x slower).
     for j in range(n_rows):
         p = r0 + j
         if not valid[p]:
@@ -740,24 +747,48 @@ def _sample_stored(indptr, cols, weights, valid, points, r0, out, lines):  # pra
             c = cols[k]
             w = weights[k]
             w_sum += w
-            for i in range(nt):
-                num[i] += w * np.float64(points[c, i])
-        for i in range(nt):
-            if np.isfinite(num[i]):
-                lines[j, i] = num[i] / w_sum if w_sum != 0.0 else np.nan
-            else:
-                n_i = 0.0
-                d_i = 0.0
-                for k in range(indptr[p], indptr[p + 1]):
-                    val = np.float64(points[cols[k], i])
-                    if np.isfinite(val):
-                        n_i += weights[k] * val
-                        d_i += weights[k]
-                lines[j, i] = n_i / d_i if d_i != 0.0 else np.nan
+            for q in range(n_tiles):
+                t0 = starts[q]
+                n = starts[q + 1] - t0
+                at = n_points * t0 + c * n
+                seg = flat[at:at + n]
+                acc = num[t0:t0 + n]
+                for i in range(n):
+                    acc[i] += w * np.float64(seg[i])
+        for q in range(n_tiles):
+            t0 = starts[q]
+            n = starts[q + 1] - t0
+            acc = num[t0:t0 + n]
+            line = lines[j, t0:t0 + n]
+            for i in range(n):
+                if np.isfinite(acc[i]):
+                    line[i] = acc[i] / w_sum if w_sum != 0.0 else np.nan
+                else:
+                    n_i = 0.0
+                    d_i = 0.0
+                    for k in range(indptr[p], indptr[p + 1]):
+                        val = np.float64(flat[n_points * t0 + cols[k] * n + i])
+                        if np.isfinite(val):
+                            n_i += weights[k] * val
+                            d_i += weights[k]
+                    line[i] = n_i / d_i if d_i != 0.0 else np.nan
     for i0 in range(0, nt, STORED_TILE_STEPS):
         for i in range(i0, min(nt, i0 + STORED_TILE_STEPS)):
             for j in range(n_rows):
                 out[i, j] = lines[j, i]
+    return 0
+
+
+@compiled()
+def _gather_tiles(flat, n_points, starts, index, out):  # pragma: no cover - compiled
+    # out[k, :] = the whole series of grid point index[k] from the tiles of
+    # :class:`coastmon.stream.rays.TiledPoints` (indices checked by the caller).
+    for q in range(starts.size - 1):
+        t0 = starts[q]
+        n = starts[q + 1] - t0
+        for k in range(index.size):
+            at = n_points * t0 + index[k] * n
+            out[k, t0:t0 + n] = flat[at:at + n]
     return 0
 
 

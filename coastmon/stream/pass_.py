@@ -49,6 +49,7 @@ from coastmon.io.damage import ChunkDecodeError
 from coastmon.io.pages import preallocate
 from coastmon.stream import kernels, rays, readers
 from coastmon.stream.moments import MomentState, grid_signature, time_text
+from coastmon.stream.rays import TiledPoints
 from coastmon.stream.readers import ProcessReader, read_chunk
 
 OPEN_FILES = 4
@@ -68,6 +69,9 @@ SERIES_BUFFER_BYTES = 4 * 2**20
 """Sampled series gathered per file before they are written (bytes): a few MB per file
 turn one small write per station and chunk into one per station and a few dozen chunks."""
 
+TILE_BYTES = 16 * 2**20
+"""Least size of a tile of a ray grid-point file (:class:`TileFile`), but for the last:
+the rays of one station are read from every tile, so fewer, larger tiles read faster."""
 SERIES_VARIABLES = ("u", "v", "zeta", "ssh")
 INPUT_VARIABLES = ("u", "v", "ssh", "zeta")
 """Variables read from the canonical dataset, in the order the chunk tasks take them; a
@@ -517,9 +521,10 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress, ray_points) -> Pa
         # Each series file reserves its disk when created: a full disk stops the pass here,
         # before anything is read (the files made so far are closed below).
         for name in series_names:
-            for kind, shape in (("section", sec_shape), ("ray", ray_shape)):
-                files[f"{kind}_{name}"] = SeriesFile(workdir / f"{kind}_{name}.npy",
-                                                     (nt, *shape))
+            files[f"section_{name}"] = SeriesFile(workdir / f"section_{name}.npy",
+                                                  (nt, *sec_shape))
+            files[f"ray_{name}"] = SeriesFile(workdir / f"ray_{name}.npy", (nt, *ray_shape)) \
+                if plan is None else TileFile(workdir / f"ray_{name}.tiles", nt, plan.n_points)
         client = _client(settings.scheduler) if settings.scheduler else None
         if client is not None:
             nthreads = sum(client.nthreads().values()) or 1
@@ -625,9 +630,9 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress, ray_points) -> Pa
             writer.close()
 
     t = time.perf_counter()
-    # A ray file of grid points opens as (time, P, 1); the RayField reads it as (P, time).
-    opened = {k: (w.open() if plan is None or not k.startswith("ray_")
-                  else rays.RayField(w.open()[:, :, 0].T, plan)) for k, w in files.items()}
+    # A ray file of grid points opens as their tiles, which the RayField reads.
+    opened = {k: (rays.RayField(w.open(), plan) if isinstance(w, TileFile) else w.open())
+              for k, w in files.items()}
     series = _series_dataset(opened, frame, ds, series_names)
     timings["write_s"] += time.perf_counter() - t
     t = time.perf_counter()
@@ -769,6 +774,86 @@ class SeriesFile:
     def open(self) -> np.ndarray:
         """The written series as a read-only, disk-backed ``(time, station, k)`` view."""
         return np.swapaxes(np.load(self.path, mmap_mode="r"), 0, 1)
+
+
+class TileFile:
+    """Grid-point series ``(time, P)`` kept on disk in tiles of consecutive time steps.
+
+    The file is :class:`coastmon.stream.rays.TiledPoints`' layout (raw float32, no
+    header): each tile is every point's series over a run of steps, point-major, and is
+    written with one positioned write. Blocks come in time order, station-major
+    ``(P, steps, 1)`` as the pass's sampler makes them: a block of at least
+    :data:`TILE_BYTES` is one tile as it is; smaller ones are gathered (copied, so the
+    caller may reuse its block when the call returns) into one tile of that size.
+    """
+
+    def __init__(self, path: Path, n_time: int, n_points: int) -> None:
+        self.path = path
+        self.n_time, self.n_points = int(n_time), int(n_points)
+        self.buffer_steps = max(1, TILE_BYTES // max(4 * self.n_points, 1))
+        self.starts = [0]
+        self._buffer: np.ndarray | None = None
+        self._held = 0
+        self.fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        try:
+            preallocate(self.fd, 4 * self.n_points * self.n_time)
+        except OSError:
+            os.close(self.fd)
+            raise
+
+    def write_stations(self, t0: int, values: np.ndarray) -> None:
+        """Write ``values`` ``(P, steps, 1)`` (or ``(P, steps)``) at steps ``t0, t0 + 1, ...``,
+        which follow the steps written so far."""
+        values = np.asarray(values).reshape(self.n_points, -1)
+        steps = values.shape[1]
+        if t0 != self.starts[-1] + self._held:
+            raise ValueError(f"steps from {t0} do not follow the {self.starts[-1] + self._held}"
+                             " steps written")
+        if not self._held and steps >= self.buffer_steps:
+            self._write(np.ascontiguousarray(values, dtype=np.float32))
+            return
+        if self._held + steps > self.buffer_steps:
+            self.flush()
+        if steps >= self.buffer_steps:
+            self._write(np.ascontiguousarray(values, dtype=np.float32))
+            return
+        if self._buffer is None:
+            self._buffer = np.empty((self.n_points, self.buffer_steps), dtype=np.float32)
+        self._buffer[:, self._held:self._held + steps] = values
+        self._held += steps
+
+    def flush(self) -> None:
+        """Write the gathered steps as one tile."""
+        if self._held:
+            held, self._held = self._held, 0
+            self._write(np.ascontiguousarray(self._buffer[:, :held]))
+
+    def _write(self, tile: np.ndarray) -> None:
+        data = memoryview(tile).cast("B")
+        at = 4 * self.n_points * self.starts[-1]
+        done = 0
+        while done < len(data):
+            done += os.pwrite(self.fd, data[done:], at + done)
+        self.starts.append(self.starts[-1] + tile.shape[1])
+
+    def close(self) -> None:
+        if self.fd >= 0:
+            try:
+                self.flush()
+            finally:
+                os.close(self.fd)
+                self.fd = -1
+                self._buffer = None
+
+    def open(self) -> TiledPoints:
+        """The written series as read-only, disk-backed :class:`TiledPoints`."""
+        if self.starts[-1] != self.n_time:
+            raise ValueError(f"{self.starts[-1]} of {self.n_time} steps were written to "
+                             f"{self.path}")
+        size = self.n_points * self.n_time
+        flat = np.memmap(self.path, dtype=np.float32, mode="r", shape=(size,)) if size \
+            else np.zeros(0, dtype=np.float32)
+        return TiledPoints(flat, self.n_points, self.starts)
 
 
 def _consume(out, t0, t1, state, files, times, timings, give_back=None) -> None:

@@ -12,6 +12,12 @@ the rays are the ones the pass would have written, bit for bit; a float64 field
 (vorticity computed in the pass) is rounded to float32 at the grid points instead of after
 interpolation, a difference of float32 rounding.
 
+The grid points' series are stored in tiles of consecutive time steps
+(:class:`TiledPoints`): the pass writes each tile, every grid point for a few hundred
+steps, with one write, where one file row per grid point would take one small write per
+point and tile (on the long benchmark record 75 000 writes per variable, about a third of
+a second of system time each).
+
 A read of one station, a block of stations or the whole field gives ordinary float32
 numpy arrays, so the per-station analyses index a :class:`RayField` as they index the
 memory-mapped ``(time, station, ray)`` files it replaces.
@@ -28,7 +34,7 @@ from coastmon.io.pages import release
 from coastmon.stream import kernels
 
 COMPLETE_BLOCK_BYTES = 16 * 2**20
-"""Grid-point series tested for gaps at once by :meth:`RayField.complete_points`."""
+"""Bytes of grid-point series tested for gaps at once by :meth:`RayField.complete_points`."""
 RAY_POINTS_RATIO = 0.75
 """Grid points are stored instead of rays when they number at most this share of the ray
 points (below it the pass writes a quarter fewer numbers or better; above it the
@@ -108,17 +114,105 @@ def stations_through_gaps(matrix, complete: np.ndarray, n_ray: int) -> np.ndarra
     return gappy.reshape(-1, n_ray).any(axis=1)
 
 
+class TiledPoints:
+    """``(P, time)`` float32 grid-point series, stored as tiles of consecutive time steps.
+
+    Tile ``j`` holds steps ``starts[j]:starts[j + 1]`` of all ``P`` grid points,
+    point-major, from element ``P * starts[j]`` of the one-dimensional ``flat`` (a memory
+    map of the pass's file, or an array). An ordinary ``(P, time)`` array is one tile
+    (:meth:`of`). Indexing the first axis (an integer, a slice or an integer array) gives
+    those points' whole series as a new ``(k, time)`` array (a second index is applied to
+    it); ``np.asarray`` gives all of them.
+    """
+
+    def __init__(self, flat: np.ndarray, n_points: int, starts) -> None:
+        self.flat = flat
+        self.base = flat
+        self.n_points = int(n_points)
+        self.starts = np.ascontiguousarray(starts, dtype=np.int64)
+        if self.starts.size < 2 or self.starts[0] != 0 or np.any(np.diff(self.starts) <= 0) \
+                or flat.size < self.n_points * int(self.starts[-1]):
+            raise ValueError(f"tiles {self.starts.tolist()} of {self.n_points} points do not "
+                             f"fit {flat.size} stored values")
+        self.shape = (self.n_points, int(self.starts[-1]))
+        self.dtype = np.dtype(np.float32)
+        self.ndim = 2
+
+    @classmethod
+    def of(cls, points: np.ndarray) -> TiledPoints:
+        """An ordinary ``(P, time)`` array as one tile (a copy only if it is not C-ordered
+        float32)."""
+        points = np.ascontiguousarray(points, dtype=np.float32)
+        if points.ndim != 2 or points.shape[1] == 0:
+            raise ValueError(f"grid-point series must be (point, time), not {points.shape}")
+        return cls(points.reshape(-1), points.shape[0], [0, points.shape[1]])
+
+    @property
+    def size(self) -> int:
+        return self.shape[0] * self.shape[1]
+
+    def tiles(self):
+        """Each tile as ``(t0, t1, block)``, ``block`` the ``(P, t1 - t0)`` view of it."""
+        for t0, t1 in zip(self.starts[:-1].tolist(), self.starts[1:].tolist(), strict=True):
+            yield t0, t1, self.flat[self.n_points * t0:self.n_points * t1].reshape(
+                self.n_points, t1 - t0)
+
+    def rows(self, index, out: np.ndarray | None = None) -> np.ndarray:
+        """The ``(k, time)`` series of the grid points ``index`` (a slice or integers),
+        into ``out`` when given (float32, at least ``k`` rows)."""
+        if isinstance(index, slice):
+            index = np.arange(self.n_points)[index]
+        index = np.asarray(index, dtype=np.int64).ravel()
+        if index.size and (index.min() < -self.n_points or index.max() >= self.n_points):
+            raise IndexError(f"grid points {index.min()}..{index.max()} are out of range "
+                             f"of {self.n_points}")
+        index = np.ascontiguousarray(index % max(self.n_points, 1))
+        block = np.empty((index.size, self.shape[1]), dtype=np.float32) if out is None \
+            else out[:index.size]
+        if block.shape != (index.size, self.shape[1]) or block.dtype != np.float32 \
+                or block.strides[1] != 4:
+            raise ValueError(f"cannot gather {index.size} series of {self.shape[1]} steps "
+                             f"into a {block.dtype} block of shape {block.shape}")
+        kernels._gather_tiles(self.flat, self.n_points, self.starts, index, block)
+        return block
+
+    def __getitem__(self, key):
+        if not isinstance(key, tuple):
+            key = (key,)
+        if len(key) > 2:
+            raise IndexError(f"too many indices for {self.shape} grid-point series")
+        first = key[0]
+        if isinstance(first, (int, np.integer)):
+            block = self.rows(np.array([first]))[0]
+        else:
+            block = self.rows(first)
+        return block[key[1]] if len(key) == 2 else block
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    def __array__(self, dtype=None, copy=None):
+        out = self.rows(slice(None))
+        return out if dtype is None else out.astype(dtype, copy=False)
+
+
 class RayField:
     """``(time, station, ray)`` float32 ray series computed from stored grid points.
 
-    ``points`` is the ``(P, time)`` series of the plan's grid points (a view of the pass's
-    memory-mapped file, which :func:`coastmon.io.pages.release` finds through ``base``).
+    ``points`` is the ``(P, time)`` series of the plan's grid points: the pass's tiles
+    (:class:`TiledPoints`, whose memory map :func:`coastmon.io.pages.release` finds through
+    ``base``), or an ordinary array.
     Indexing selects stations first and computes only those; the time and ray indices are
     then applied to the computed block, one after the other (orthogonal indexing, as
     xarray asks of the arrays it wraps).
     """
 
-    def __init__(self, points: np.ndarray, plan: RayPlan) -> None:
+    def __init__(self, points, plan: RayPlan) -> None:
+        if not isinstance(points, TiledPoints):
+            points = TiledPoints.of(points)
+        if points.n_points != plan.n_points:
+            raise ValueError(f"{points.n_points} grid-point series for a plan of "
+                             f"{plan.n_points} grid points")
         self.points = points
         self.base = points
         self.plan = plan
@@ -152,8 +246,9 @@ class RayField:
         for i, s in enumerate(stations):
             if not 0 <= s < p.n_stations:
                 raise IndexError(f"station {s} is out of range 0..{p.n_stations - 1}")
-            kernels._sample_stored(p.indptr, p.cols, p.weights, p.valid, self.points,
-                                   int(s) * p.n_ray, out[i], lines)
+            kernels._sample_stored(p.indptr, p.cols, p.weights, p.valid, self.points.flat,
+                                   p.n_points, self.points.starts, int(s) * p.n_ray, out[i],
+                                   lines)
         return np.swapaxes(out, 0, 1)
 
     def window(self, station: int, start: int, stop: int) -> np.ndarray:
@@ -164,7 +259,8 @@ class RayField:
             raise IndexError(f"station {station}, points {start}:{stop} are out of range "
                              f"of a {self.shape} ray field")
         out = np.empty((self.shape[0], stop - start), dtype=np.float32)
-        kernels._sample_stored(p.indptr, p.cols, p.weights, p.valid, self.points,
+        kernels._sample_stored(p.indptr, p.cols, p.weights, p.valid, self.points.flat,
+                               p.n_points, self.points.starts,
                                int(station) * p.n_ray + int(start), out,
                                np.empty((stop - start, self.shape[0]), dtype=np.float32))
         return out
@@ -173,11 +269,12 @@ class RayField:
         """``(P,)`` whether each stored grid point is finite at every step (worked out on
         the first call, a block of points at a time, and kept)."""
         if self._complete is None:
-            n_p, n_t = self.points.shape
-            done = np.empty(n_p, dtype=np.bool_)
-            step = max(1, COMPLETE_BLOCK_BYTES // max(1, 4 * n_t))
-            for p0 in range(0, n_p, step):
-                done[p0:p0 + step] = np.isfinite(self.points[p0:p0 + step]).all(axis=1)
+            n_p = self.points.n_points
+            done = np.ones(n_p, dtype=np.bool_)
+            for t0, t1, tile in self.points.tiles():
+                step = max(1, COMPLETE_BLOCK_BYTES // max(1, 4 * (t1 - t0)))
+                for p0 in range(0, n_p, step):
+                    done[p0:p0 + step] &= np.isfinite(tile[p0:p0 + step]).all(axis=1)
                 release(self)   # the pages read, so memory does not grow with the record
             self._complete = done
         return self._complete
