@@ -197,6 +197,32 @@ def test_pass_unchunked_input(tmp_path):
     assert_matches_recipe(result.stats, xarray_recipe(ds, metrics, SETTINGS.ow_threshold))
 
 
+@pytest.mark.parametrize("seasonal", [False, True])
+def test_kernel_sub_blocks_give_the_statistics_of_the_whole_chunk(tmp_path, monkeypatch,
+                                                                   seasonal):
+    from coastmon.stream import pass_
+
+    ds, metrics, sea, rng = make_dataset(nt=90, chunk=None, freq="3D")
+    frame = make_frame(metrics.shape, sea, rng)
+    settings = StreamSettings(progress=False, seasonal=seasonal)
+    whole = run_pass(ds, metrics, frame, settings, tmp_path / "whole")
+    # sub-blocks of 4 steps: one chunk of 90 steps computed in 23 pieces whose moments
+    # are merged (months split across pieces when seasonal)
+    monkeypatch.setattr(pass_, "KERNEL_BLOCK_BYTES", 1)
+    monkeypatch.setattr(pass_, "KERNEL_MIN_STEPS", 4)
+    pieces = run_pass(ds, metrics, frame, settings, tmp_path / "pieces")
+    # check: the xarray recipe (an independent two-pass computation of the same moments)
+    assert_matches_recipe(pieces.stats, xarray_recipe(ds, metrics, settings.ow_threshold,
+                                                      seasonal=seasonal))
+    # check: Chan, Golub & LeVeque 1983 — pairwise-merged moments equal the moments of
+    # the whole, to float64 rounding; the sampled series are the same numbers
+    for name in whole.stats.data_vars:
+        np.testing.assert_allclose(pieces.stats[name].values, whole.stats[name].values,
+                                   rtol=1e-9, atol=1e-18, err_msg=name)
+    for name in ("section_u", "section_zeta", "ray_v"):
+        np.testing.assert_array_equal(pieces.series[name].values, whole.series[name].values)
+
+
 def sparse_sampling(frame, field: np.ndarray) -> np.ndarray:
     """(time, point): the frame's sampler applied to each step of ``field`` with
     scipy.sparse, renormalised over the finite values; NaN on rows that are not valid."""
@@ -659,6 +685,72 @@ def test_linear_ray_consumers_release_the_pages_they_read(tmp_path):
     assert after_complete - before < 32 * 1024, (before, after_complete)
     assert after_spinup - before < 32 * 1024, (before, after_spinup)
     assert np.allclose(curve.correlation, 1.0)     # constant series: every mean is final
+
+
+@pytest.mark.parametrize("tile_bytes", [1, 6 * 4 * 9, 2**30])
+def test_tiled_grid_points_give_back_the_series_written(tmp_path, monkeypatch, tile_bytes):
+    from coastmon.stream import pass_
+
+    monkeypatch.setattr(pass_, "TILE_BYTES", tile_bytes)
+    rng = np.random.default_rng(11)
+    full = rng.standard_normal((9, 40)).astype(np.float32)        # (grid point, time)
+    writer = pass_.TileFile(tmp_path / "ray_u.tiles", 40, 9)
+    # blocks of uneven length in time order, as the pass's chunks come (some smaller
+    # than a tile, gathered; some larger, written as they are)
+    for t0, t1 in [(0, 3), (3, 5), (5, 17), (17, 18), (18, 33), (33, 40)]:
+        writer.write_stations(t0, full[:, t0:t1, None].copy())
+    with pytest.raises(ValueError):
+        writer.write_stations(5, full[:, 5:7, None])              # not after step 40
+    writer.close()
+    tiles = writer.open()
+    assert tiles.shape == (9, 40) and tiles.starts[0] == 0 and tiles.starts[-1] == 40
+    # one write per tile: the file holds the tiles one after another, each point-major
+    on_disk = np.fromfile(tmp_path / "ray_u.tiles", dtype=np.float32)
+    assert on_disk.size == full.size
+    # check: numpy indexing — every way of reading the tiles gives the array written
+    np.testing.assert_array_equal(np.asarray(tiles), full)
+    np.testing.assert_array_equal(tiles[2:7], full[2:7])
+    np.testing.assert_array_equal(tiles[np.array([8, 0, 4, 4])], full[[8, 0, 4, 4]])
+    np.testing.assert_array_equal(tiles[-1], full[-1])
+    np.testing.assert_array_equal(tiles[np.array([1, 3]), 5:9], full[[1, 3], 5:9])
+    out = np.empty((4, 40), dtype=np.float32)
+    assert tiles.rows(np.array([6, 2]), out=out).base is out
+    np.testing.assert_array_equal(out[:2], full[[6, 2]])
+    with pytest.raises(IndexError):
+        tiles[np.array([9])]
+    if tile_bytes == 1:        # every block its own tile
+        assert tiles.starts.tolist() == [0, 3, 5, 17, 18, 33, 40]
+    if tile_bytes == 2**30:    # all gathered into one tile
+        assert tiles.starts.tolist() == [0, 40]
+
+
+def test_rays_read_from_tiles_equal_the_rays_of_one_array(tmp_path, monkeypatch):
+    from coastmon.stream import pass_
+    from coastmon.stream.rays import RayField, TiledPoints
+
+    ds, metrics, sea, rng = make_dataset(nt=23)
+    frame = shared_ray_frame(metrics.shape, sea, rng, missing_weight=True)
+    monkeypatch.setattr(pass_, "TILE_BYTES", 9 * 4 * 5)          # tiles of 5 steps
+    field = run_pass(ds.astype(np.float32), metrics, frame, SETTINGS,
+                     tmp_path).series["ray_u"].data
+    starts = field.points.starts
+    assert isinstance(field, RayField) and starts.size > 3        # several tiles
+    whole = np.array(field.points)
+    whole[4, 8] = np.nan                                           # a gap at one step
+    gappy = field.points.flat.copy()
+    q = int(np.searchsorted(starts, 8, side="right")) - 1          # the tile of step 8
+    t0, n = int(starts[q]), int(starts[q + 1] - starts[q])
+    assert 0 < t0 < 8
+    gappy[9 * t0 + 4 * n + (8 - t0)] = np.nan                      # point 4 in that tile
+    tiled = RayField(TiledPoints(gappy, 9, starts), field.plan)
+    plain = RayField(whole, field.plan)
+    # check: common practice, no source — the same float64 sums of the same float32
+    # values in the same order give the same float32 numbers, bit for bit, however the
+    # series are laid out (IEEE 754 arithmetic is deterministic)
+    np.testing.assert_array_equal(np.asarray(tiled), np.asarray(plain))
+    np.testing.assert_array_equal(tiled.window(3, 1, 4), plain.window(3, 1, 4))
+    np.testing.assert_array_equal(tiled.complete_points(), np.isfinite(whole).all(axis=1))
+    assert not tiled.complete_points()[4]
 
 
 def test_station_sweep_keeps_its_blocks_within_the_byte_budget(monkeypatch):

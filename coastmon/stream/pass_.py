@@ -61,6 +61,16 @@ CHUNK_BUDGET_BYTES = 128 * 2**20
 SCRATCH_BYTES_PER_POINT = 16
 """Kernel scratch per grid point and time step: ζ (for sampling) and Okubo–Weiss W (for
 the eddy-core count), both float64."""
+KERNEL_BLOCK_BYTES = 16 * 2**20
+"""Kernel scratch of one worker thread: a chunk is computed in sub-blocks of time steps
+whose ζ and W fit in it (at least :data:`KERNEL_MIN_STEPS`), one scratch reused for all.
+Scratch as large as a whole chunk (98 MB per worker on the long benchmark record) is
+memory the system must clear before its first use, and the next sub-block finds ζ in
+cache when it samples it."""
+KERNEL_MIN_STEPS = 32
+"""Fewest time steps of a kernel sub-block, whatever the grid: each sub-block's moments
+are merged into the chunk's, a sweep over the whole grid, which shorter sub-blocks would
+repeat too often (with 8 steps the wide benchmark's pass took 0.3 s longer)."""
 
 P = ParamSpec("P")
 R = TypeVar("R")
@@ -137,8 +147,8 @@ def _process_block(u, v, h, z, groups, consts: _Constants, workspace=None,
     station-major blocks the samples go to (:meth:`_BlockPool.take`; new ones when None).
 
     The kernels run on sub-blocks of at most ``consts.step_limit`` time steps so that
-    their scratch arrays stay within :data:`CHUNK_BUDGET_BYTES` however large the
-    input's chunks are; sub-block moments are merged here.
+    their scratch arrays stay within :data:`KERNEL_BLOCK_BYTES` however large the
+    input's chunks are; sub-block moments are merged here (Chan et al. 1983).
     """
     numba.set_num_threads(max(1, min(consts.kernel_threads, numba.config.NUMBA_NUM_THREADS)))
     u, v = _as_float(u), _as_float(v)
@@ -539,7 +549,8 @@ def _run_pass(ds, metrics, frame, settings, workdir, progress, ray_points) -> Pa
             sampler=kernels.Sampler(sampler, valid_rows, *sec_shape,  # the frame's split
                                     grid_points=None if plan is None else plan.n_points),
             ow_threshold=float(settings.ow_threshold), kernel_threads=kernel_threads,
-            step_limit=max(1, CHUNK_BUDGET_BYTES // (SCRATCH_BYTES_PER_POINT * grid_size)),
+            step_limit=max(KERNEL_MIN_STEPS,
+                           KERNEL_BLOCK_BYTES // (SCRATCH_BYTES_PER_POINT * grid_size)),
         )
         bar = _progress_bar(len(bounds), settings.progress)
         if client is not None:
