@@ -180,3 +180,30 @@ def test_reading_a_non_netcdf_file_is_a_user_error(tmp_path):
     bad.write_text("not netcdf")
     with pytest.raises(InputError, match="Cannot read the results file"):
         read_results(bad)
+
+
+def test_results_are_written_without_importing_the_cluster_library(tmp_path):
+    import subprocess
+    import sys
+    import textwrap
+
+    script = textwrap.dedent(f"""
+        import sys
+        import numpy as np
+        import xarray as xr
+        from coastmon.io.results import without_cluster_lookup
+        ds = xr.Dataset({{"a": ("x", np.arange(4.0))}})
+        with without_cluster_lookup():
+            ds.to_netcdf({str(tmp_path / "a.nc")!r}, engine="netcdf4")
+        assert "distributed" not in sys.modules, "imported while writing"
+        import dask.distributed                      # importable again afterwards
+        with without_cluster_lookup():               # a process that has it: left alone
+            ds.to_netcdf({str(tmp_path / "b.nc")!r}, engine="netcdf4")
+        assert sys.modules["distributed"] is not None
+    """)
+    run = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                         cwd=tmp_path)
+    assert run.returncode == 0, run.stderr[-2000:]
+    # check: netCDF4-python reads back what xarray wrote (the write itself is unchanged)
+    with netCDF4.Dataset(tmp_path / "a.nc") as nc:
+        np.testing.assert_array_equal(nc["a"][:], np.arange(4.0))

@@ -90,6 +90,7 @@ from coastmon.io.owned import (
     read_marker,
     write_marker,
 )
+from coastmon.io.results import without_cluster_lookup
 from coastmon.monitor.events import shedding_events
 from coastmon.stream import (
     SeriesFile,
@@ -790,7 +791,8 @@ def _write_part(series: xr.Dataset, path: Path) -> None:
     enc = {"time": {"units": _TIME_UNITS, "dtype": "float64"}}
     tmp = path.with_name(path.name + ".part")
     try:
-        with critical():  # a signal inside xarray's file lock would deadlock its clean-up
+        with critical(), without_cluster_lookup():
+            # (a signal inside xarray's file lock would deadlock its clean-up)
             series.to_netcdf(tmp, engine="netcdf4", encoding=enc)
     except RuntimeError:  # the NetCDF library reports a full disk as "HDF error"
         tmp.unlink(missing_ok=True)  # our own temporary name, written just now

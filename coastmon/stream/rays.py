@@ -184,9 +184,9 @@ class TiledPoints:
         first = key[0]
         if isinstance(first, (int, np.integer)):
             block = self.rows(np.array([first]))[0]
-        else:
-            block = self.rows(first)
-        return block[key[1]] if len(key) == 2 else block
+            return block[key[1]] if len(key) == 2 else block
+        block = self.rows(first)
+        return block[:, key[1]] if len(key) == 2 else block
 
     def __len__(self) -> int:
         return self.shape[0]
