@@ -712,6 +712,9 @@ def test_tiled_grid_points_give_back_the_series_written(tmp_path, monkeypatch, t
     np.testing.assert_array_equal(tiles[2:7], full[2:7])
     np.testing.assert_array_equal(tiles[np.array([8, 0, 4, 4])], full[[8, 0, 4, 4]])
     np.testing.assert_array_equal(tiles[-1], full[-1])
+    mask = np.zeros(9, dtype=bool)
+    mask[[1, 5]] = True
+    np.testing.assert_array_equal(tiles[mask], full[mask])
     np.testing.assert_array_equal(tiles[np.array([1, 3]), 5:9], full[[1, 3], 5:9])
     out = np.empty((4, 40), dtype=np.float32)
     assert tiles.rows(np.array([6, 2]), out=out).base is out
@@ -722,6 +725,11 @@ def test_tiled_grid_points_give_back_the_series_written(tmp_path, monkeypatch, t
         assert tiles.starts.tolist() == [0, 3, 5, 17, 18, 33, 40]
     if tile_bytes == 2**30:    # all gathered into one tile
         assert tiles.starts.tolist() == [0, 40]
+    # a frame whose rays are all on land keeps no grid point: empty series, no error
+    empty = pass_.TileFile(tmp_path / "ray_v.tiles", 40, 0)
+    empty.write_stations(0, np.zeros((0, 40, 1), dtype=np.float32))
+    empty.close()
+    assert np.asarray(empty.open()).shape == (0, 40)
 
 
 def test_rays_read_from_tiles_equal_the_rays_of_one_array(tmp_path, monkeypatch):

@@ -362,7 +362,8 @@ def without_cluster_lookup() -> Iterator[None]:
     machine. When this process has not imported it, no cluster client exists here and
     the write is the same either way, so the import is refused for the duration (both
     libraries take an ImportError as "no cluster"). A process that did import it (the
-    ``--scheduler`` option) is left as it is.
+    ``--scheduler`` option) is left as it is. Another thread importing it meanwhile would
+    fail too; coastmon imports it only to start a cluster, before the streaming pass.
     """
     if "distributed" in sys.modules:
         yield

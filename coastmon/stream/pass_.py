@@ -815,7 +815,12 @@ class TileFile:
     def write_stations(self, t0: int, values: np.ndarray) -> None:
         """Write ``values`` ``(P, steps, 1)`` (or ``(P, steps)``) at steps ``t0, t0 + 1, ...``,
         which follow the steps written so far."""
-        values = np.asarray(values).reshape(self.n_points, -1)
+        values = np.asarray(values)
+        if values.ndim == 3:
+            values = values[:, :, 0]
+        if values.ndim != 2 or values.shape[0] != self.n_points:
+            raise ValueError(f"a block of shape {values.shape} is not {self.n_points} points' "
+                             "series")
         steps = values.shape[1]
         if t0 != self.starts[-1] + self._held:
             raise ValueError(f"steps from {t0} do not follow the {self.starts[-1] + self._held}"
@@ -840,7 +845,7 @@ class TileFile:
             self._write(np.ascontiguousarray(self._buffer[:, :held]))
 
     def _write(self, tile: np.ndarray) -> None:
-        data = memoryview(tile).cast("B")
+        data = memoryview(tile.reshape(-1)).cast("B")   # (no points: nothing to write)
         at = 4 * self.n_points * self.starts[-1]
         done = 0
         while done < len(data):

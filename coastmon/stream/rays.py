@@ -162,7 +162,12 @@ class TiledPoints:
         into ``out`` when given (float32, at least ``k`` rows)."""
         if isinstance(index, slice):
             index = np.arange(self.n_points)[index]
-        index = np.asarray(index, dtype=np.int64).ravel()
+        index = np.asarray(index)
+        if index.dtype == np.bool_:
+            if index.shape != (self.n_points,):
+                raise IndexError(f"a mask of shape {index.shape} for {self.n_points} points")
+            index = np.flatnonzero(index)
+        index = index.astype(np.int64, copy=False).ravel()
         if index.size and (index.min() < -self.n_points or index.max() >= self.n_points):
             raise IndexError(f"grid points {index.min()}..{index.max()} are out of range "
                              f"of {self.n_points}")
@@ -170,7 +175,7 @@ class TiledPoints:
         block = np.empty((index.size, self.shape[1]), dtype=np.float32) if out is None \
             else out[:index.size]
         if block.shape != (index.size, self.shape[1]) or block.dtype != np.float32 \
-                or block.strides[1] != 4:
+                or (block.size and block.strides[1] != 4):
             raise ValueError(f"cannot gather {index.size} series of {self.shape[1]} steps "
                              f"into a {block.dtype} block of shape {block.shape}")
         kernels._gather_tiles(self.flat, self.n_points, self.starts, index, block)
