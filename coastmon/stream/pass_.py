@@ -693,7 +693,37 @@ def _distributed_submitter(client, ds, names, bounds, consts, groups):
     return submit, collect, None
 
 
-class SeriesFile:
+def _write_at(fd: int, block: np.ndarray, at: int) -> None:
+    """Write a C-ordered array's bytes at byte ``at`` of the open file ``fd``, whole."""
+    data = memoryview(block.reshape(-1)).cast("B")   # (an empty block: nothing to write)
+    done = 0
+    while done < len(data):
+        done += os.pwrite(fd, data[done:], at + done)
+
+
+class _GatheredWrites:
+    """A file written with positioned writes, some blocks gathered in a buffer first:
+    :meth:`close` writes what is gathered, closes the file and drops the buffer."""
+
+    fd: int
+
+    def flush(self) -> None:
+        raise NotImplementedError
+
+    def _forget(self) -> None:
+        raise NotImplementedError
+
+    def close(self) -> None:
+        if self.fd >= 0:
+            try:
+                self.flush()
+            finally:
+                os.close(self.fd)
+                self.fd = -1
+                self._forget()
+
+
+class SeriesFile(_GatheredWrites):
     """A float32 series ``(time, station, k)`` kept on disk station by station.
 
     The ``.npy`` file holds ``(station, time, k)``: each station's whole record is one
@@ -767,27 +797,17 @@ class SeriesFile:
     def _write(self, t0: int, blocks: np.ndarray) -> None:
         """Write ``(station, steps, k)`` float32 blocks whose stations are each contiguous."""
         for s, block in enumerate(blocks):
-            data = memoryview(block).cast("B")
-            at = self.offset + (s * self.n_time + t0) * self.step_bytes
-            done = 0
-            while done < len(data):
-                done += os.pwrite(self.fd, data[done:], at + done)
+            _write_at(self.fd, block, self.offset + (s * self.n_time + t0) * self.step_bytes)
 
-    def close(self) -> None:
-        if self.fd >= 0:
-            try:
-                self.flush()
-            finally:
-                os.close(self.fd)
-                self.fd = -1
-                self._buffer, self._held_steps = None, 0
+    def _forget(self) -> None:
+        self._buffer, self._held_steps = None, 0
 
     def open(self) -> np.ndarray:
         """The written series as a read-only, disk-backed ``(time, station, k)`` view."""
         return np.swapaxes(np.load(self.path, mmap_mode="r"), 0, 1)
 
 
-class TileFile:
+class TileFile(_GatheredWrites):
     """Grid-point series ``(time, P)`` kept on disk in tiles of consecutive time steps.
 
     The file is :class:`coastmon.stream.rays.TiledPoints`' layout (raw float32, no
@@ -845,21 +865,11 @@ class TileFile:
             self._write(np.ascontiguousarray(self._buffer[:, :held]))
 
     def _write(self, tile: np.ndarray) -> None:
-        data = memoryview(tile.reshape(-1)).cast("B")   # (no points: nothing to write)
-        at = 4 * self.n_points * self.starts[-1]
-        done = 0
-        while done < len(data):
-            done += os.pwrite(self.fd, data[done:], at + done)
+        _write_at(self.fd, tile, 4 * self.n_points * self.starts[-1])
         self.starts.append(self.starts[-1] + tile.shape[1])
 
-    def close(self) -> None:
-        if self.fd >= 0:
-            try:
-                self.flush()
-            finally:
-                os.close(self.fd)
-                self.fd = -1
-                self._buffer = None
+    def _forget(self) -> None:
+        self._buffer, self._held = None, 0
 
     def open(self) -> TiledPoints:
         """The written series as read-only, disk-backed :class:`TiledPoints`."""
