@@ -467,7 +467,8 @@ def run_pass(
         ``split``, ``stations`` (with ``alongshore_km``), ``offsets_km``, ``ray_km``.
     settings : stream settings (scheduler, seasonal, progress bar, Okubo–Weiss threshold).
     workdir : folder for the disk-backed series (created if needed; must stay while the
-        series are used).
+        series are used): a folder of its own for each pass, since the series of an
+        earlier pass may still be read from it (a ray file already there is an error).
     progress : optional callback ``progress(chunks_done, chunks_total)``.
     ray_points : where the rays draw on clearly fewer grid points than they have points
         (:func:`coastmon.stream.rays.plan_ray_points`), write those grid points' series
