@@ -703,25 +703,21 @@ def _write_at(fd: int, block: np.ndarray, at: int) -> None:
 
 
 class _GatheredWrites:
-    """A file written with positioned writes, some blocks gathered in a buffer first:
-    :meth:`close` writes what is gathered, closes the file and drops the buffer."""
+    """A file written with positioned writes, some blocks gathered in ``_buffer`` first
+    (the subclass's ``flush`` writes them): :meth:`close` writes what is gathered, closes
+    the file and drops the buffer."""
 
     fd: int
-
-    def flush(self) -> None:
-        raise NotImplementedError
-
-    def _forget(self) -> None:
-        raise NotImplementedError
+    _buffer: np.ndarray | None
 
     def close(self) -> None:
         if self.fd >= 0:
             try:
-                self.flush()
+                self.flush()  # type: ignore[attr-defined]  # each subclass has its own
             finally:
                 os.close(self.fd)
                 self.fd = -1
-                self._forget()
+                self._buffer = None
 
 
 class SeriesFile(_GatheredWrites):
@@ -800,9 +796,6 @@ class SeriesFile(_GatheredWrites):
         for s, block in enumerate(blocks):
             _write_at(self.fd, block, self.offset + (s * self.n_time + t0) * self.step_bytes)
 
-    def _forget(self) -> None:
-        self._buffer, self._held_steps = None, 0
-
     def open(self) -> np.ndarray:
         """The written series as a read-only, disk-backed ``(time, station, k)`` view."""
         return np.swapaxes(np.load(self.path, mmap_mode="r"), 0, 1)
@@ -868,9 +861,6 @@ class TileFile(_GatheredWrites):
     def _write(self, tile: np.ndarray) -> None:
         _write_at(self.fd, tile, 4 * self.n_points * self.starts[-1])
         self.starts.append(self.starts[-1] + tile.shape[1])
-
-    def _forget(self) -> None:
-        self._buffer, self._held = None, 0
 
     def open(self) -> TiledPoints:
         """The written series as read-only, disk-backed :class:`TiledPoints`."""

@@ -147,10 +147,6 @@ class TiledPoints:
             raise ValueError(f"grid-point series must be (point, time), not {points.shape}")
         return cls(points.reshape(-1), points.shape[0], [0, points.shape[1]])
 
-    @property
-    def size(self) -> int:
-        return self.shape[0] * self.shape[1]
-
     def tiles(self):
         """Each tile as ``(t0, t1, block)``, ``block`` the ``(P, t1 - t0)`` view of it."""
         for t0, t1 in zip(self.starts[:-1].tolist(), self.starts[1:].tolist(), strict=True):
@@ -192,9 +188,6 @@ class TiledPoints:
             return block[key[1]] if len(key) == 2 else block
         block = self.rows(first)
         return block[:, key[1]] if len(key) == 2 else block
-
-    def __len__(self) -> int:
-        return self.shape[0]
 
     def __array__(self, dtype=None, copy=None):
         out = self.rows(slice(None))
